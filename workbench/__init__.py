@@ -1,0 +1,38 @@
+"""PV Workbench: potential-vorticity diagnosis of storms.
+
+Open a pressure-level analysis with :func:`open_case`, map PV on isentropic surfaces and the
+dynamic tropopause, invert QG PV anomalies piece by piece, and brief. The interactive
+:class:`Workbench` (Panel) is imported on first use so that computation never pulls in
+plotting or widget libraries.
+"""
+from __future__ import annotations
+
+__version__ = "0.1.0"
+
+from . import units  # noqa: F401  (registers PVU)
+from .case import Case
+from .errors import (AccessError, DomainError, FileFormatError, GridError, InputError,  # noqa: F401
+                     MissingVariableError, PieceError, SessionError, UnitsError, WorkbenchError)
+from .io import open_case
+
+__all__ = ["open_case", "Case", "invert_qgpv", "Piece", "Workbench", "__version__"]
+
+
+def __getattr__(name):  # lazy: keep `import workbench` light and free of plotting/widgets
+    if name == "invert_qgpv":
+        from .inversion.fields import invert_qgpv
+
+        return invert_qgpv
+    if name == "Piece":
+        from .inversion.pieces import Piece
+
+        return Piece
+    if name == "Workbench":
+        from .app import Workbench
+
+        return Workbench
+    if name == "State":
+        from .state import State
+
+        return State
+    raise AttributeError(f"module 'workbench' has no attribute {name!r}")

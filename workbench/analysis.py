@@ -1,0 +1,145 @@
+"""The standard analysis of a storm, shared by the command line, the batch runner and the
+briefing: find the storm centre, split the QG PV anomaly into the usual pieces, invert them
+and read each piece's share at the centre. Computation only (no plotting, no widgets).
+"""
+from __future__ import annotations
+
+import argparse
+import json
+from pathlib import Path
+
+import numpy as np
+
+from .errors import InputError
+
+__all__ = ["standard_pieces", "storm_centre", "analyse", "default_case_path", "main"]
+
+SAMPLE_DIR = Path(__file__).resolve().parents[1] / "sample_cases"
+
+
+def default_case_path() -> Path:
+    """The bundled invented sample storm (the first netCDF file in ``sample_cases/``)."""
+    files = sorted(SAMPLE_DIR.glob("*.nc")) if SAMPLE_DIR.exists() else []
+    if not files:
+        raise InputError(f"No sample case found in {SAMPLE_DIR}; build it with `pvwb sample`.")
+    return files[0]
+
+
+def standard_pieces(upper=(550.0, 100.0), lower=(950.0, 600.0), threshold=0.0, rh_min=70.0,
+                    moist=True):
+    """The usual decomposition: upper-level positive PV anomaly, lower-tropospheric (moist)
+    positive anomaly, surface theta', lid theta', lateral boundary, and the remainder.
+
+    The lower piece keeps points with relative humidity >= ``rh_min`` when ``moist`` (70-90 %
+    is common practice for a diabatically generated PV anomaly); a case without humidity gets a
+    dry lower piece. Pieces are claimed in list order; the remainder takes all that is left.
+    """
+    from .inversion.pieces import Piece
+
+    return [
+        Piece("upper trough", kind="interior", layer=upper, layer_coord="pressure", sign=1,
+              threshold=threshold, colour="#1f5fa6"),
+        Piece("lower anomaly", kind="interior", layer=lower, layer_coord="pressure", sign=1,
+              threshold=threshold, rh_min=rh_min if moist else None, colour="#c8553d"),
+        Piece("surface theta", kind="bottom", colour="#2a9d8f"),
+        Piece("lid theta", kind="top", colour="#8d6cab"),
+        Piece("lateral boundary", kind="lateral", colour="#7f7f7f"),
+        Piece("remainder", kind="remainder", colour="#b8b8b8"),
+    ]
+
+
+def storm_centre(case, time=None, member=None):
+    """(lon, lat) of the storm centre: the minimum of mean sea-level pressure when the case has
+    it, else of the lowest level's geopotential; points within two grid lengths of the lateral
+    boundary are skipped."""
+    ds = case.at(time, member)
+    field = ds["mslp"] if "mslp" in ds else ds["geopotential"].isel(pressure=0)
+    inner = field.isel(latitude=slice(2, -2), longitude=slice(2, -2))
+    vals = np.asarray(inner.values, dtype=float)
+    if not np.isfinite(vals).any():
+        raise InputError("Cannot find a storm centre: mean sea-level pressure / lowest-level geopotential is all missing.")
+    j, i = np.unravel_index(np.nanargmin(vals), vals.shape)
+    return float(inner["longitude"][i]), float(inner["latitude"][j])
+
+
+def analyse(case, time=None, member=None, pieces=None, target=None, reference="time_mean"):
+    """Invert ``pieces`` (default :func:`standard_pieces`) at one time and return
+    ``(results, table, target)``: the balanced Datasets per piece, the attribution DataFrame
+    at ``target`` = (lon, lat, pressure hPa) (default the storm centre at the lowest level
+    but one, 950 hPa on the usual level set), and the target used."""
+    from .inversion.pieces import attribution
+
+    if pieces is None:
+        pieces = standard_pieces(moist=case.relative_humidity(time, member) is not None)
+    if target is None:
+        lon, lat = storm_centre(case, time, member)
+        levels = case.levels_hpa
+        target = (lon, lat, float(levels[1] if levels.size > 1 else levels[0]))
+    results = case.inversion(pieces, time, member, reference)
+    table = attribution(results, *target)
+    return results, table, tuple(float(x) for x in target)
+
+
+def _parse_target(text):
+    if text is None:
+        return None
+    try:
+        lon, lat, p = (float(x) for x in text.split(","))
+    except ValueError:
+        raise InputError(f"--target must be lon,lat,pressure_hPa (e.g. -30,52,900), got {text!r}.") from None
+    return lon, lat, p
+
+
+def main(argv=None):
+    import workbench as wb
+
+    parser = argparse.ArgumentParser(prog="pvwb", description="Describe a case or run a piecewise inversion.")
+    parser.add_argument("command", choices=["info", "invert"])
+    parser.add_argument("case", nargs="?", help="case file (default: the invented sample storm)")
+    parser.add_argument("--time", default=None, help="time index or ISO time (default: every time for invert)")
+    parser.add_argument("--member", default=None)
+    parser.add_argument("--target", default=None, help="lon,lat,pressure_hPa (default: storm centre, 2nd level)")
+    parser.add_argument("--pieces", default=None, help="JSON file with a list of pieces (default: standard pieces)")
+    parser.add_argument("--reference", default="time_mean", help="time_mean | area_mean | zonal_mean | PATH")
+    parser.add_argument("-o", "--output", default=None, help="write the attribution table(s) as CSV")
+    parser.add_argument("--overwrite", action="store_true", help="replace an existing output file")
+    args = parser.parse_args(argv)
+    path = args.case or default_case_path()
+    case = wb.open_case(path)
+    if args.command == "info":
+        print(case)
+        return 0
+    pieces = None
+    if args.pieces:
+        from .inversion.pieces import Piece
+
+        try:
+            raw = json.loads(Path(args.pieces).read_text())
+        except (OSError, ValueError) as exc:
+            raise InputError(f"Cannot read pieces from {args.pieces!r}: {exc}") from exc
+        pieces = [Piece.from_dict(d) for d in raw]
+    times = range(case.times.size) if args.time is None else [
+        int(args.time) if str(args.time).lstrip("-").isdigit() else args.time]
+    import pandas as pd
+
+    tables = []
+    print(case)
+    print("\nDiagnostic analysis of model/analysis data, not a forecast or warning. Decisions follow "
+          "the official warnings of the responsible meteorological service and local procedures.\n")
+    for t in times:
+        _, table, target = analyse(case, t, args.member, pieces, _parse_target(args.target), args.reference)
+        ti = case.time_index(t)
+        label = str(case.times[ti])[:16]
+        print(f"{label}  target {target[0]:.1f} E, {target[1]:.1f} N, {target[2]:g} hPa")
+        with pd.option_context("display.width", 160, "display.max_columns", 20, "display.precision", 2):
+            print(table[["height_anomaly", "wind_speed", "relative_vorticity", "height_share_pct"]].to_string(
+                formatters={"relative_vorticity": "{:.2e}".format}))
+        print()
+        tables.append(table.assign(time=label).reset_index())
+    if args.output:
+        from .export import atomic_target
+
+        with atomic_target(args.output, overwrite=args.overwrite, what="attribution table") as tmp:
+            tmp.write_text(pd.concat(tables).to_csv(index=False))
+        print(f"wrote {args.output}")
+    return 0

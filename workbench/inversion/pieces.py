@@ -1,0 +1,454 @@
+"""Piecewise QG inversion: pieces, their masks and forcings, inversion, attribution.
+
+QG inversion is linear, so the QG PV anomaly and the boundary data can be
+split into pieces whose balanced flows add up exactly to the full inversion
+(piecewise inversion; Davis & Emanuel 1991, Mon. Wea. Rev. 119, 1929-1953).
+
+A :class:`Piece` claims part of the forcing of an *anomaly dataset* (from
+``Case.anomaly``; see DEVELOPERS.md):
+
+* ``interior``: q' inside a 3-D mask = lon/lat polygon x layer (pressure in
+  hPa or theta in K) x sign/threshold on the Ertel PV anomaly (PVU) x
+  optional relative-humidity floor (a "moist" piece);
+* ``bottom`` / ``top``: the theta' on the lowest / highest level (a PV
+  sheet), inside the polygon and with the sign (+1 warm, -1 cold, 0 both);
+* ``lateral``: the Dirichlet data phi' on the lateral boundary;
+* ``remainder``: everything no other piece claims.
+
+Rules (documented for users): pieces claim in list order and the first claim
+wins where interior (or boundary) pieces overlap; the remainder receives the
+interior q' outside all interior pieces, the boundary theta' outside all
+bottom/top pieces and the lateral data if no lateral piece exists.  It is
+always computed (under the name of the remainder piece if the list has one,
+else ``"remainder"``), so the pieces always add up to the full inversion.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+import xarray as xr
+
+from workbench.errors import InputError, PieceError
+from workbench.inversion.fields import balanced_fields, grid_for, spatial_dims
+from workbench.inversion.solver import get_solver
+
+__all__ = [
+    "Piece",
+    "KINDS",
+    "piece_mask",
+    "piece_forcing",
+    "invert_pieces",
+    "attribution",
+    "polygon_mask",
+]
+
+KINDS = ("interior", "bottom", "top", "lateral", "remainder")
+LAYER_COORDS = ("pressure", "theta")
+
+
+@dataclass
+class Piece:
+    """One piece of a piecewise inversion (plain data; see the module docstring).
+
+    Attributes
+    ----------
+    name : str
+    kind : "interior", "bottom", "top", "lateral" or "remainder"
+    polygon : list of (lon, lat) in degrees, or None for the whole domain
+    layer : (lo, hi) or None for all levels; hPa if ``layer_coord`` is
+        "pressure", K if "theta" (order of lo/hi does not matter)
+    layer_coord : "pressure" or "theta"
+    sign : +1 (positive anomalies), -1 (negative), 0 (both)
+    threshold : PVU, minimum |Ertel PV anomaly| of the sign (interior only)
+    rh_min : % or None; a moist piece keeps points with RH >= rh_min
+        (70-90 % is common practice)
+    visible : bool (views only; invisible pieces still count in the sum)
+    colour : str or None
+    """
+
+    name: str
+    kind: str = "interior"
+    polygon: list | None = None
+    layer: tuple | None = None
+    layer_coord: str = "pressure"
+    sign: int = 1
+    threshold: float = 0.0
+    rh_min: float | None = None
+    visible: bool = True
+    colour: str | None = None
+
+    def __post_init__(self):
+        self.validate()
+
+    def validate(self):
+        """Check and normalise the fields; raise PieceError naming the field and the fix."""
+        if not isinstance(self.name, str) or not self.name.strip():
+            raise PieceError("piece name: give a non-empty text name.")
+        who = f"piece {self.name!r}"
+        if self.name == "total":
+            raise PieceError(f"{who}: the name 'total' is reserved for the full inversion; choose another name.")
+        if self.kind not in KINDS:
+            raise PieceError(f"{who}: kind {self.kind!r} is unknown; use one of {', '.join(KINDS)}.")
+        if self.polygon is not None:
+            try:
+                poly = [(float(x), float(y)) for x, y in self.polygon]
+            except (TypeError, ValueError):
+                raise PieceError(f"{who}: polygon must be a list of (lon, lat) pairs in degrees.") from None
+            if len(poly) < 3:
+                raise PieceError(f"{who}: polygon needs at least 3 vertices, got {len(poly)}; draw a closed area.")
+            if not all(math.isfinite(x) and math.isfinite(y) for x, y in poly):
+                raise PieceError(f"{who}: polygon has non-finite vertices.")
+            if any(abs(y) > 90 for _, y in poly):
+                raise PieceError(f"{who}: polygon latitudes must be within -90..90 degrees.")
+            arr = np.array(poly)
+            area = 0.5 * np.sum(arr[:, 0] * np.roll(arr[:, 1], -1) - np.roll(arr[:, 0], -1) * arr[:, 1])
+            if abs(area) == 0.0:
+                raise PieceError(f"{who}: polygon encloses no area; draw at least three distinct points.")
+            self.polygon = poly
+        if self.layer is not None:
+            try:
+                lo, hi = (float(v) for v in self.layer)
+            except (TypeError, ValueError):
+                raise PieceError(f"{who}: layer must be a pair (lo, hi) or None.") from None
+            if not (math.isfinite(lo) and math.isfinite(hi)) or lo == hi:
+                raise PieceError(f"{who}: layer {self.layer!r} must be two different finite values.")
+            self.layer = (min(lo, hi), max(lo, hi))
+        if self.layer_coord not in LAYER_COORDS:
+            raise PieceError(f"{who}: layer_coord {self.layer_coord!r} must be 'pressure' (hPa) or 'theta' (K).")
+        if self.layer is not None and self.layer_coord == "pressure" and self.layer[0] <= 0:
+            raise PieceError(f"{who}: a pressure layer is in hPa and must be positive, got {self.layer}.")
+        if self.sign not in (-1, 0, 1):
+            raise PieceError(f"{who}: sign must be +1 (positive anomalies), -1 (negative) or 0 (both).")
+        self.sign = int(self.sign)
+        try:
+            self.threshold = float(self.threshold)
+        except (TypeError, ValueError):
+            raise PieceError(f"{who}: threshold must be a number of PVU.") from None
+        if not math.isfinite(self.threshold) or self.threshold < 0:
+            raise PieceError(f"{who}: threshold must be >= 0 PVU (it applies to |PV anomaly| of the sign).")
+        if self.rh_min is not None:
+            try:
+                self.rh_min = float(self.rh_min)
+            except (TypeError, ValueError):
+                raise PieceError(f"{who}: rh_min must be a percentage or None.") from None
+            if not 0.0 <= self.rh_min <= 100.0:
+                raise PieceError(f"{who}: rh_min must lie between 0 and 100 %.")
+        self.visible = bool(self.visible)
+        if self.colour is not None and not isinstance(self.colour, str):
+            raise PieceError(f"{who}: colour must be a text colour (e.g. '#cc3311') or None.")
+
+    def to_dict(self) -> dict:
+        """Plain JSON types (lists, floats, str, bool, None)."""
+        d = asdict(self)
+        d["polygon"] = None if self.polygon is None else [[x, y] for x, y in self.polygon]
+        d["layer"] = None if self.layer is None else [self.layer[0], self.layer[1]]
+        return d
+
+    @classmethod
+    def from_dict(cls, d) -> "Piece":
+        """Build from :meth:`to_dict` output; raises PieceError on bad content."""
+        if not isinstance(d, dict):
+            raise PieceError("piece: expected a mapping of piece fields.")
+        known = set(cls.__dataclass_fields__)
+        unknown = set(d) - known
+        if unknown:
+            raise PieceError(f"piece {d.get('name')!r}: unknown field(s) {', '.join(sorted(unknown))}.")
+        if "name" not in d:
+            raise PieceError("piece: the field 'name' is required.")
+        try:
+            return cls(**d)
+        except TypeError as exc:
+            raise PieceError(f"piece {d.get('name')!r}: {exc}") from None
+
+
+# ---------------------------------------------------------------------------
+# masks
+# ---------------------------------------------------------------------------
+
+
+def _ray_cast(px, py, poly):
+    """Even-odd rule: True where (px, py) lies inside the polygon (arrays broadcast)."""
+    inside = np.zeros(np.broadcast(px, py).shape, dtype=bool)
+    n = len(poly)
+    for k in range(n):
+        x1, y1 = poly[k]
+        x2, y2 = poly[(k + 1) % n]
+        if y1 == y2:
+            continue
+        crosses = (y1 > py) != (y2 > py)
+        xint = x1 + (py - y1) * (x2 - x1) / (y2 - y1)
+        inside ^= crosses & (px < xint)
+    return inside
+
+
+def polygon_mask(polygon, lon, lat):
+    """Bool array (lat, lon): grid points inside the (lon, lat) polygon, even-odd rule.
+
+    Longitudes are compared modulo 360 (the polygon may use -180..180 while
+    the grid uses 0..360, or the reverse).
+    """
+    lon = np.asarray(lon, dtype=float)
+    lat = np.asarray(lat, dtype=float)
+    px, py = np.meshgrid(lon, lat)
+    poly = [(float(x), float(y)) for x, y in polygon]
+    mask = np.zeros(px.shape, dtype=bool)
+    for shift in (-360.0, 0.0, 360.0):
+        mask |= _ray_cast(px + shift, py, poly)
+    return mask
+
+
+def _horizontal_mask(piece, anomaly):
+    ny, nx = anomaly.sizes["latitude"], anomaly.sizes["longitude"]
+    if piece.polygon is None:
+        return np.ones((ny, nx), dtype=bool)
+    return polygon_mask(piece.polygon, anomaly["longitude"].values, anomaly["latitude"].values)
+
+
+def _var(anomaly, name):
+    if name not in anomaly:
+        raise InputError(f"anomaly dataset: variable {name!r} is missing; build it with Case.anomaly().")
+    return anomaly[name]
+
+
+def piece_mask(piece: Piece, anomaly: xr.Dataset) -> xr.DataArray:
+    """3-D bool mask (pressure, latitude, longitude) of an interior (or remainder-style) piece.
+
+    The mask is polygon x layer x sign/threshold on ``ertel_pv_anomaly`` x
+    (``relative_humidity >= rh_min`` if set).  NaN data never belong to a mask.
+    """
+    epv = spatial_dims(_var(anomaly, "ertel_pv_anomaly"), "ertel_pv_anomaly")
+    if epv.ndim != 3:
+        raise InputError("anomaly dataset: expected one time and member (dims pressure, latitude, longitude).")
+    mask = np.broadcast_to(_horizontal_mask(piece, anomaly), epv.shape).copy()
+    if piece.layer is not None:
+        lo, hi = piece.layer
+        if piece.layer_coord == "pressure":
+            php = anomaly["pressure"].values / 100.0
+            mask &= ((php >= lo) & (php <= hi))[:, None, None]
+        else:
+            th = spatial_dims(_var(anomaly, "potential_temperature"), "potential_temperature").values
+            mask &= (th >= lo) & (th <= hi)
+    e = epv.values
+    with np.errstate(invalid="ignore"):
+        if piece.sign > 0:
+            mask &= (e > 0) & (e >= piece.threshold)
+        elif piece.sign < 0:
+            mask &= (e < 0) & (-e >= piece.threshold)
+        else:
+            mask &= np.abs(e) >= piece.threshold
+        if piece.rh_min is not None:
+            if "relative_humidity" not in anomaly:
+                raise PieceError(
+                    f"piece {piece.name!r}: rh_min is set but the case has no relative_humidity; "
+                    "clear rh_min or open data with humidity."
+                )
+            rh = spatial_dims(anomaly["relative_humidity"], "relative_humidity").values
+            mask &= rh >= piece.rh_min
+    return xr.DataArray(
+        mask,
+        dims=("pressure", "latitude", "longitude"),
+        coords={d: anomaly[d] for d in ("pressure", "latitude", "longitude")},
+        name=f"mask_{piece.name}",
+        attrs=dict(long_name=f"mask of piece {piece.name}"),
+    )
+
+
+def _boundary_mask(piece, theta):
+    m = _horizontal_mask(piece, theta)
+    with np.errstate(invalid="ignore"):
+        if piece.sign > 0:
+            m = m & (theta.values > 0)
+        elif piece.sign < 0:
+            m = m & (theta.values < 0)
+    return m
+
+
+def _arrays(anomaly):
+    q = np.nan_to_num(spatial_dims(_var(anomaly, "qgpv_anomaly"), "qgpv_anomaly").values.astype(float))
+    bt = np.nan_to_num(_var(anomaly, "bottom_theta_anomaly").transpose("latitude", "longitude").values.astype(float))
+    tt = np.nan_to_num(_var(anomaly, "top_theta_anomaly").transpose("latitude", "longitude").values.astype(float))
+    lat = np.nan_to_num(
+        spatial_dims(_var(anomaly, "geopotential_anomaly"), "geopotential_anomaly").values.astype(float)
+    )
+    if q.ndim != 3:
+        raise InputError("anomaly dataset: expected one time and member (dims pressure, latitude, longitude).")
+    return q, bt, tt, lat
+
+
+def piece_forcing(piece: Piece, anomaly: xr.Dataset) -> dict:
+    """The forcing a piece claims on its own (ignoring other pieces).
+
+    Returns dict(q=(nz, ny, nx), bottom_theta=(ny, nx), top_theta=(ny, nx),
+    lateral=(nz, ny, nx)) of numpy arrays; for boundary pieces only the one
+    boundary entry is non-zero.  A ``remainder`` piece on its own claims
+    everything (use :func:`invert_pieces` for the remainder of a set).
+    """
+    q, bt, tt, lat = _arrays(anomaly)
+    zero3, zero2 = np.zeros_like(q), np.zeros_like(bt)
+    out = dict(q=zero3, bottom_theta=zero2, top_theta=zero2.copy(), lateral=zero3.copy())
+    if piece.kind == "interior":
+        out["q"] = np.where(piece_mask(piece, anomaly).values, q, 0.0)
+    elif piece.kind == "bottom":
+        out["bottom_theta"] = np.where(_boundary_mask(piece, anomaly["bottom_theta_anomaly"]), bt, 0.0)
+    elif piece.kind == "top":
+        out["top_theta"] = np.where(_boundary_mask(piece, anomaly["top_theta_anomaly"]), tt, 0.0)
+    elif piece.kind == "lateral":
+        out["lateral"] = lat
+    else:  # remainder alone = everything
+        out.update(q=q, bottom_theta=bt, top_theta=tt, lateral=lat)
+    return out
+
+
+def _claims(pieces, anomaly):
+    """Forcing per piece with first-claim-wins, and the remainder's forcing."""
+    q, bt, tt, lat = _arrays(anomaly)
+    claimed_q = np.zeros(q.shape, dtype=bool)
+    claimed_b = np.zeros(bt.shape, dtype=bool)
+    claimed_t = np.zeros(tt.shape, dtype=bool)
+    lateral_claimed = False
+    forcings = []
+    rems = [p for p in pieces if p.kind == "remainder"]
+    if len(rems) > 1:
+        raise PieceError(f"piece {rems[1].name!r}: only one remainder piece is allowed; remove the others.")
+    remainder_name = rems[0].name if rems else "remainder"
+    if not rems and any(p.name == "remainder" for p in pieces):
+        raise PieceError("piece 'remainder': this name is kept for the remainder; rename the piece.")
+    names = set()
+    for pc in pieces:
+        if pc.name in names:
+            raise PieceError(f"piece {pc.name!r}: two pieces share this name; give each piece its own name.")
+        names.add(pc.name)
+        f = dict(q=None, bottom_theta=None, top_theta=None, lateral=None)
+        if pc.kind == "interior":
+            m = piece_mask(pc, anomaly).values & ~claimed_q
+            claimed_q |= m
+            f["q"] = np.where(m, q, 0.0)
+        elif pc.kind == "bottom":
+            m = _boundary_mask(pc, anomaly["bottom_theta_anomaly"]) & ~claimed_b
+            claimed_b |= m
+            f["bottom_theta"] = np.where(m, bt, 0.0)
+        elif pc.kind == "top":
+            m = _boundary_mask(pc, anomaly["top_theta_anomaly"]) & ~claimed_t
+            claimed_t |= m
+            f["top_theta"] = np.where(m, tt, 0.0)
+        elif pc.kind == "lateral":
+            f["lateral"] = np.zeros_like(lat) if lateral_claimed else lat
+            lateral_claimed = True
+        else:  # the remainder is computed after all claims
+            continue
+        forcings.append((pc.name, f))
+    rem = dict(
+        q=np.where(claimed_q, 0.0, q),
+        bottom_theta=np.where(claimed_b, 0.0, bt),
+        top_theta=np.where(claimed_t, 0.0, tt),
+        lateral=None if lateral_claimed else lat,
+    )
+    forcings.append((remainder_name, rem))
+    return forcings, (q, bt, tt, lat)
+
+
+def invert_pieces(anomaly: xr.Dataset, pieces) -> dict:
+    """Invert every piece and the full forcing with one factorised solver.
+
+    Parameters
+    ----------
+    anomaly : Dataset from ``Case.anomaly`` (see the module docstring)
+    pieces : list of Piece (or their dicts)
+
+    Returns
+    -------
+    dict name -> balanced Dataset (:func:`~workbench.inversion.fields.balanced_fields`),
+    one per piece in list order, the remainder, and ``"total"`` (the full
+    inversion, solved separately).  Each Dataset has attrs ``piece`` and
+    ``kind``; the sum over all entries but ``"total"`` equals ``"total"`` to
+    round-off.
+    """
+    plist = [p if isinstance(p, Piece) else Piece.from_dict(p) for p in pieces]
+    sigma = _var(anomaly, "static_stability")
+    f0 = anomaly.attrs.get("f0")
+    qda = spatial_dims(_var(anomaly, "qgpv_anomaly"), "qgpv_anomaly")
+    grid = grid_for(qda, sigma, f0)
+    solver = get_solver(grid)
+    forcings, (q, bt, tt, lat) = _claims(plist, anomaly)
+    n = len(forcings) + 1
+    Q = np.zeros((n,) + q.shape)
+    B = np.zeros((n,) + bt.shape)
+    T = np.zeros((n,) + tt.shape)
+    L = np.zeros((n,) + q.shape)
+    for i, (_, f) in enumerate(forcings):
+        for arr, key in ((Q, "q"), (B, "bottom_theta"), (T, "top_theta"), (L, "lateral")):
+            if f[key] is not None:
+                arr[i] = f[key]
+    Q[-1], B[-1], T[-1], L[-1] = q, bt, tt, lat
+    phi = solver.solve(Q, B, T, L)
+    names = [name for name, _ in forcings] + ["total"]
+    kinds = {p.name: p.kind for p in plist}
+    coords = {d: qda[d] for d in ("pressure", "latitude", "longitude")}
+    phi_da = xr.DataArray(phi, dims=("piece",) + qda.dims[-3:], coords=dict(coords, piece=names))
+    stacked = balanced_fields(phi_da, grid.f0, bottom_theta=B, top_theta=T, grid=grid)
+    out = {}
+    for i, name in enumerate(names):
+        ds = stacked.isel(piece=i, drop=True)
+        ds.attrs = dict(stacked.attrs, piece=name, kind="total" if name == "total" else kinds.get(name, "remainder"))
+        out[name] = ds
+    return out
+
+
+# ---------------------------------------------------------------------------
+# attribution
+# ---------------------------------------------------------------------------
+
+_ATTR_VARS = ("height_anomaly", "u", "v", "relative_vorticity")
+
+
+def attribution(results: dict, lon: float, lat: float, pressure_hpa: float):
+    """Attribution table at a target point: one row per piece, then "sum of pieces" and "full inversion".
+
+    Values are linearly interpolated (bilinear in longitude/latitude, linear
+    in pressure) so that the piece rows add up to the sum row exactly
+    (interpolation is linear).  Columns: ``height_anomaly`` (m), ``u``,
+    ``v``, ``wind_speed`` (m s-1; speed of each row's own wind, so speeds do
+    not add), ``relative_vorticity`` (s-1), ``height_share_pct`` and
+    ``vorticity_share_pct`` (% of the full inversion).  Relative vorticity is
+    NaN within one grid length of the lateral boundary.
+    """
+    import pandas as pd
+
+    if "total" not in results:
+        raise InputError("attribution: results need the 'total' entry from invert_pieces.")
+    ref = results["total"]
+    pmin, pmax = float(ref["pressure"].min()) / 100, float(ref["pressure"].max()) / 100
+    for name, val, lo, hi in (
+        ("longitude", lon, float(ref["longitude"].min()), float(ref["longitude"].max())),
+        ("latitude", lat, float(ref["latitude"].min()), float(ref["latitude"].max())),
+        ("pressure (hPa)", pressure_hpa, pmin, pmax),
+    ):
+        if not (lo <= float(val) <= hi):
+            raise InputError(f"attribution: target {name} {val} is outside the domain ({lo:g} to {hi:g}); pick a point inside.")
+    at = dict(longitude=float(lon), latitude=float(lat), pressure=float(pressure_hpa) * 100.0)
+    rows = {}
+    for name, ds in results.items():
+        if name == "total":
+            continue
+        rows[name] = {v: float(ds[v].interp(at, method="linear")) for v in _ATTR_VARS}
+    summed = {v: float(sum(r[v] for r in rows.values())) for v in _ATTR_VARS}
+    full = {v: float(ref[v].interp(at, method="linear")) for v in _ATTR_VARS}
+    rows["sum of pieces"] = summed
+    rows["full inversion"] = full
+    df = pd.DataFrame.from_dict(rows, orient="index")
+    df["wind_speed"] = np.hypot(df["u"], df["v"])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        df["height_share_pct"] = 100.0 * df["height_anomaly"] / full["height_anomaly"]
+        df["vorticity_share_pct"] = 100.0 * df["relative_vorticity"] / full["relative_vorticity"]
+    df = df[["height_anomaly", "u", "v", "wind_speed", "relative_vorticity", "height_share_pct", "vorticity_share_pct"]]
+    df.index.name = "piece"
+    df.attrs.update(
+        longitude=float(lon),
+        latitude=float(lat),
+        pressure_hpa=float(pressure_hpa),
+        interpolation="bilinear in longitude/latitude, linear in pressure",
+        units=dict(height_anomaly="m", u="m s-1", v="m s-1", wind_speed="m s-1", relative_vorticity="s-1"),
+    )
+    return df

@@ -1,0 +1,379 @@
+"""Session files: the whole workbench state as human-readable JSON.
+
+A session file looks like::
+
+    {
+      "schema": "pv-workbench-session",
+      "schema_version": 1,
+      "saved_at": "2031-01-15T09:00:00Z",
+      "workbench_version": "0.1.0",
+      "case": {"path": "/data/storm.nc", "sha256": "9f2c...", "name": "storm"},
+      ...the state's own keys (State.to_dict()): times/levels, pieces, sections,
+         annotations, figure settings, target...
+    }
+
+Rules (DESIGN.md section 7):
+
+* written atomically (temporary file in the same folder, fsync, ``os.replace``)
+  and never silently overwritten (``overwrite=True`` is needed);
+* read with :func:`json.loads` only: nothing in the file is executed, NaN and
+  Infinity are refused, duplicate keys are refused;
+* the schema name and version are checked; a file from a newer version, or
+  of another kind, is refused with :class:`~workbench.errors.SessionError`;
+* the case is identified by path and SHA-256 of its bytes; a case whose
+  checksum differs from the recorded one is refused, naming both checksums.
+"""
+from __future__ import annotations
+
+import dataclasses
+import json
+import os
+import re
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from workbench.errors import InputError, SessionError, WorkbenchError
+from workbench.export import atomic_target, package_version, utc_now_iso
+
+__all__ = [
+    "FigureSettings",
+    "PROJECTIONS",
+    "SCHEMA",
+    "SCHEMA_VERSION",
+    "session_dict",
+    "save_session",
+    "read_session_file",
+    "check_case",
+    "load_session",
+]
+
+SCHEMA = "pv-workbench-session"
+SCHEMA_VERSION = 1
+#: Session files larger than this are refused (a session is settings, not data).
+MAX_BYTES = 32 * 1024 * 1024
+_ENVELOPE = ("schema", "schema_version", "saved_at", "workbench_version", "case")
+
+
+PROJECTIONS = ("plate_carree", "lambert_conformal", "stereographic", "mercator")
+_CMAP_NAME = re.compile(r"^[A-Za-z0-9_.\-]{1,64}$")
+
+
+@dataclass
+class FigureSettings:
+    """How the static figures look (plain data, saved in sessions as ``figure_settings``).
+
+    ``projection``: one of :data:`PROJECTIONS`; ``width_in``/``height_in``: figure size
+    (inches; maps take their height from the domain's shape); ``dpi``: PNG resolution;
+    ``colour_map``: a key of ``workbench.views.static.COLOUR_MAPS`` or a matplotlib name
+    (None: the field's own); ``levels``: shading levels in display units (None: automatic);
+    ``contour_field``: a second map field drawn as black contours on the same surface;
+    ``pv_contour``: the PV value (PVU) drawn as a thick line on PV maps (None: none);
+    ``overlay_level_hpa``: level of the balanced-flow overlay when the state has none;
+    ``vector_spacing``: about this many wind arrows across the map;
+    ``coastlines``/``gridlines``: draw them.
+    """
+
+    projection: str = "plate_carree"
+    width_in: float = 10.0
+    height_in: float = 8.0
+    dpi: int = 150
+    colour_map: str | None = None
+    levels: list | None = None
+    contour_field: str | None = None
+    pv_contour: float | None = 2.0
+    overlay_level_hpa: float = 850.0
+    vector_spacing: int = 22
+    coastlines: bool = True
+    gridlines: bool = True
+
+    def __post_init__(self):
+        if self.projection not in PROJECTIONS:
+            raise InputError(
+                f"figure projection {self.projection!r} is unknown; use one of {', '.join(PROJECTIONS)}"
+            )
+        for name, lo, hi in (("width_in", 3, 40), ("height_in", 2, 40), ("dpi", 30, 1200),
+                             ("overlay_level_hpa", 1, 1100), ("vector_spacing", 4, 80)):
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or not lo <= value <= hi:
+                raise InputError(f"figure setting {name}={value!r} must be a number in [{lo}, {hi}]")
+        self.dpi = int(self.dpi)
+        self.vector_spacing = int(self.vector_spacing)
+        self.width_in, self.height_in = float(self.width_in), float(self.height_in)
+        self.overlay_level_hpa = float(self.overlay_level_hpa)
+        if self.colour_map is not None and not (
+            isinstance(self.colour_map, str) and _CMAP_NAME.match(self.colour_map)
+        ):
+            raise InputError(f"figure setting colour_map={self.colour_map!r} must be a colour-map name")
+        if self.contour_field is not None and not (
+            isinstance(self.contour_field, str) and _CMAP_NAME.match(self.contour_field)
+        ):
+            raise InputError(f"figure setting contour_field={self.contour_field!r} must be a field name")
+        if self.levels is not None:
+            try:
+                lv = [float(x) for x in self.levels]
+            except (TypeError, ValueError):
+                raise InputError("figure setting levels must be a list of numbers") from None
+            if len(lv) < 2 or any(b <= a for a, b in zip(lv, lv[1:])):
+                raise InputError("figure setting levels must be at least 2 increasing numbers")
+            self.levels = lv
+        if self.pv_contour is not None:
+            if isinstance(self.pv_contour, bool) or not isinstance(self.pv_contour, (int, float)):
+                raise InputError(f"figure setting pv_contour={self.pv_contour!r} must be a number (PVU)")
+            self.pv_contour = float(self.pv_contour)
+        for name in ("coastlines", "gridlines"):
+            if not isinstance(getattr(self, name), bool):
+                raise InputError(f"figure setting {name} must be true or false")
+
+    def to_dict(self) -> dict[str, Any]:
+        return dataclasses.asdict(self)
+
+    @classmethod
+    def from_dict(cls, d) -> "FigureSettings":
+        """From a dict (unknown keys refused), a FigureSettings, or None (defaults)."""
+        if d is None:
+            return cls()
+        if isinstance(d, FigureSettings):
+            return d
+        if not isinstance(d, dict):
+            raise InputError("figure settings must be a JSON object")
+        known = {f.name for f in dataclasses.fields(cls)}
+        unknown = sorted(set(d) - known)
+        if unknown:
+            raise InputError(
+                f"unknown figure setting(s) {', '.join(unknown)}; known: {', '.join(sorted(known))}"
+            )
+        return cls(**d)
+
+
+def _case_of(state):
+    case = getattr(state, "case", None)
+    if case is None:
+        raise SessionError("the state has no case; open a case before saving the session")
+    return case
+
+
+def _case_block(case, session_path: Path | None) -> dict[str, Any]:
+    source = str(getattr(case, "source", "") or "<in-memory>")
+    block: dict[str, Any] = {
+        "path": source,
+        "sha256": getattr(case, "checksum", None),
+        "name": getattr(case, "name", None),
+    }
+    if source != "<in-memory>":
+        p = Path(source).expanduser().resolve()
+        block["path"] = str(p)
+        if session_path is not None:
+            try:
+                block["relative_path"] = os.path.relpath(p, session_path.resolve().parent)
+            except ValueError:  # different drives (Windows)
+                pass
+    return block
+
+
+def session_dict(state, path=None) -> dict[str, Any]:
+    """The JSON-able session document of ``state`` (envelope + ``state.to_dict()``)."""
+    if not hasattr(state, "to_dict"):
+        raise SessionError(
+            f"cannot save a {type(state).__name__}: a session needs a workbench State "
+            "(with to_dict())"
+        )
+    case = _case_of(state)
+    body = state.to_dict()
+    if not isinstance(body, dict):
+        raise SessionError("State.to_dict() did not return a dict; cannot save the session")
+    doc: dict[str, Any] = {
+        "schema": SCHEMA,
+        "schema_version": SCHEMA_VERSION,
+        "saved_at": utc_now_iso(),
+        "workbench_version": package_version(),
+    }
+    case_block = _case_block(case, Path(path) if path is not None else None)
+    own_case = body.get("case")
+    if isinstance(own_case, dict):  # keep whatever the state records about its case
+        case_block = {**own_case, **case_block}
+    doc["case"] = case_block
+    for key, value in body.items():
+        if key in _ENVELOPE:
+            continue
+        doc[key] = value
+    if "figure_settings" not in doc:  # the State may not hold them itself
+        doc["figure_settings"] = FigureSettings.from_dict(
+            _settings_dict(getattr(state, "figure_settings", None))
+        ).to_dict()
+    return doc
+
+
+def _settings_dict(value):
+    if value is None or isinstance(value, dict):
+        return value or None
+    if hasattr(value, "to_dict"):
+        return value.to_dict()
+    raise SessionError(f"state.figure_settings must be a dict or FigureSettings, not {type(value).__name__}")
+
+
+def save_session(state, path, overwrite: bool = False) -> Path:
+    """Write ``state`` to the JSON session file ``path`` atomically; return the path.
+
+    Refuses (SessionError) when ``path`` exists unless ``overwrite=True``; a
+    failure part-way leaves any previous file intact.
+    """
+    path = Path(path)
+    doc = session_dict(state, path)
+    try:
+        text = json.dumps(doc, indent=2, ensure_ascii=False, allow_nan=False)
+    except ValueError as exc:  # NaN/inf somewhere in the state
+        raise SessionError(
+            f"the state holds a value JSON cannot store ({exc}); "
+            "replace NaN/infinite settings before saving"
+        ) from None
+    except TypeError as exc:
+        raise SessionError(
+            f"State.to_dict() returned something that is not plain JSON ({exc}); "
+            "this is a bug in the state's to_dict"
+        ) from None
+    with atomic_target(path, overwrite=overwrite, error=SessionError, what="session file") as tmp:
+        with open(tmp, "w", encoding="utf-8") as fh:
+            fh.write(text)
+            fh.write("\n")
+            fh.flush()
+            os.fsync(fh.fileno())
+    return path
+
+
+def _no_constants(name):
+    raise SessionError(f"session file holds {name}, which is not valid JSON; fix or re-save it")
+
+
+def _no_duplicates(pairs):
+    out = {}
+    for k, v in pairs:
+        if k in out:
+            raise SessionError(f"session file has the key {k!r} twice; remove one")
+        out[k] = v
+    return out
+
+
+def read_session_file(path) -> dict[str, Any]:
+    """Read and validate a session file's envelope; return the document (nothing executed)."""
+    path = Path(path)
+    if not path.is_file():
+        raise SessionError(f"session file {path} not found; check the path")
+    size = path.stat().st_size
+    if size > MAX_BYTES:
+        raise SessionError(
+            f"session file {path} is {size} bytes, more than the {MAX_BYTES} a session can be; "
+            "it is probably not a session file"
+        )
+    raw = path.read_bytes()
+    try:
+        doc = json.loads(
+            raw.decode("utf-8"), parse_constant=_no_constants, object_pairs_hook=_no_duplicates
+        )
+    except UnicodeDecodeError:
+        raise SessionError(f"session file {path} is not UTF-8 text; it is not a session file") from None
+    except json.JSONDecodeError as exc:
+        raise SessionError(
+            f"session file {path} is not valid JSON (line {exc.lineno}, column {exc.colno}: "
+            f"{exc.msg}); restore it from a backup or save the session again"
+        ) from None
+    if not isinstance(doc, dict) or doc.get("schema") != SCHEMA:
+        found = doc.get("schema") if isinstance(doc, dict) else type(doc).__name__
+        raise SessionError(
+            f"{path} is not a PV Workbench session (schema {found!r}, expected {SCHEMA!r})"
+        )
+    version = doc.get("schema_version")
+    if isinstance(version, bool) or not isinstance(version, int):
+        raise SessionError(f"session file {path} has no integer schema_version; it cannot be read")
+    if version != SCHEMA_VERSION:
+        newer = version > SCHEMA_VERSION
+        raise SessionError(
+            f"session file {path} has schema_version {version}; this PV Workbench "
+            f"({package_version()}) reads version {SCHEMA_VERSION} only"
+            + ("; update PV Workbench to open it" if newer else "; re-create the session")
+        )
+    case = doc.get("case")
+    if not isinstance(case, dict) or not isinstance(case.get("path"), str):
+        raise SessionError(f"session file {path} has no case path; it cannot be reopened")
+    return doc
+
+
+def check_case(doc: dict[str, Any], case, session_path=None) -> None:
+    """Refuse (SessionError) a case whose checksum differs from the session's record."""
+    want = doc["case"].get("sha256")
+    have = getattr(case, "checksum", None)
+    if want is None:
+        return  # nothing recorded (an in-memory case saved without a checksum)
+    if have != want:
+        where = f" {session_path}" if session_path else ""
+        raise SessionError(
+            f"session{where} was saved with case {doc['case'].get('path')!r} of sha256 {want}, "
+            f"but the case given ({getattr(case, 'source', '?')}) has sha256 {have}. "
+            "Open the same case file the session was saved with, or re-save the session with "
+            "this case (save_session(..., overwrite=True))"
+        )
+
+
+def _open_recorded_case(doc, session_path: Path):
+    block = doc["case"]
+    recorded = block["path"]
+    if recorded == "<in-memory>":
+        raise SessionError(
+            f"session {session_path} was saved from an in-memory case; pass case=... to "
+            "load_session to say which data to use"
+        )
+    candidates = [Path(recorded).expanduser()]
+    rel = block.get("relative_path")
+    if isinstance(rel, str):
+        candidates.append(session_path.resolve().parent / rel)
+    for cand in candidates:
+        if cand.exists():
+            from workbench.io import open_case
+
+            try:
+                return open_case(cand)
+            except WorkbenchError as exc:
+                raise SessionError(f"the session's case {cand} cannot be opened: {exc}") from exc
+    raise SessionError(
+        f"the session's case file {recorded} was not found"
+        + (f" (nor {candidates[1]})" if len(candidates) > 1 else "")
+        + "; pass case=open_case(<its new path>) to load_session"
+    )
+
+
+def state_body(doc: dict[str, Any]) -> dict[str, Any]:
+    """The part of a session document that ``State.from_dict`` reads (envelope removed,
+    except ``case``, which is passed through as recorded)."""
+    return {k: v for k, v in doc.items() if k not in _ENVELOPE or k == "case"}
+
+
+def load_session(path, case=None):
+    """Read the session file ``path`` and rebuild its State.
+
+    ``case``: the Case to use; when omitted, the case is opened from the path the
+    session recorded (or from the recorded path relative to the session file).
+    Either way its SHA-256 must match the recorded one.
+    """
+    path = Path(path)
+    doc = read_session_file(path)
+    if case is None:
+        case = _open_recorded_case(doc, path)
+    check_case(doc, case, path)
+    from workbench.state import State
+
+    try:
+        settings = FigureSettings.from_dict(doc.get("figure_settings"))
+        state = State.from_dict(state_body(doc), case)
+        if not getattr(state, "figure_settings", None):
+            # the State keeps them as a plain dict (param attribute or instance attribute)
+            state.figure_settings = settings.to_dict()
+        return state
+    except WorkbenchError as exc:
+        if isinstance(exc, SessionError):
+            raise
+        raise SessionError(f"session {path} has an invalid entry: {exc}") from exc
+    except (KeyError, TypeError, ValueError) as exc:
+        raise SessionError(
+            f"session {path} has an invalid or missing entry ({type(exc).__name__}: {exc}); "
+            "fix that entry or save the session again"
+        ) from exc

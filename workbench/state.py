@@ -1,0 +1,505 @@
+"""The shared state of a workbench session (``param`` only: no widgets, no plotting).
+
+The :class:`State` holds what the user has chosen on top of a :class:`~workbench.case.Case`:
+time and member, the map surface and field, the overlay level, the reference state, the
+tropopause threshold, the pieces of a piecewise inversion, the section lines, the annotations
+and the target point of the attribution table, plus a status message and a busy flag.
+
+Widgets change the state; views watch it (``state.param.watch``) and redraw. Everything the
+state holds converts to plain JSON types with :meth:`State.to_dict` and back with
+:meth:`State.from_dict` (the session files of :mod:`workbench.session` are built from these).
+"""
+from __future__ import annotations
+
+import re
+from typing import Any
+
+import numpy as np
+import param
+
+from .errors import InputError, PieceError, WorkbenchError
+from .sections import Section
+
+__all__ = ["State", "Section", "BOUNDARY_PIECES", "parse_surface", "surface_label"]
+
+#: The boundary pieces one call away: State.add_boundary_piece(kind).
+BOUNDARY_PIECES = {
+    "bottom": "surface theta'",
+    "top": "lid theta'",
+    "lateral": "lateral boundary",
+    "remainder": "remainder",
+}
+
+#: Colour-blind-safe colours for new pieces, in turn.
+PIECE_COLOURS = ("#0072b2", "#d55e00", "#009e73", "#cc79a7", "#e69f00", "#56b4e9", "#f0e442",
+                 "#000000")
+REFERENCE_KINDS = ("time_mean", "area_mean", "zonal_mean")
+_NAME_OK = re.compile(r"^[^\x00-\x1f]{1,60}$")
+
+
+def parse_surface(value):
+    """Normalise a map surface: a theta value (float, K), ``"tropopause"`` or ``"<p>hPa"``.
+
+    Accepts numbers, ``"320"``, ``"320 K"``, ``"tropopause"`` and ``"500hPa"``/``"500 hPa"``;
+    raises :class:`InputError` otherwise.
+    """
+    if isinstance(value, (bool, np.bool_)):
+        raise InputError(f"map surface {value!r} must be a theta value in K, 'tropopause' or 'NNNhPa'")
+    if isinstance(value, (int, float, np.integer, np.floating)):
+        v = float(value)
+        if not (150.0 <= v <= 1000.0):
+            raise InputError(f"map surface theta = {v:g} K is outside 150..1000 K; pick an "
+                             "isentropic surface such as 320 K")
+        return v
+    s = str(value).strip().lower().replace(" ", "")
+    if s in ("tropopause", "dynamictropopause"):
+        return "tropopause"
+    if s.endswith("hpa"):
+        try:
+            p = float(s[:-3])
+        except ValueError:
+            p = None
+        if p is not None and 1.0 <= p <= 1100.0:
+            return f"{p:g}hPa"
+    if s.endswith("k"):
+        s = s[:-1]
+    try:
+        return parse_surface(float(s))
+    except ValueError:
+        raise InputError(f"map surface {value!r} is not understood: give theta in K (e.g. 320), "
+                         "'tropopause' or a pressure level such as '500hPa'") from None
+
+
+def surface_label(surface, threshold=2.0) -> str:
+    """Human label of a surface for titles: '320 K', 'dynamic tropopause (2 PVU)', '500 hPa'."""
+    if surface == "tropopause":
+        return f"dynamic tropopause ({threshold:g} PVU)"
+    if isinstance(surface, str) and surface.endswith("hPa"):
+        return surface[:-3] + " hPa"
+    return f"{float(surface):g} K"
+
+
+class Surface(param.Parameter):
+    """A map surface parameter (validated and normalised by :func:`parse_surface`)."""
+
+    def _validate(self, val):
+        super()._validate(val)
+        parse_surface(val)
+
+    def __set__(self, obj, val):
+        super().__set__(obj, parse_surface(val))
+
+
+def _piece_api():
+    from .inversion import pieces
+
+    return pieces
+
+
+class State(param.Parameterized):
+    """What the user has chosen on a case; the shared model of the views and the app.
+
+    All settings are ``param`` parameters, so widgets can be generated from them and views
+    can watch them. Pieces are :class:`workbench.inversion.pieces.Piece` objects; sections
+    are :class:`workbench.sections.Section`; annotations come from
+    :mod:`workbench.annotations`.
+    """
+
+    case = param.Parameter(default=None, doc="The workbench.Case being diagnosed.")
+    time_index = param.Integer(default=0, bounds=(0, None), doc="Index into case.times.")
+    member = param.Integer(default=None, allow_None=True, bounds=(0, None),
+                           doc="Ensemble member index (None when the case has no members).")
+    surface = Surface(default=320.0, doc="Map surface: theta (K), 'tropopause' or 'NNNhPa'.")
+    field = param.Selector(default="ertel_pv", objects=["ertel_pv", "ertel_pv_anomaly",
+                           "potential_temperature", "pressure", "wind_speed",
+                           "geopotential_height", "u", "v"], doc="Map field (case.MAP_FIELDS).")
+    overlay_level = param.Number(default=850.0, bounds=(1.0, 1100.0),
+                                 doc="Pressure level (hPa) of the balanced-flow overlay.")
+    reference = param.String(default="time_mean",
+                             doc="Reference state: time_mean, area_mean, zonal_mean or a "
+                                 "climatology file path.")
+    threshold = param.Number(default=2.0, bounds=(0.5, 10.0),
+                             doc="Dynamic-tropopause PV threshold (PVU).")
+    pieces = param.List(default=[], doc="Pieces of the piecewise inversion.")
+    sections = param.List(default=[], item_type=Section, doc="Section lines.")
+    active_section = param.Integer(default=None, allow_None=True,
+                                   doc="Index of the section shown (None: none).")
+    annotations = param.List(default=[], doc="Labels, arrows and regions (workbench.annotations).")
+    target = param.NumericTuple(default=None, length=3, allow_None=True,
+                                doc="Attribution target point (lon, lat, pressure hPa).")
+    status = param.String(default="", doc="Status message for the user.")
+    status_level = param.Selector(default="info", objects=["info", "success", "warning", "error"])
+    busy = param.Boolean(default=False, doc="True while a computation runs.")
+
+    def __init__(self, case=None, **params):
+        super().__init__(case=case, **params)
+        if case is not None:
+            self._fit_to_case()
+
+    # ------------------------------------------------------------------ case and selection
+    def _fit_to_case(self):
+        case = self.case
+        self.param.time_index.bounds = (0, max(0, len(case.times) - 1))
+        if self.time_index >= len(case.times):
+            self.time_index = 0
+        if case.members is None:
+            self.member = None
+        elif self.member is None:
+            self.member = 0
+        fields = list(getattr(case, "MAP_FIELDS", self.param.field.objects))
+        self.param.field.objects = fields
+        levels = [float(x) for x in case.levels_hpa]
+        if not any(abs(self.overlay_level - p) < 0.5 for p in levels):
+            self.overlay_level = min(levels, key=lambda p: abs(p - 850.0))
+
+    def set_case(self, case):
+        """Switch to another case: pieces, sections and target are cleared (they belong to
+        the old grid); settings that still apply are kept."""
+        with param.parameterized.batch_call_watchers(self):
+            self.pieces = []
+            self.sections = []
+            self.active_section = None
+            self.target = None
+            self.annotations = []
+            self.case = case
+            self._fit_to_case()
+
+    @property
+    def time(self):
+        """The selected time index (what ``case.at(time=...)`` takes)."""
+        return self.time_index
+
+    @property
+    def valid_time(self):
+        """The selected time as numpy datetime64."""
+        return self.case.times[self.time_index]
+
+    @property
+    def time_labels(self):
+        return [str(t)[:16].replace("T", " ") + " UTC" for t in self.case.times]
+
+    def _sel(self):
+        return dict(time=self.time_index, member=self.member)
+
+    # ------------------------------------------------------------------ status
+    def set_status(self, message, level="info"):
+        """Show ``message`` in the status area (level: info, success, warning, error)."""
+        self.status_level = level
+        self.status = str(message)
+
+    def report(self, exc):
+        """Show an exception in the status area (WorkbenchError messages verbatim)."""
+        if isinstance(exc, WorkbenchError):
+            self.set_status(str(exc), "error")
+        else:
+            self.set_status(f"Unexpected {type(exc).__name__}: {exc}", "error")
+
+    # ------------------------------------------------------------------ map fields
+    def map_field(self):
+        """The 2-D field of the map (read from the case; cached there)."""
+        return self.case.map_field(self.field, self.surface, reference=self.reference,
+                                   threshold=self.threshold, **self._sel())
+
+    # ------------------------------------------------------------------ pieces
+    @property
+    def piece_names(self):
+        return [p.name for p in self.pieces]
+
+    def piece(self, name):
+        """The piece called ``name`` (PieceError if there is none)."""
+        for p in self.pieces:
+            if p.name == name:
+                return p
+        raise PieceError(f"there is no piece called {name!r}; pieces: "
+                         f"{', '.join(self.piece_names) or 'none yet'}")
+
+    def new_piece_name(self, base="piece"):
+        """``base`` if unused, else ``base 2``, ``base 3``..."""
+        names = set(self.piece_names)
+        if base not in names:
+            return base
+        k = 2
+        while f"{base} {k}" in names:
+            k += 1
+        return f"{base} {k}"
+
+    def _next_colour(self):
+        used = {getattr(p, "colour", None) for p in self.pieces}
+        for c in PIECE_COLOURS:
+            if c not in used:
+                return c
+        return PIECE_COLOURS[len(self.pieces) % len(PIECE_COLOURS)]
+
+    def _check_name(self, name, exclude=None, kind=None):
+        if not isinstance(name, str) or not _NAME_OK.match(name) or not name.strip():
+            raise PieceError(f"piece name {name!r} must be 1-60 printable characters")
+        if name == "total":
+            raise PieceError("'total' is the full inversion; give the piece another name")
+        if name == "remainder" and kind != "remainder":
+            raise PieceError("'remainder' is kept for the remainder piece; give the piece another name")
+        if name in self.piece_names and name != exclude:
+            raise PieceError(f"a piece called {name!r} exists already; pick another name")
+
+    def add_piece(self, piece=None, **kwargs):
+        """Add a Piece (or build one from keyword arguments of ``Piece``); returns it.
+
+        A missing name becomes ``piece``, ``piece 2``...; a missing colour is the next of a
+        colour-blind-safe set. Names must be unique and not ``total``.
+        """
+        api = _piece_api()
+        if piece is None:
+            kwargs.setdefault("name", self.new_piece_name())
+            kwargs.setdefault("colour", self._next_colour())
+            piece = api.Piece(**kwargs)
+        elif kwargs:
+            raise PieceError("give either a Piece or keyword arguments for a new one, not both")
+        elif isinstance(piece, dict):
+            piece = api.Piece.from_dict(piece)
+        self._check_name(piece.name, kind=piece.kind)
+        if piece.kind == "remainder" and any(p.kind == "remainder" for p in self.pieces):
+            raise PieceError("there is a remainder piece already; only one is allowed")
+        self.pieces = list(self.pieces) + [piece]
+        return piece
+
+    def add_boundary_piece(self, kind):
+        """Add the boundary piece ``kind`` ("bottom", "top", "lateral" or "remainder")."""
+        if kind not in BOUNDARY_PIECES:
+            raise PieceError(f"boundary piece {kind!r} is unknown; use one of "
+                             f"{', '.join(BOUNDARY_PIECES)}")
+        for p in self.pieces:
+            if p.kind == kind:
+                raise PieceError(f"the {BOUNDARY_PIECES[kind]} piece exists already "
+                                 f"(called {p.name!r})")
+        return self.add_piece(name=self.new_piece_name(BOUNDARY_PIECES[kind]), kind=kind)
+
+    def _replace(self, name, **changes):
+        api = _piece_api()
+        new = []
+        for p in self.pieces:
+            if p.name == name:
+                d = p.to_dict()
+                d.update(changes)
+                p = api.Piece.from_dict(d)
+            new.append(p)
+        self.pieces = new
+
+    def remove_piece(self, name):
+        """Delete the piece ``name``."""
+        self.piece(name)
+        self.pieces = [p for p in self.pieces if p.name != name]
+
+    def rename_piece(self, old, new):
+        """Rename a piece (unique, not 'total')."""
+        self.piece(old)
+        new = str(new).strip()
+        if new == old:
+            return
+        self._check_name(new, exclude=old, kind=self.piece(old).kind)
+        self._replace(old, name=new)
+
+    def toggle_piece(self, name, visible=None):
+        """Show/hide a piece's balanced flow on the map (``visible`` None flips it)."""
+        p = self.piece(name)
+        vis = (not p.visible) if visible is None else bool(visible)
+        self._replace(name, visible=vis)
+
+    # ------------------------------------------------------------------ inversion
+    def results(self):
+        """Balanced fields of every piece (and ``"total"``), from ``case.inversion`` (cached
+        there per time, member, reference and pieces). Empty dict when there are no pieces."""
+        if not self.pieces:
+            return {}
+        return self.case.inversion(list(self.pieces), reference=self.reference, **self._sel())
+
+    def visible_results(self):
+        """Results of the visible pieces only (no 'total')."""
+        res = self.results()
+        return {p.name: res[p.name] for p in self.pieces if p.visible and p.name in res}
+
+    def overlay(self):
+        """The balanced flow drawn over the map: the sum of the visible pieces' balanced
+        ``u``, ``v`` and ``height_anomaly`` at the overlay level (pieces add linearly),
+        a Dataset (latitude, longitude) with attrs ``pieces`` (names) and ``level_hpa``;
+        None when no piece is visible."""
+        vis = self.visible_results()
+        if not vis:
+            return None
+        names = list(vis)
+        first = vis[names[0]]
+        p = first["pressure"].values
+        k = int(np.argmin(np.abs(p - self.overlay_level * 100.0)))
+        total = None
+        for n in names:
+            lev = vis[n][["u", "v", "height_anomaly"]].isel(pressure=k, drop=True)
+            total = lev if total is None else total + lev
+        total.attrs = dict(pieces=names, level_hpa=float(p[k]) / 100.0)
+        return total
+
+    def attribution(self, target=None):
+        """Each piece's share at the target point (lon, lat, pressure hPa), a pandas DataFrame
+        from ``workbench.inversion.pieces.attribution`` (pieces plus their sum and the total)."""
+        target = self.target if target is None else target
+        if target is None:
+            raise InputError("no target point set; click a point on the map first")
+        lon, lat, p = (float(x) for x in target)
+        res = self.results()
+        if not res:
+            raise PieceError("there are no pieces yet; lasso an anomaly or add a boundary piece")
+        return _piece_api().attribution(res, lon, lat, p)
+
+    def set_target(self, lon, lat, pressure_hpa=None):
+        """Set the attribution target (pressure defaults to the overlay level)."""
+        d = self.case.domain
+        lon, lat = float(lon), float(lat)
+        if not (d["lat_min"] <= lat <= d["lat_max"] and d["lon_min"] <= lon <= d["lon_max"]):
+            raise InputError(f"target point ({lon:.2f}, {lat:.2f}) is outside the case domain "
+                             f"({d['lon_min']:g}..{d['lon_max']:g} E, {d['lat_min']:g}.."
+                             f"{d['lat_max']:g} N); click inside the map")
+        p = self.overlay_level if pressure_hpa is None else float(pressure_hpa)
+        self.target = (lon, lat, p)
+
+    # ------------------------------------------------------------------ sections
+    def add_section(self, start, end, name=None, npoints=100):
+        """Add a section line (start/end as (lon, lat)) and make it the active one."""
+        sec = Section((float(start[0]), float(start[1])), (float(end[0]), float(end[1])),
+                      name or f"section {len(self.sections) + 1}", int(npoints))
+        with param.parameterized.batch_call_watchers(self):
+            self.sections = list(self.sections) + [sec]
+            self.active_section = len(self.sections) - 1
+        return sec
+
+    def remove_section(self, index):
+        secs = list(self.sections)
+        if not 0 <= index < len(secs):
+            raise InputError(f"section index {index} is out of range (0..{len(secs) - 1})")
+        del secs[index]
+        with param.parameterized.batch_call_watchers(self):
+            self.sections = secs
+            self.active_section = (len(secs) - 1) if secs else None
+
+    def section(self, index=None, with_pieces=True):
+        """The cross-section Dataset of section ``index`` (default the active one), with the
+        visible pieces' balanced flow and QG omega when there are pieces."""
+        from .sections import cross_section
+
+        index = self.active_section if index is None else index
+        if index is None or not self.sections:
+            raise InputError("no section line yet; draw one on the map")
+        sec = self.sections[index]
+        results = self.visible_results() if with_pieces else None
+        omega = self.omega(list(results)) if results else None
+        return cross_section(self.case, sec.start, sec.end, npoints=sec.npoints,
+                             results=results or None, omega=omega, threshold=self.threshold,
+                             **self._sel())
+
+    def omega(self, names=None):
+        """QG omega (Pa s-1) on (pressure, latitude, longitude): a dict with the full flow's
+        omega under ``"full flow"`` and, for each named piece (default: the visible ones),
+        the omega attributable to it (``workbench.inversion.omega.piece_omega``: total omega
+        minus the omega without the piece; these do not add up, Q is bilinear)."""
+        from .inversion import omega as om
+
+        res = self.results()
+        if names is None:
+            names = [p.name for p in self.pieces if p.visible and p.name in res]
+        key = (self.time_index, self.member, self.reference, self._pieces_key(), tuple(names))
+        cache = self.__dict__.setdefault("_omega_cache", {})
+        if key in cache:
+            return cache[key]
+        sigma = self.case.sigma(self.reference)
+        f0 = self.case.f0
+        anom = self.case.anomaly(reference=self.reference, **self._sel())
+        # the full geopotential with below-ground points taken from the reference
+        full = (self.case.reference(self.reference)["geopotential"]
+                + anom["geopotential_anomaly"]).transpose("pressure", "latitude", "longitude")
+        out = {"full flow": om.qg_omega(full, sigma, f0)}
+        for n in names:
+            out[n] = om.piece_omega(full, res[n]["geopotential_anomaly"], sigma, f0)
+        if len(cache) > 16:
+            cache.clear()
+        cache[key] = out
+        return out
+
+    def _pieces_key(self):
+        import json
+
+        return json.dumps([p.to_dict() for p in self.pieces], sort_keys=True, default=str)
+
+    # ------------------------------------------------------------------ annotations
+    def add_annotation(self, annotation):
+        from .annotations import annotations_from_list
+
+        self.annotations = annotations_from_list(list(self.annotations) + [annotation])
+        return annotation
+
+    # ------------------------------------------------------------------ serialisation
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON types: settings, pieces, sections, annotations, target."""
+        from .annotations import annotations_to_list
+
+        case = self.case
+        d: dict[str, Any] = {
+            "time_index": int(self.time_index),
+            "time": str(case.times[self.time_index])[:19] if case is not None else None,
+            "member": None if self.member is None else int(self.member),
+            "surface": self.surface,
+            "field": self.field,
+            "overlay_level_hpa": float(self.overlay_level),
+            "reference": self.reference,
+            "tropopause_threshold_pvu": float(self.threshold),
+            "pieces": [p.to_dict() for p in self.pieces],
+            "sections": [s.to_dict() for s in self.sections],
+            "active_section": self.active_section,
+            "annotations": annotations_to_list(self.annotations),
+            "target": None if self.target is None else [float(x) for x in self.target],
+        }
+        if case is not None:
+            d["case"] = {"name": case.name, "path": str(case.source), "sha256": case.checksum}
+        return d
+
+    @classmethod
+    def from_dict(cls, d, case):
+        """Rebuild a State on ``case`` from :meth:`to_dict` output (validating every entry)."""
+        from .annotations import annotations_from_list
+
+        if not isinstance(d, dict):
+            raise InputError("a workbench state must be a JSON object (dict)")
+        api = _piece_api()
+        st = cls(case=case)
+        ti = int(d.get("time_index", 0))
+        t = d.get("time")
+        if t is not None and case is not None:
+            hits = [i for i, x in enumerate(case.times) if str(x)[:19] == str(t)[:19]]
+            if not hits:
+                raise InputError(f"state time {t} is not a time of case {case.name!r}")
+            ti = hits[0]
+        pieces = [api.Piece.from_dict(p) for p in d.get("pieces", [])]
+        names = [p.name for p in pieces]
+        if len(set(names)) != len(names):
+            raise PieceError(f"piece names must be unique; got {names}")
+        sections = [Section.from_dict(s) for s in d.get("sections", [])]
+        active = d.get("active_section")
+        if active is not None and not (isinstance(active, int) and 0 <= active < len(sections)):
+            raise InputError(f"active_section {active!r} does not name one of the "
+                             f"{len(sections)} sections")
+        target = d.get("target")
+        if target is not None:
+            if not (isinstance(target, (list, tuple)) and len(target) == 3):
+                raise InputError(f"target {target!r} must be [lon, lat, pressure_hpa]")
+            target = tuple(float(x) for x in target)
+        with param.parameterized.batch_call_watchers(st):
+            st.time_index = ti
+            if d.get("member") is not None:
+                st.member = int(d["member"])
+            st.surface = d.get("surface", st.surface)
+            if "field" in d:
+                st.field = d["field"]
+            st.overlay_level = float(d.get("overlay_level_hpa", st.overlay_level))
+            st.reference = str(d.get("reference", st.reference))
+            st.threshold = float(d.get("tropopause_threshold_pvu", st.threshold))
+            st.pieces = pieces
+            st.sections = sections
+            st.active_section = active
+            st.annotations = annotations_from_list(d.get("annotations", []))
+            st.target = target
+        return st
