@@ -325,11 +325,13 @@ class Case:
             if isinstance(kind, str) and kind in REFERENCE_KINDS:
                 base = self.data[vars_]
                 dims = [d for d in ("time", "member") if d in base.dims]
-                mean = base.mean(dims).astype("float64").load()
+                mean = base.mean(dims, keep_attrs=True).astype("float64").load()
                 if kind == "area_mean":
-                    mean = xr.Dataset({v: physics.area_mean(mean[v]).broadcast_like(mean[v]) for v in vars_})
+                    mean = xr.Dataset({v: physics.area_mean(mean[v]).broadcast_like(mean[v]).assign_attrs(
+                        mean[v].attrs) for v in vars_})
                 elif kind == "zonal_mean":
-                    mean = xr.Dataset({v: mean[v].mean("longitude").broadcast_like(mean[v]) for v in vars_})
+                    mean = xr.Dataset({v: mean[v].mean("longitude").broadcast_like(mean[v]).assign_attrs(
+                        mean[v].attrs) for v in vars_})
                 return mean.transpose("pressure", "latitude", "longitude")
             if isinstance(kind, str):
                 import os
@@ -341,7 +343,7 @@ class Case:
 
             clim = open_case(kind).data if not isinstance(kind, Case) else kind.data
             dims = [d for d in ("time", "member") if d in clim.dims]
-            clim = clim[vars_].mean(dims)
+            clim = clim[vars_].mean(dims, keep_attrs=True)
             try:
                 clim = clim.interp(pressure=self.data["pressure"], latitude=self.data["latitude"],
                                    longitude=self.data["longitude"])
@@ -349,7 +351,8 @@ class Case:
                 raise GridError(f"The climatology cannot be interpolated to the case grid: {exc}") from exc
             if bool(clim["temperature"].isnull().all()):
                 raise GridError("The climatology does not cover the case's domain and levels.")
-            return clim.astype("float64").load().transpose("pressure", "latitude", "longitude")
+            return clim.astype("float64").load().transpose("pressure", "latitude", "longitude").drop_vars(
+                [c for c in clim.coords if c not in ("pressure", "latitude", "longitude")])
 
         return self._cache.get(key, make)
 

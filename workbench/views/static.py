@@ -284,6 +284,7 @@ class MapData:
     checksum: str | None = None
     invented: str | None = None
     extra_title: str | None = None
+    target: tuple | None = None  # (lon, lat[, pressure hPa]) of the attribution target
 
     def arrays(self) -> dict[str, np.ndarray]:
         """The numeric content (for comparing figures by data)."""
@@ -312,7 +313,7 @@ class SectionData:
     checksum: str | None = None
     invented: str | None = None
     threshold: float = 2.0
-    omega_pieces: list | None = None  # pieces whose QG omega is drawn (None: all present)
+    omega_pieces: list | None = None  # pieces whose own QG omega (piece_qg_omega) is drawn
 
     def arrays(self) -> dict[str, np.ndarray]:
         return {k: np.asarray(v.values) for k, v in self.section.data_vars.items()}
@@ -390,13 +391,28 @@ def _overlays(case, pieces, overlay, time, member, reference, level_hpa, results
     return out
 
 
-def _surface_label(surface) -> str:
+def _surface_label(surface, threshold: float = 2.0) -> str:
+    """A phrase for titles: 'on the 320 K isentropic surface', 'on the dynamic tropopause
+    (2 PVU)', 'at 500 hPa' (or the text given)."""
+    if surface is None or surface == "":
+        return ""
     if isinstance(surface, (int, float, np.integer, np.floating)):
-        return f"{float(surface):g} K isentropic surface"
-    s = str(surface)
-    if s.lower().strip() in ("tropopause", "dynamic_tropopause"):
-        return "dynamic tropopause"
-    return s
+        return f"on the {float(surface):g} K isentropic surface"
+    s = str(surface).strip()
+    low = s.lower().replace(" ", "")
+    if low in ("tropopause", "dynamic_tropopause", "dynamictropopause"):
+        return f"on the dynamic tropopause ({threshold:g} PVU)"
+    if low.endswith("hpa"):
+        try:
+            return f"at {float(low[:-3]):g} hPa"
+        except ValueError:
+            pass
+    if low.endswith("k"):
+        try:
+            return f"on the {float(low[:-1]):g} K isentropic surface"
+        except ValueError:
+            pass
+    return s if s.startswith(("on ", "at ")) else f"on {s}"
 
 
 def map_data(
@@ -413,13 +429,17 @@ def map_data(
     settings: FigureSettings | dict | None = None,
     results=None,
     threshold: float = 2.0,
+    overlays: list | None = None,
+    target=None,
 ) -> MapData:
     """Gather what a map shows from a Case (no drawing).
 
     ``field``/``surface`` as for :meth:`Case.map_field`; ``pieces`` the list of
     pieces to invert and ``overlay`` the names (or pieces) whose balanced flow
-    is drawn at ``settings.overlay_level_hpa``; ``annotations`` a list of
-    annotation objects (map-space ones are drawn).
+    is drawn at ``settings.overlay_level_hpa``, one overlay per piece;
+    ``overlays`` prepared :class:`Overlay` objects drawn as well (e.g. a State's
+    summed overlay); ``annotations`` a list of annotation objects (map-space
+    ones are drawn).
     """
     settings = FigureSettings.from_dict(settings)
     kw = {} if reference is None else {"reference": reference}
@@ -428,18 +448,17 @@ def map_data(
     if settings.contour_field:
         contour = case.map_field(settings.contour_field, surface, time=time, member=member,
                                  threshold=threshold, **kw)
-    label = da.attrs.get("surface") or _surface_label(surface)
-    if isinstance(surface, (int, float, np.integer, np.floating)):
-        label = f"{float(surface):g} K isentropic surface"
+    label = _surface_label(surface, threshold)
     return MapData(
         field=da,
         field_name=field,
         surface=str(label),
         contour=contour,
         contour_name=settings.contour_field,
-        overlays=_overlays(case, pieces, overlay, time, member, reference,
-                           settings.overlay_level_hpa, results),
+        overlays=list(overlays or []) + _overlays(case, pieces, overlay, time, member, reference,
+                                                  settings.overlay_level_hpa, results),
         annotations=ann.in_space(annotations, "map"),
+        target=None if target is None else tuple(float(x) for x in target),
         **_case_meta(case, time, member),
     )
 
@@ -595,8 +614,12 @@ def _symmetric_levels(values, n=10):
 # --------------------------------------------------------------------------- maps
 
 
-def draw_map(data: MapData, settings: FigureSettings | dict | None = None) -> Figure:
-    """Draw a :class:`MapData` on a new figure (the title block and caution included)."""
+def draw_map(data: MapData, settings: FigureSettings | dict | None = None,
+             page_size: tuple[float, float] | None = None) -> Figure:
+    """Draw a :class:`MapData` on a new figure (the title block and caution included).
+
+    The figure is ``settings.width_in`` wide and as tall as the map's shape needs;
+    with ``page_size`` (inches) the figure has that size and the map is fitted in."""
     settings = FigureSettings.from_dict(settings)
     da = data.field
     if set(da.dims) != {"latitude", "longitude"}:
@@ -612,24 +635,34 @@ def draw_map(data: MapData, settings: FigureSettings | dict | None = None) -> Fi
     lon0 = 0.5 * (lon.min() + lon.max())
     proj = _projection(settings, lon0, lat.min(), lat.max())
     data_crs = ccrs.PlateCarree()
-    width = settings.width_in
-    fig = Figure(figsize=(width, settings.height_in), dpi=settings.dpi)
+    width = page_size[0] if page_size else settings.width_in
+    fig = Figure(figsize=(width, page_size[1] if page_size else settings.height_in),
+                 dpi=settings.dpi)
     ax = fig.add_axes([0.06, 0.1, 0.78, 0.7], projection=proj)
     ax.set_extent([lon.min(), lon.max(), lat.min(), lat.max()], crs=data_crs)
     # size the figure to the map's shape: title block above, labels and caution below
     x0, x1, y0, y1 = ax.get_extent(crs=proj)
+    aspect = (y1 - y0) / (x1 - x0)
     map_w = 0.78 * width
-    map_h = float(np.clip(map_w * (y1 - y0) / (x1 - x0), 2.0, 3.0 * width))
-    height = map_h + _TOP_IN + _BOTTOM_IN + 0.25
-    fig.set_size_inches(width, height)
+    map_h = float(np.clip(map_w * aspect, 2.0, 3.0 * width))
+    if page_size:
+        height = page_size[1]
+        avail = height - _TOP_IN - _BOTTOM_IN - 0.25
+        if map_h > avail:
+            map_h = avail
+            map_w = map_h / aspect
+    else:
+        height = map_h + _TOP_IN + _BOTTOM_IN + 0.25
+        fig.set_size_inches(width, height)
     bottom = (_BOTTOM_IN + 0.2) / height
-    ax.set_position([0.06, bottom, 0.78, map_h / height])
+    ax.set_position([0.06, bottom, map_w / width, map_h / height])
     cmap = colour_map(settings.colour_map) if settings.colour_map else COLOUR_MAPS[key]
     levels = np.asarray(settings.levels) if settings.levels else _levels(values, div, field_name)
     extend = "both" if div else "max" if field_name == "ertel_pv" else "both"
     cf = ax.contourf(lon, lat, values, levels=levels, cmap=cmap, extend=extend,
                      transform=data_crs, zorder=1)
-    cax = fig.add_axes([0.87, bottom + 0.05 * map_h / height, 0.022, 0.9 * map_h / height])
+    cax = fig.add_axes([0.06 + map_w / width + 0.03, bottom + 0.05 * map_h / height, 0.022,
+                        0.9 * map_h / height])
     cb = fig.colorbar(cf, cax=cax)
     cb.set_label(f"{label} ({units})" if units else label)
 
@@ -670,7 +703,7 @@ def draw_map(data: MapData, settings: FigureSettings | dict | None = None) -> Fi
         q = ax.quiver(lon[::sx], lat[::sy], u[::sy, ::sx], v[::sy, ::sx], color=o.colour,
                       transform=data_crs, zorder=5, width=0.0025, scale=ref * 25,
                       edgecolor="white", linewidth=0.3)
-        ax.quiverkey(q, 0.98, 1.015 + 0.035 * len(handles), ref, f"{ref:g} m s-1 ({o.name})",
+        ax.quiverkey(q, 0.98, 1.03 + 0.04 * len(handles), ref, f"{ref:g} m s-1 ({o.name})",
                      labelpos="W", coordinates="axes", fontproperties={"size": 7.5},
                      color=o.colour)
         desc = f"{o.name}: balanced flow at {o.level_hpa:g} hPa"
@@ -700,8 +733,16 @@ def draw_map(data: MapData, settings: FigureSettings | dict | None = None) -> Fi
         gl.xlabel_style = gl.ylabel_style = {"size": 7.5}
 
     _draw_annotations_geo(ax, data.annotations, data_crs)
+    if data.target is not None:
+        tlon, tlat = data.target[0], data.target[1]
+        ax.plot([tlon], [tlat], marker="X", ms=13, mfc="white", mec="black", mew=1.6,
+                transform=data_crs, zorder=9)
+        tlabel = "target" if len(data.target) < 3 else f"target ({data.target[2]:g} hPa)"
+        ax.text(tlon, tlat, "  " + tlabel, transform=data_crs, fontsize=8, fontweight="bold",
+                ha="left", va="bottom", zorder=9,
+                bbox=dict(boxstyle="round,pad=0.15", fc="white", ec="none", alpha=0.8))
 
-    what = f"{label} ({units}) on the {data.surface}"
+    what = f"{label} ({units}) {data.surface}".rstrip()
     extra = "; ".join(notes) if notes else None
     _title_block(fig, _title_lines(data, what, extra))
     _caution(fig, note, data.invented)
@@ -729,9 +770,6 @@ def state_view(state) -> dict[str, Any]:
     """
     case = state.case
     pieces = list(_state_get(state, ["pieces"], []) or [])
-    overlay = _state_get(state, ["overlay", "overlay_pieces"], None)
-    if overlay is None:
-        overlay = [p.name for p in pieces if getattr(p, "visible", True)]
     settings = _state_get(state, ["figure_settings", "settings"], None)
     if hasattr(settings, "to_dict") and not isinstance(settings, FigureSettings):
         settings = settings.to_dict()
@@ -754,12 +792,32 @@ def state_view(state) -> dict[str, Any]:
         member=_state_get(state, ["member"], None),
         reference=_state_get(state, ["reference"], None),
         pieces=pieces,
-        overlay=list(overlay),
+        overlay=None,
+        overlays=state_overlays(state, pieces),
         annotations=list(_state_get(state, ["annotations"], []) or []),
         settings=settings,
         threshold=float(_state_get(state, ["threshold", "tropopause_threshold"], 2.0)),
+        target=_state_get(state, ["target"], None),
         sections=list(_state_get(state, ["sections"], []) or []),
     )
+
+
+def state_overlays(state, pieces=None) -> list:
+    """The State's balanced-flow overlay (``state.overlay()``: the visible pieces' summed
+    flow at the overlay level, as in the app) as a list of at most one :class:`Overlay`."""
+    if not hasattr(state, "overlay") or not callable(state.overlay):
+        return []
+    ov = state.overlay()
+    if ov is None:
+        return []
+    names = [str(n) for n in ov.attrs.get("pieces", [])]
+    pieces = list(pieces if pieces is not None else getattr(state, "pieces", []))
+    by_name = {getattr(p, "name", None): p for p in pieces}
+    colour = _piece_colour(by_name.get(names[0]), 0) if len(names) == 1 else "#000000"
+    label = names[0] if len(names) == 1 else "sum of " + " + ".join(names)
+    return [Overlay(name=label, colour=colour, u=ov["u"], v=ov["v"],
+                    height_anomaly=ov["height_anomaly"],
+                    level_hpa=float(ov.attrs.get("level_hpa", np.nan)))]
 
 
 def map_figure(source, field=None, surface=None, **kwargs) -> Figure:
@@ -777,7 +835,7 @@ def map_figure(source, field=None, surface=None, **kwargs) -> Figure:
     if isinstance(source, xr.DataArray):
         case = kwargs.pop("case", None)
         md = MapData(field=source, field_name=field or str(source.name),
-                     surface=str(surface or source.attrs.get("surface", "")),
+                     surface=_surface_label(surface or source.attrs.get("surface", "")),
                      annotations=ann.in_space(kwargs.get("annotations"), "map"),
                      **_case_meta(case, kwargs.get("time"), kwargs.get("member")))
         return draw_map(md, settings)
@@ -789,6 +847,8 @@ def map_figure(source, field=None, surface=None, **kwargs) -> Figure:
             view["field"] = field
         if surface is not None:
             view["surface"] = surface
+        if kwargs.get("overlay") is not None:
+            view["overlays"] = []  # explicit pieces replace the state's summed overlay
         view.update(kwargs)
         settings = view["settings"]
         return draw_map(map_data(case, **view), settings)
@@ -875,18 +935,21 @@ def _fmt_point(lon, lat) -> str:
     return f"{abs(lat):.1f}{ns} {abs(lon_n):.1f}{ew}"
 
 
-def draw_section(data: SectionData, settings: FigureSettings | dict | None = None) -> Figure:
+def draw_section(data: SectionData, settings: FigureSettings | dict | None = None,
+                 page_size: tuple[float, float] | None = None) -> Figure:
     """Draw a :class:`SectionData`: PV shaded, theta and section-normal wind contours, the
     dynamic tropopause, balanced normal wind of chosen pieces, QG omega, annotations."""
     settings = FigureSettings.from_dict(settings)
     ds = data.section
     x = np.asarray(ds["distance"].values, float)
     p = np.asarray(ds["pressure"].values, float) / 100.0
-    width = settings.width_in
+    width = page_size[0] if page_size else settings.width_in
     plot_h = max(2.5, 0.5 * width)
-    height = plot_h + _TOP_IN + 0.3 + _BOTTOM_IN + 0.85
+    if page_size:
+        plot_h = max(2.0, page_size[1] - (_TOP_IN + 0.3 + _BOTTOM_IN + 0.75))
+    height = plot_h + _TOP_IN + 0.3 + _BOTTOM_IN + 0.75
     fig = Figure(figsize=(width, height), dpi=settings.dpi)
-    bottom = (_BOTTOM_IN + 0.85) / height
+    bottom = (_BOTTOM_IN + 0.75) / height
     ax = fig.add_axes([0.08, bottom, 0.76, plot_h / height])
     ax.set_facecolor("#b8b8b8")  # below ground / missing data
     pv = np.asarray(ds["ertel_pv"].values, float)
@@ -935,21 +998,28 @@ def draw_section(data: SectionData, settings: FigureSettings | dict | None = Non
                 ax.clabel(cs, fmt="%g", fontsize=6.5)
                 handles.append(Line2D([], [], color=colour, lw=1.5,
                                       label=f"{name}: balanced normal wind (every {bstep:g} m s-1)"))
+    omegas = []  # (label, DataArray)
     if "qg_omega" in ds:
-        om_all = ds["qg_omega"]
-        names = [str(n) for n in om_all["piece"].values] if "piece" in om_all.dims else [None]
-        if data.omega_pieces is not None:
-            names = [n for n in names if n in data.omega_pieces]
-        for name in names:
-            om = om_all if name is None else om_all.sel(piece=name)
-            ov = np.asarray(om.values, float)
-            ol, ostep = _symmetric_levels(ov)
-            if ol:
-                ax.contour(x, p, ov, levels=ol, colors="#009e73", linewidths=1.1,
-                           linestyles=["solid" if v < 0 else "dotted" for v in ol], zorder=5)
-                handles.append(Line2D([], [], color="#009e73", lw=1.1,
-                                      label=f"QG omega{' of ' + name if name else ''} "
-                                            f"(every {ostep:g} Pa s-1, solid < 0 = ascent)"))
+        if "piece" in ds["qg_omega"].dims:  # older layout: one omega per piece
+            for n in ds["qg_omega"]["piece"].values:
+                omegas.append((f"of {n}", ds["qg_omega"].sel(piece=n)))
+        else:
+            omegas.append(("of the full flow", ds["qg_omega"]))
+    if "piece_qg_omega" in ds and data.omega_pieces:
+        for n in ds["piece_qg_omega"]["piece"].values:
+            if str(n) in data.omega_pieces:
+                omegas.append((f"due to {n}", ds["piece_qg_omega"].sel(piece=n)))
+    omega_styles = (("#009e73", 1.1), ("#e69f00", 1.1), ("#56b4e9", 1.1))
+    for k, (olabel, om) in enumerate(omegas):
+        ov = np.asarray(om.values, float)
+        ol, ostep = _symmetric_levels(ov)
+        colour, lw = omega_styles[k % len(omega_styles)]
+        if ol:
+            ax.contour(x, p, ov, levels=ol, colors=colour, linewidths=lw,
+                       linestyles=["solid" if v < 0 else "dotted" for v in ol], zorder=5)
+            handles.append(Line2D([], [], color=colour, lw=lw,
+                                  label=f"QG omega {olabel} (every {ostep:g} Pa s-1; "
+                                        "solid < 0 ascent, dotted > 0 descent)"))
     ax.set_yscale("log")
     ticks = [t for t in (1000, 850, 700, 600, 500, 400, 300, 250, 200, 150, 100, 70, 50)
              if p.min() - 1e-6 <= t <= p.max() + 1e-6]
@@ -1001,7 +1071,7 @@ def state_section_data(state, index=None) -> SectionData:
         keys.add(str(sec.name))
     items = [a for a in view["annotations"] if getattr(a, "section_key", None) in keys]
     return SectionData(section=ds, key=str(index), overlays=overlays, annotations=items,
-                       threshold=view["threshold"], omega_pieces=names[:1],
+                       threshold=view["threshold"], omega_pieces=[],
                        **_case_meta(view["case"], view["time"], view["member"]))
 
 

@@ -1,0 +1,717 @@
+"""The interactive workbench: one Panel layout, inline in Jupyter and served in a browser.
+
+``Workbench(case_or_path, data_dirs=None)`` builds the page on a shared
+:class:`~workbench.state.State`: controls on the left (case, time, surface, field, mouse mode,
+settings of the next lassoed piece, boundary pieces), the map in the middle with the pieces
+list and the attribution table beside it, the section below and a status line at the top.
+Display it in a notebook cell (``wb`` or ``pn.panel(wb)``) or serve it with :func:`serve` /
+``pvwb serve CASE``.
+
+Security: :func:`serve` binds 127.0.0.1 unless told otherwise, and any other address needs a
+token (asked for on a login page). The page's "open file" control only opens files inside the
+configured data folders (:func:`resolve_data_path`); a path outside them, or one climbing out
+with ``..`` or a symbolic link, raises :class:`~workbench.errors.AccessError`. Files are read
+by the netCDF/GRIB/Zarr readers of :mod:`workbench.io` only.
+"""
+from __future__ import annotations
+
+import argparse
+import os
+import secrets
+import socket
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import panel as pn
+import param
+
+from .errors import AccessError, InputError, WorkbenchError
+from .state import BOUNDARY_PIECES, State, surface_label
+
+__all__ = ["Workbench", "serve", "main", "resolve_data_path", "list_data_files",
+           "LOOPBACK"]
+
+LOOPBACK = ("127.0.0.1", "localhost", "::1")
+DATA_SUFFIXES = (".nc", ".nc4", ".netcdf", ".grib", ".grib2", ".grb", ".grb2", ".zarr", ".txt",
+                 ".cdf", ".h5")
+_CSS = """
+.pvwb-header h2 {margin: 0 0 2px 0; font-size: 20px;}
+.pvwb-side {background: #f7f7f5; border-radius: 6px; padding: 4px;}
+"""
+
+
+# --------------------------------------------------------------------------- data folders
+
+
+def _folders(data_dirs):
+    out = []
+    for d in data_dirs or []:
+        p = Path(os.fspath(d)).expanduser().resolve()
+        if p.is_dir():
+            out.append(p)
+    return out
+
+
+def resolve_data_path(path, data_dirs) -> Path:
+    """The real path of ``path`` if it lies inside one of ``data_dirs``; else AccessError.
+
+    A relative ``path`` is taken relative to each data folder in turn. The check is made on
+    the fully resolved path (``..`` and symbolic links resolved), so nothing outside the
+    folders can be reached.
+    """
+    folders = _folders(data_dirs)
+    if not folders:
+        raise AccessError("no data folders are configured, so no file can be opened from the "
+                          "page; start the server with --data-dir FOLDER")
+    text = os.fspath(path).strip() if path is not None else ""
+    if not text or "\x00" in text:
+        raise AccessError("give the name of a file inside the data folders")
+    cand = Path(text).expanduser()
+    tries = [cand] if cand.is_absolute() else [f / cand for f in folders]
+    for c in tries:
+        real = c.resolve()
+        for f in folders:
+            if real == f or f in real.parents:
+                if not real.exists():
+                    raise InputError(f"file {text!r} was not found in the data folder {f}; "
+                                     "pick one from the list")
+                return real
+    raise AccessError(f"{text!r} is outside the configured data folders "
+                      f"({', '.join(str(f) for f in folders)}); only files inside them can be opened")
+
+
+def list_data_files(data_dirs, limit=500):
+    """Files (and Zarr stores) in the data folders, as ``{label: absolute path}``."""
+    out = {}
+    for f in _folders(data_dirs):
+        for p in sorted(f.rglob("*")):
+            if len(out) >= limit:
+                return out
+            if p.name.startswith(".") or any(part.startswith(".") for part in p.relative_to(f).parts):
+                continue
+            if p.suffix.lower() in DATA_SUFFIXES and (p.is_file() or p.suffix == ".zarr"):
+                if any(q.suffix == ".zarr" for q in p.parents if f in q.parents):
+                    continue  # inside a zarr store
+                out[f"{f.name}/{p.relative_to(f)}"] = str(p)
+    return out
+
+
+# --------------------------------------------------------------------------- the workbench
+
+
+class Workbench:
+    """The workbench page for a case (or for none yet: then only "open file" shows).
+
+    Parameters
+    ----------
+    case_or_path : a :class:`workbench.Case`, a path to a case file, or None.
+    data_dirs : folders the page may open files from (default: the case file's folder).
+    state : optionally an existing :class:`State` to show (e.g. a reloaded session).
+    """
+
+    def __init__(self, case_or_path=None, data_dirs=None, state=None, width=820):
+        pn.extension("tabulator", raw_css=[_CSS], notifications=False)
+        from .io import open_case
+
+        case = case_or_path
+        if case is not None and not hasattr(case, "map_field"):
+            case = open_case(case)
+        if data_dirs is None and case is not None and case.source not in (None, "<in-memory>"):
+            data_dirs = [str(Path(case.source).resolve().parent)]
+        self.data_dirs = [str(p) for p in _folders(data_dirs)]
+        self.width = width
+        if state is not None:
+            self.state = state
+        else:
+            self.state = State(case)
+        self.map = None
+        self.section = None
+        self._watchers = []
+        self._deferred = []
+        self._build_common()
+        if self.state.case is not None:
+            self._build_case_views()
+        else:
+            self.main[:] = [pn.pane.Markdown("### No case open\nPick a file in the data folders "
+                                             "on the left and press **Open**.")]
+            self.state.set_status("Open a case to start.", "info")
+
+    # ---------------------------------------------------------------- helpers
+    def _guard(self, fn, *args, **kwargs):
+        """Run ``fn``; any error goes to the status area (the page never dies)."""
+        try:
+            return fn(*args, **kwargs)
+        except Exception as exc:  # noqa: BLE001
+            self.state.report(exc)
+            return None
+
+    def _doc(self):
+        fig = getattr(self.map, "figure", None) if self.map is not None else None
+        doc = fig.document if fig is not None else None
+        if doc is None:
+            doc = pn.state.curdoc
+        if doc is not None and getattr(doc, "session_context", None) is not None:
+            return doc
+        return None
+
+    def _later(self, fn):
+        """Run ``fn`` after the current changes have been sent to the browser (served), or
+        now (notebook)."""
+        doc = self._doc()
+        if doc is None:
+            self._guard(fn)
+        else:
+            doc.add_next_tick_callback(lambda: self._guard(fn))
+
+    def _work(self, label, fn, done=None):
+        """Long work: show the busy indicator and ``label`` first, then run ``fn``."""
+        st = self.state
+        st.busy = True
+        st.set_status(label + " …", "info")
+
+        def run():
+            t0 = time.perf_counter()
+            try:
+                fn()
+            except Exception as exc:  # noqa: BLE001
+                st.report(exc)
+            else:
+                msg = done() if callable(done) else (done or "Done")
+                st.set_status(f"{msg} ({time.perf_counter() - t0:.1f} s)", "success")
+            finally:
+                st.busy = False
+
+        doc = self._doc()
+        if doc is None:
+            run()
+        else:
+            doc.add_next_tick_callback(run)
+
+    # ---------------------------------------------------------------- common parts
+    def _build_common(self):
+        st = self.state
+        self.status = pn.pane.Alert("", alert_type="info", css_classes=["pvwb-status"],
+                                    margin=(0, 10), sizing_mode="stretch_width")
+        self.spinner = pn.indicators.LoadingSpinner(value=False, size=22, name="",
+                                                    css_classes=["pvwb-busy"], margin=(8, 4))
+
+        def show_status(*_):
+            self.status.alert_type = {"error": "danger"}.get(st.status_level, st.status_level)
+            self.status.object = st.status or " "
+            self.spinner.value = bool(st.busy)
+
+        st.param.watch(show_status, ["status", "status_level", "busy"])
+        show_status()
+        self.header = pn.pane.HTML("", sizing_mode="stretch_width", css_classes=["pvwb-header"])
+        # open file
+        self.file_select = pn.widgets.Select(name="Case file (data folders)", options={},
+                                             width=250)
+        self.file_path = pn.widgets.TextInput(name="…or a file name in a data folder",
+                                              placeholder="e.g. storm.nc", width=250)
+        self.open_button = pn.widgets.Button(name="Open", button_type="primary", width=90,
+                                             css_classes=["pvwb-open"])
+        self.open_button.on_click(lambda e: self._guard(self.open_file))
+        self._refresh_file_list()
+        self.main = pn.Column(sizing_mode="stretch_width")
+        self.sidebar = pn.Column(width=280, css_classes=["pvwb-side"])
+        self.layout = pn.Column(
+            pn.Row(self.header, self.spinner, sizing_mode="stretch_width"),
+            self.status,
+            pn.Row(self.sidebar, self.main, sizing_mode="stretch_width"),
+            sizing_mode="stretch_width", name="PV Workbench")
+        self._fill_sidebar()
+
+    def _refresh_file_list(self):
+        files = list_data_files(self.data_dirs)
+        self.file_select.options = files
+        if files and self.state.case is not None:
+            cur = str(Path(str(self.state.case.source)).resolve()) if \
+                self.state.case.source != "<in-memory>" else None
+            if cur in files.values():
+                self.file_select.value = cur
+
+    def open_file(self, path=None):
+        """Open a case file from the data folders (from the page's controls or ``path``)."""
+        from .io import open_case
+
+        text = path or self.file_path.value or self.file_select.value
+        if not text:
+            raise InputError("pick a case file in the list (or type its name) first")
+        real = resolve_data_path(text, self.data_dirs)
+        holder = {}
+
+        def load():
+            holder["case"] = open_case(real)
+
+        def done():
+            self._switch_case(holder["case"])
+            return f"Opened {real.name}"
+
+        # open first (may fail: the old case stays), then switch
+        def job():
+            load()
+
+        self._work(f"Opening {real.name}", job, done)
+
+    def _switch_case(self, case):
+        self._detach()
+        self.state.set_case(case)
+        self._build_case_views()
+
+    def _detach(self):
+        for obj, w in self._watchers:
+            obj.param.unwatch(w)
+        self._watchers = []
+        for v in (self.map, self.section):
+            if v is not None and hasattr(v, "detach"):
+                v.detach()
+
+    def _watch(self, obj, fn, names):
+        w = obj.param.watch(fn, names)
+        self._watchers.append((obj, w))
+        return w
+
+    # ---------------------------------------------------------------- case views
+    def _build_case_views(self):
+        from .views.interactive import MapView, SectionView, caution_html
+
+        st = self.state
+        case = st.case
+        self.header.object = (f"<h2>PV Workbench · {case.name}</h2>" + caution_html(case))
+        self._build_controls()
+        self.map = MapView(st, width=self.width)
+        self.map.on_lasso = lambda poly: self._guard(self.lasso_piece, poly)
+        self.map.on_section = lambda a, b: self._guard(self.draw_section, a, b)
+        self.map.on_tap = lambda x, y: self._guard(self.pick_target, x, y)
+        self.map.set_mode(MODE_KEYS[self.mode.value])
+        self.section = SectionView(st, width=self.width, defer=self._later)
+        self._build_tables()
+        notes = [self.map.coast_note]
+        self.main[:] = [
+            pn.Row(pn.Column(self.map.pane,
+                             pn.pane.Markdown(" · ".join(notes), styles={"font-size": "11px",
+                                                                          "color": "#666"},
+                                              margin=(0, 10))),
+                   pn.Column(self.pieces_box, self.attr_box, width=430)),
+            self.section.pane,
+        ]
+        self._fill_sidebar()
+        self._refresh_file_list()
+        st.set_status(f"Case {case.name!r}: {len(case.times)} time(s), "
+                      f"{len(case.levels_hpa)} levels. Lasso an anomaly to invert it.", "info")
+
+    def _surface_options(self):
+        case = self.state.case
+        opts = {"dynamic tropopause": "tropopause"}
+        th = case.theta()
+        lo = float(np.nanpercentile(th.isel(pressure=0).values, 5))
+        hi = float(np.nanpercentile(th.isel(pressure=-1).values, 50))
+        for k in np.arange(5 * np.ceil(lo / 5), min(hi, 420) + 1e-6, 5):
+            opts[f"θ = {k:g} K"] = float(k)
+        for p in case.levels_hpa:
+            opts[f"{p:g} hPa"] = f"{p:g}hPa"
+        return opts
+
+    def _build_controls(self):
+        st = self.state
+        case = st.case
+        from .views.interactive import FIELD_LABELS, MODES
+
+        times = {lab: i for i, lab in enumerate(st.time_labels)}
+        self.time = pn.widgets.Select(name="Valid time", options=times, value=st.time_index,
+                                      width=190)
+        self.prev_t = pn.widgets.Button(name="◀", width=38, margin=(23, 2, 5, 2))
+        self.next_t = pn.widgets.Button(name="▶", width=38, margin=(23, 2, 5, 2))
+        self.prev_t.on_click(lambda e: self._step_time(-1))
+        self.next_t.on_click(lambda e: self._step_time(+1))
+        sopts = self._surface_options()
+        if st.surface not in sopts.values():
+            thetas = [v for v in sopts.values() if isinstance(v, float)]
+            if thetas and isinstance(st.surface, float):
+                st.surface = min(thetas, key=lambda v: abs(v - st.surface))
+        self.surface = pn.widgets.Select(name="Surface", options=sopts, value=st.surface,
+                                         width=250)
+        self.field = pn.widgets.Select(name="Field", value=st.field, width=250, options={
+            f"{FIELD_LABELS[f][0]} ({FIELD_LABELS[f][1]})": f for f in case.MAP_FIELDS})
+        levels = {f"{p:g} hPa": float(p) for p in case.levels_hpa}
+        self.level = pn.widgets.Select(name="Balanced-flow level", options=levels,
+                                       value=float(st.overlay_level), width=120)
+        self.reference = pn.widgets.Select(name="Reference state", width=120,
+                                           options={"time mean": "time_mean",
+                                                    "area mean": "area_mean",
+                                                    "zonal mean": "zonal_mean"},
+                                           value=st.reference if st.reference in
+                                           ("time_mean", "area_mean", "zonal_mean") else "time_mean")
+        self.threshold = pn.widgets.FloatInput(name="Tropopause (PVU)", value=st.threshold,
+                                               step=0.5, start=0.5, end=10, width=120)
+        self.mode = pn.widgets.RadioButtonGroup(name="Mouse", options=list(MODES),
+                                                value="Lasso a piece", orientation="vertical",
+                                                button_type="default", width=250,
+                                                css_classes=["pvwb-mode"])
+        # the next lassoed piece
+        self.p_kind = pn.widgets.Select(name="A lasso makes", width=250, options={
+            "interior PV piece": "interior", "surface θ′ piece (lower boundary)": "bottom",
+            "lid θ′ piece (upper boundary)": "top"})
+        self.p_coord = pn.widgets.RadioButtonGroup(name="Layer in", options=["pressure", "theta"],
+                                                   value="pressure", width=250)
+        pmax = float(max(case.levels_hpa))
+        pmin = float(min(case.levels_hpa))
+        self.p_layer = pn.widgets.RangeSlider(name="Layer (hPa)", start=pmin, end=pmax,
+                                              value=(pmin, min(500.0, pmax)), step=25, width=250)
+        self.p_sign = pn.widgets.RadioButtonGroup(name="Sign", options={
+            "positive": 1, "negative": -1, "both": 0}, value=1, width=250)
+        self.p_threshold = pn.widgets.FloatInput(name="Min. |PV anomaly| (PVU)", value=0.0,
+                                                 start=0.0, step=0.1, width=120)
+        self.p_moist = pn.widgets.Checkbox(name="moist only (RH ≥)", value=False, width=120,
+                                           margin=(28, 5, 5, 10))
+        self.p_rh = pn.widgets.IntInput(name="RH (%)", value=80, start=0, end=100, step=5,
+                                        width=70)
+        self.p_name = pn.widgets.TextInput(name="Name of the next piece", placeholder="auto",
+                                           width=250)
+        self.boundary_buttons = []
+        for kind, label in BOUNDARY_PIECES.items():
+            b = pn.widgets.Button(name=f"+ {label}", width=120, css_classes=[f"pvwb-add-{kind}"])
+            b.on_click(lambda e, k=kind: self._guard(self.add_boundary, k))
+            self.boundary_buttons.append(b)
+
+        def coord_changed(ev):
+            if ev.new == "theta":
+                self.p_layer.param.update(name="Layer (K)", start=270.0, end=450.0,
+                                          value=(300.0, 340.0), step=5)
+            else:
+                self.p_layer.param.update(name="Layer (hPa)", start=pmin, end=pmax,
+                                          value=(pmin, min(500.0, pmax)), step=25)
+
+        self.p_coord.param.watch(coord_changed, "value")
+        # widget -> state
+        links = ((self.time, "time_index"), (self.surface, "surface"), (self.field, "field"),
+                 (self.level, "overlay_level"), (self.reference, "reference"),
+                 (self.threshold, "threshold"))
+        for w, name in links:
+            w.param.watch(lambda ev, n=name: self._guard(self._set_state, n, ev.new), "value")
+            self._watch(st, lambda *ev, w=w, n=name: self._state_to_widget(w, getattr(st, n)), [name])
+        self.mode.param.watch(lambda ev: self.map and self.map.set_mode(MODE_KEYS[ev.new]),
+                              "value")
+
+    def _set_state(self, name, value):
+        st = self.state
+        if name == "surface" and value == "tropopause" and st.field in ("ertel_pv",
+                                                                        "ertel_pv_anomaly"):
+            # PV is the threshold itself on the tropopause: show its theta instead
+            with param.parameterized.batch_call_watchers(st):
+                st.field = "potential_temperature"
+                st.surface = value
+            return
+        if name == "field" and value in ("ertel_pv", "ertel_pv_anomaly") and \
+                st.surface == "tropopause":
+            raise InputError("PV is the threshold value everywhere on the dynamic tropopause; "
+                             "pick θ, pressure, height or wind there, or an isentropic surface")
+        setattr(st, name, value)
+
+    def _state_to_widget(self, widget, value):
+        if widget.value != value:
+            try:
+                widget.value = value
+            except Exception:  # noqa: BLE001
+                pass
+
+    def _step_time(self, step):
+        n = len(self.state.case.times)
+        self.state.time_index = (self.state.time_index + step) % n
+
+    def _fill_sidebar(self):
+        files = pn.Column(pn.pane.Markdown("**Case**", margin=(0, 5)), self.file_select,
+                          self.file_path, self.open_button)
+        if self.state.case is None or not hasattr(self, "time"):
+            self.sidebar[:] = [files]
+            return
+        hr = pn.layout.Divider(margin=(4, 5))
+        self.sidebar[:] = [
+            pn.pane.Markdown("**Map**", margin=(0, 5)),
+            pn.Row(self.time, self.prev_t, self.next_t),
+            self.surface, self.field,
+            pn.Row(self.threshold, self.reference),
+            hr,
+            pn.pane.Markdown("**Mouse on the map**", margin=(0, 5)), self.mode,
+            hr,
+            pn.pane.Markdown("**Next lassoed piece**", margin=(0, 5)),
+            self.p_kind, self.p_coord, self.p_layer, self.p_sign,
+            pn.Row(self.p_threshold, self.level),
+            pn.Row(self.p_moist, self.p_rh), self.p_name,
+            pn.pane.Markdown("**Boundary pieces**", margin=(0, 5)),
+            pn.GridBox(*self.boundary_buttons, ncols=2),
+            hr, files,
+        ]
+
+    # ---------------------------------------------------------------- pieces and tables
+    def _build_tables(self):
+        import pandas as pd
+
+        st = self.state
+        self.pieces_table = pn.widgets.Tabulator(
+            pd.DataFrame(columns=["name", "kind", "layer", "sign", "show"]),
+            show_index=False, editors={"name": "input", "show": {"type": "tickCross"},
+                                       "kind": None, "layer": None, "sign": None},
+            formatters={"show": {"type": "tickCross"}}, buttons={"delete": "✖"},
+            width=420, height=190, layout="fit_data_table", css_classes=["pvwb-pieces"],
+            sortable=False, selectable=False)
+        self.pieces_table.on_edit(lambda ev: self._guard(self._piece_edited, ev))
+        self.pieces_table.on_click(lambda ev: self._guard(self._piece_clicked, ev))
+        self.pieces_box = pn.Column(pn.pane.Markdown("**Pieces** (edit a name to rename; tick "
+                                                     "to show/hide; ✖ deletes)", margin=(0, 5)),
+                                    self.pieces_table)
+        self.attr_level = pn.widgets.Select(name="Target level", width=110, value=float(
+            st.overlay_level), options={f"{p:g} hPa": float(p) for p in st.case.levels_hpa})
+        self.attr_level.param.watch(lambda ev: self._guard(self._retarget_level, ev.new), "value")
+        self.attr_title = pn.pane.Markdown("", margin=(0, 5))
+        self.attr_table = pn.widgets.Tabulator(pd.DataFrame(), show_index=False, disabled=True,
+                                               width=420, height=230, layout="fit_data_table",
+                                               css_classes=["pvwb-attribution"], sortable=False,
+                                               selectable=False)
+        self.attr_box = pn.Column(pn.Row(pn.pane.Markdown("**Attribution at the target**",
+                                                          margin=(18, 5)), self.attr_level),
+                                  self.attr_title, self.attr_table)
+        self._watch(st, lambda *ev: self._refresh_pieces_table(), ["pieces"])
+        self._watch(st, lambda *ev: self._later(self._refresh_attribution),
+                    ["pieces", "target", "time_index", "member", "reference"])
+        self._refresh_pieces_table()
+        self._refresh_attribution()
+
+    def _refresh_pieces_table(self):
+        import pandas as pd
+
+        rows = []
+        for p in self.state.pieces:
+            if p.kind == "interior":
+                unit = "hPa" if p.layer_coord == "pressure" else "K"
+                layer = "all levels" if p.layer is None else f"{p.layer[0]:g}–{p.layer[1]:g} {unit}"
+                if p.rh_min is not None:
+                    layer += f", RH≥{p.rh_min:g}%"
+            else:
+                layer = {"bottom": "lower boundary", "top": "upper boundary",
+                         "lateral": "lateral boundary", "remainder": "the rest"}[p.kind]
+            sign = {1: "+", -1: "−", 0: "±"}[p.sign] if p.kind in ("interior", "bottom", "top") \
+                else ""
+            rows.append(dict(name=p.name, kind=p.kind, layer=layer, sign=sign, show=p.visible))
+        self.pieces_table.value = pd.DataFrame(rows, columns=["name", "kind", "layer", "sign",
+                                                              "show"])
+
+    def _piece_edited(self, ev):
+        names = self.state.piece_names
+        if not 0 <= ev.row < len(names):
+            return
+        name = names[ev.row]
+        if ev.column == "name":
+            try:
+                self.state.rename_piece(name, ev.value)
+            except WorkbenchError:
+                self._refresh_pieces_table()
+                raise
+            self.state.set_status(f"Renamed {name!r} to {ev.value!r}.", "success")
+        elif ev.column == "show":
+            self.state.toggle_piece(name, bool(ev.value))
+
+    def _piece_clicked(self, ev):
+        if ev.column != "delete":
+            return
+        names = self.state.piece_names
+        if 0 <= ev.row < len(names):
+            name = names[ev.row]
+            self.state.remove_piece(name)
+            self.state.set_status(f"Deleted piece {name!r}.", "info")
+
+    def _retarget_level(self, p):
+        t = self.state.target
+        if t is not None:
+            self.state.target = (t[0], t[1], float(p))
+
+    def _refresh_attribution(self):
+        import pandas as pd
+
+        st = self.state
+        if st.target is None or not st.pieces:
+            self.attr_title.object = ("Choose *Pick target point* and click the map "
+                                      "(e.g. the storm centre)." if st.pieces else
+                                      "Add pieces first, then pick a target point.")
+            self.attr_table.value = pd.DataFrame()
+            return
+        df = st.attribution()
+        lon, lat, p = st.target
+        self.attr_title.object = (f"at {lon:.2f}°E {lat:.2f}°N, {p:g} hPa · pieces add up to "
+                                  "the full inversion")
+        show = pd.DataFrame({
+            "piece": df.index,
+            "Z′ (m)": df["height_anomaly"].round(1).values,
+            "share (%)": df["height_share_pct"].round(0).values,
+            "u (m/s)": df["u"].round(1).values,
+            "v (m/s)": df["v"].round(1).values,
+            "ζ (1e-5/s)": (df["relative_vorticity"] * 1e5).round(2).values,
+        })
+        self.attr_table.value = show
+        self.attribution_frame = df
+
+    # ---------------------------------------------------------------- actions
+    def lasso_piece(self, polygon):
+        """Make a piece of the lassoed polygon with the sidebar's settings (inverted at once)."""
+        st = self.state
+        if len(polygon) > 200:  # keep session files small: thin the outline evenly
+            idx = np.linspace(0, len(polygon) - 1, 200).round().astype(int)
+            polygon = [polygon[i] for i in idx]
+        d = st.case.domain
+        polygon = [(min(max(x, d["lon_min"]), d["lon_max"]), min(max(y, d["lat_min"]),
+                                                                 d["lat_max"]))
+                   for x, y in polygon]
+        kind = self.p_kind.value
+        base = {"interior": "piece", "bottom": "surface θ′ (lasso)", "top": "lid θ′ (lasso)"}[kind]
+        name = self.p_name.value.strip() or st.new_piece_name(base)
+        kw = dict(name=name, kind=kind, polygon=polygon, sign=int(self.p_sign.value))
+        if kind == "interior":
+            kw.update(layer=tuple(float(x) for x in self.p_layer.value),
+                      layer_coord=self.p_coord.value, threshold=float(self.p_threshold.value),
+                      rh_min=float(self.p_rh.value) if self.p_moist.value else None)
+        t0 = time.perf_counter()
+        piece = st.add_piece(**kw)
+        self.p_name.value = ""
+        st.set_status(f"Piece {piece.name!r} inverted in {time.perf_counter() - t0:.2f} s; its "
+                      f"balanced flow is on the map at {st.overlay_level:g} hPa.", "success")
+        return piece
+
+    def add_boundary(self, kind):
+        piece = self.state.add_boundary_piece(kind)
+        self.state.set_status(f"Added {piece.name!r}.", "success")
+
+    def draw_section(self, start, end):
+        st = self.state
+        d = st.case.domain
+
+        def clamp(pt):
+            return (min(max(pt[0], d["lon_min"]), d["lon_max"]),
+                    min(max(pt[1], d["lat_min"]), d["lat_max"]))
+
+        start, end = clamp(start), clamp(end)
+        if np.hypot(end[0] - start[0], end[1] - start[1]) < 1.0:
+            raise InputError("the section line is shorter than one degree; drag a longer line")
+        st.add_section(start, end)
+        st.set_status(f"Section from ({start[0]:.1f}°E, {start[1]:.1f}°N) to "
+                      f"({end[0]:.1f}°E, {end[1]:.1f}°N).", "success")
+
+    def pick_target(self, lon, lat):
+        self.state.set_target(lon, lat, self.attr_level.value if hasattr(self, "attr_level")
+                              else None)
+        self.state.set_status(f"Target point {lon:.2f}°E {lat:.2f}°N.", "info")
+
+    # ---------------------------------------------------------------- display
+    def __panel__(self):
+        return self.layout
+
+    def _repr_mimebundle_(self, include=None, exclude=None):
+        return self.layout._repr_mimebundle_(include, exclude)
+
+    def servable(self, title="PV Workbench"):
+        return self.layout.servable(title=title)
+
+    def show(self, **kwargs):
+        return self.layout.show(**kwargs)
+
+
+MODE_KEYS = {"Pan / zoom": "pan", "Lasso a piece": "lasso", "Draw a section": "section",
+             "Pick target point": "target"}
+
+
+# --------------------------------------------------------------------------- serving
+
+
+def _free_port(address):
+    fam = socket.AF_INET6 if ":" in address else socket.AF_INET
+    with socket.socket(fam, socket.SOCK_STREAM) as s:
+        s.bind((address, 0))
+        return s.getsockname()[1]
+
+
+def check_binding(address, token):
+    """Refuse a non-loopback address without a token (AccessError)."""
+    if address not in LOOPBACK and not token:
+        raise AccessError(
+            f"refusing to serve on {address!r} without a token: anyone who can reach that "
+            "address could use the workbench. Give --token SECRET (or --password), or bind "
+            "127.0.0.1 (the default)")
+
+
+def serve(case=None, address="127.0.0.1", port=0, data_dirs=None, token=None, show=False,
+          start=True, verbose=True):
+    """Serve the workbench page; returns the Bokeh server (its ``.port`` is the real port).
+
+    ``case``: a Case, a path or None. Each browser session gets its own State on the same
+    Case (derived fields are cached once). ``address`` other than loopback needs ``token``
+    (the page then asks for it). With ``start=True`` this blocks until stopped.
+    """
+    from .io import open_case
+
+    check_binding(address, token)
+    if case is not None and not hasattr(case, "map_field"):
+        case = open_case(case)
+    if data_dirs is None and case is not None and case.source not in (None, "<in-memory>"):
+        data_dirs = [str(Path(case.source).resolve().parent)]
+    port = int(port) or _free_port(address)
+    origins = [f"{address}:{port}"] + ([f"localhost:{port}", f"127.0.0.1:{port}"]
+                                       if address in LOOPBACK else [])
+    kw = {}
+    if token:
+        kw.update(basic_auth=str(token), cookie_secret=secrets.token_hex(32))
+
+    def page():
+        return Workbench(case, data_dirs=data_dirs).layout
+
+    server = pn.serve({"/": page}, port=port, address=address, websocket_origin=origins,
+                      show=show, start=False, title="PV Workbench", verbose=False, **kw)
+    host = f"[{address}]" if ":" in address else address
+    if verbose:
+        print(f"PV Workbench at http://{host}:{server.port}/", flush=True)
+        if data_dirs:
+            print("data folders: " + ", ".join(str(d) for d in _folders(data_dirs)), flush=True)
+    if start:
+        server.start()
+        try:
+            server.io_loop.start()
+        except KeyboardInterrupt:
+            pass
+    return server
+
+
+def main(argv=None):
+    """``pvwb serve [CASE] [--port N] [--address A --token T] [--data-dir D ...]``."""
+    argv = list(sys.argv[1:] if argv is None else argv)
+    if argv and argv[0] == "serve":
+        argv = argv[1:]
+    ap = argparse.ArgumentParser(prog="pvwb serve",
+                                 description="Serve the PV Workbench page in a browser.")
+    ap.add_argument("case", nargs="?", help="case file (netCDF, GRIB2 or Zarr)")
+    ap.add_argument("--port", type=int, default=0, help="port (default: a free one)")
+    ap.add_argument("--address", default="127.0.0.1",
+                    help="address to bind (default 127.0.0.1; others need --token)")
+    ap.add_argument("--token", "--password", dest="token",
+                    default=os.environ.get("PVWB_TOKEN"),
+                    help="secret the page asks for (or env PVWB_TOKEN); required off loopback")
+    ap.add_argument("--data-dir", action="append", dest="data_dirs",
+                    help="folder the page may open files from (repeatable; default: the "
+                         "case's folder)")
+    ap.add_argument("--show", action="store_true", help="open a browser tab")
+    args = ap.parse_args(argv)
+    try:
+        check_binding(args.address, args.token)
+        if args.data_dirs:
+            for d in args.data_dirs:
+                if not Path(d).expanduser().is_dir():
+                    raise InputError(f"data folder {d!r} does not exist; give an existing folder")
+        serve(args.case, address=args.address, port=args.port, data_dirs=args.data_dirs,
+              token=args.token, show=args.show)
+    except WorkbenchError as exc:
+        print(f"pvwb serve: {exc}", file=sys.stderr)
+        return 2
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

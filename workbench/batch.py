@@ -1,0 +1,127 @@
+"""Batch: the same pieces over every time and ensemble member, serially or on a Dask cluster.
+
+Each task opens the case from its path (workers share no memory with the client), takes the
+reference state computed once on the client, runs :func:`workbench.analysis.analyse` for one
+(time, member) and returns its attribution table. The tables are joined into one DataFrame
+with ``time`` and ``member`` columns. Computation only.
+"""
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+import pandas as pd
+
+from .errors import InputError
+
+__all__ = ["run_batch", "main"]
+
+
+def _one(path, ti, mi, pieces, target, reference, options):
+    import workbench as wb
+    from workbench.analysis import analyse
+
+    case = wb.open_case(path, **options)
+    _, table, tgt = analyse(case, ti, mi, pieces, target, reference)
+    table = table.reset_index()
+    table.insert(0, "member", "" if mi is None else str(case.members[mi]))
+    table.insert(0, "time", str(case.times[ti])[:19])
+    table["target_lon"], table["target_lat"], table["target_hpa"] = tgt
+    return table
+
+
+def run_batch(path, *, pieces=None, times=None, members=None, target=None, reference="time_mean",
+              client=None, options=None) -> pd.DataFrame:
+    """Attribution tables for every (time, member) of the case at ``path``.
+
+    Parameters
+    ----------
+    pieces : list of Piece or dicts (default: :func:`workbench.analysis.standard_pieces`)
+    times, members : indices to run (default: all)
+    target : (lon, lat, hPa) or None for each time's storm centre
+    reference : as for :meth:`Case.reference`; "time_mean" etc. are computed once here and
+        shipped to the workers
+    client : a ``dask.distributed.Client`` (the run is spread over its workers) or None (serial)
+    """
+    import workbench as wb
+
+    options = dict(options or {})
+    path = str(Path(path))
+    case = wb.open_case(path, **options)
+    times = list(range(case.times.size)) if times is None else [case.time_index(t) for t in times]
+    if case.members is None:
+        mems = [None]
+    else:
+        mems = list(range(case.members.size)) if members is None else [case.member_index(m) for m in members]
+    if not times:
+        raise InputError("run_batch: no times selected.")
+    ref = case.reference(reference) if isinstance(reference, str) else reference
+    pieces = None if pieces is None else [p.to_dict() if hasattr(p, "to_dict") else dict(p) for p in pieces]
+    jobs = [(ti, mi) for ti in times for mi in mems]
+    if client is None:
+        tables = [_one(path, ti, mi, pieces, target, ref, options) for ti, mi in jobs]
+    else:
+        ref_future = client.scatter(ref, broadcast=True)
+        futures = [client.submit(_one, path, ti, mi, pieces, target, ref_future, options, pure=False)
+                   for ti, mi in jobs]
+        tables = client.gather(futures)
+    out = pd.concat(tables, ignore_index=True)
+    out.attrs.update(source=path, reference=str(reference) if isinstance(reference, str) else "dataset")
+    return out
+
+
+def main(argv=None):
+    from .analysis import default_case_path
+
+    parser = argparse.ArgumentParser(prog="pvwb batch",
+                                     description="Attribution over every time and member, serially or on Dask.")
+    parser.add_argument("case", nargs="?", help="case file (default: the invented sample storm)")
+    parser.add_argument("--pieces", help="JSON file with a list of pieces (default: standard pieces)")
+    parser.add_argument("--target", help="lon,lat,hPa (default: each time's storm centre)")
+    parser.add_argument("--reference", default="time_mean")
+    group = parser.add_mutually_exclusive_group()
+    group.add_argument("--scheduler", help="address of a running Dask scheduler (tcp://127.0.0.1:8786)")
+    group.add_argument("--local-cluster", type=int, metavar="N", default=0,
+                       help="start a Dask cluster of N worker processes on 127.0.0.1")
+    parser.add_argument("-o", "--output", help="write the joined table as CSV")
+    parser.add_argument("--overwrite", action="store_true")
+    args = parser.parse_args(argv)
+    from .analysis import _parse_target
+    import json
+
+    pieces = None
+    if args.pieces:
+        try:
+            pieces = json.loads(Path(args.pieces).read_text())
+        except (OSError, ValueError) as exc:
+            raise InputError(f"Cannot read pieces from {args.pieces!r}: {exc}") from exc
+    path = args.case or default_case_path()
+    client = cluster = None
+    if args.scheduler or args.local_cluster:
+        from dask.distributed import Client, LocalCluster
+
+        if args.scheduler:
+            client = Client(args.scheduler)
+        else:
+            cluster = LocalCluster(n_workers=args.local_cluster, threads_per_worker=1, host="127.0.0.1",
+                                   dashboard_address=None, processes=True)
+            client = Client(cluster)
+        print(f"Dask: {client}")
+    try:
+        table = run_batch(path, pieces=pieces, target=_parse_target(args.target), reference=args.reference,
+                          client=client)
+    finally:
+        if client is not None:
+            client.close()
+        if cluster is not None:
+            cluster.close()
+    cols = ["time", "member", "piece", "height_anomaly", "wind_speed", "height_share_pct"]
+    with pd.option_context("display.width", 160, "display.max_rows", 500, "display.precision", 2):
+        print(table[cols].to_string(index=False))
+    if args.output:
+        from .export import atomic_target
+
+        with atomic_target(args.output, overwrite=args.overwrite, what="batch table") as tmp:
+            tmp.write_text(table.to_csv(index=False))
+        print(f"wrote {args.output}")
+    return 0

@@ -1,0 +1,383 @@
+"""The briefing PDF: one command from a case and a session to a multi-page PDF.
+
+Pages, in order:
+
+1. title page: case, data source and checksum, times, the invented-case label
+   when the case says it is invented, the settings and pieces, the caution;
+2. the session's map (field on its surface) with the balanced-flow overlay of
+   the visible pieces and the annotations;
+3. theta on the dynamic tropopause with the same overlay (left out when the
+   session's map already is on the tropopause);
+4. one page per section line of the session;
+5. the attribution table at the target point and one generated sentence per
+   piece on its share of the balanced height anomaly there.
+
+Every page carries the caution line. The PDF is written to a temporary file
+and renamed (never overwritten without ``overwrite=True``).
+
+Command line (wired to ``pvwb brief``)::
+
+    pvwb brief CASE --session FILE -o brief.pdf [--overwrite]
+"""
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import math
+import sys
+import textwrap
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from workbench.errors import ExportError, InputError, WorkbenchError
+from workbench.export import CAUTION, atomic_target, invented_label, package_version, utc_now_iso
+
+__all__ = ["make_briefing", "briefing_figures", "piece_summaries", "main"]
+
+PAGE = (11.69, 8.27)  # A4 landscape, inches
+
+
+def _state_of(case, state_or_session):
+    from workbench.state import State
+
+    if state_or_session is None:
+        return State(case)
+    if isinstance(state_or_session, (str, Path)):
+        from workbench.session import load_session
+
+        return load_session(state_or_session, case=case)
+    if isinstance(state_or_session, dict):
+        from workbench.session import check_case, state_body, FigureSettings
+
+        if state_or_session.get("schema") is not None:
+            check_case(state_or_session, case)
+            st = State.from_dict(state_body(state_or_session), case)
+            st.figure_settings = FigureSettings.from_dict(
+                state_or_session.get("figure_settings")).to_dict()
+            return st
+        return State.from_dict(state_or_session, case)
+    if hasattr(state_or_session, "pieces") and hasattr(state_or_session, "case"):
+        if state_or_session.case is not case and case is not None:
+            have = getattr(state_or_session.case, "checksum", None)
+            if have != getattr(case, "checksum", None):
+                raise InputError(
+                    "the state belongs to another case (checksums differ); pass the state's own "
+                    "case or load the session with this case"
+                )
+        return state_or_session
+    raise InputError(
+        f"make_briefing needs a State, a session file path or a session dict, not "
+        f"{type(state_or_session).__name__}"
+    )
+
+
+def _fmt_lonlat(lon, lat) -> str:
+    lon_n = ((float(lon) + 180.0) % 360.0) - 180.0
+    return f"{abs(lat):.1f}{'N' if lat >= 0 else 'S'} {abs(lon_n):.1f}{'E' if lon_n >= 0 else 'W'}"
+
+
+def _piece_line(p) -> str:
+    bits = [f"{p.name} ({p.kind}"]
+    if getattr(p, "layer", None):
+        lo, hi = p.layer
+        unit = "hPa" if p.layer_coord == "pressure" else "K"
+        bits.append(f", {min(lo, hi):g}-{max(lo, hi):g} {unit}")
+    sign = {1: "positive", -1: "negative", 0: "both signs"}.get(getattr(p, "sign", 0), "")
+    if p.kind in ("interior", "bottom", "top") and sign:
+        bits.append(f", {sign}")
+    if getattr(p, "threshold", 0):
+        bits.append(f", |PV'| >= {p.threshold:g} PVU")
+    if getattr(p, "rh_min", None) is not None:
+        bits.append(f", RH >= {p.rh_min:g} %")
+    if getattr(p, "polygon", None):
+        bits.append(f", lassoed polygon of {len(p.polygon)} vertices")
+    if not getattr(p, "visible", True):
+        bits.append(", hidden on maps")
+    return "".join(bits) + ")"
+
+
+def piece_summaries(table, target) -> list[str]:
+    """One sentence per piece on its share of the balanced height anomaly at the target,
+    plus a closing sentence on the sum of pieces against the full inversion.
+
+    ``table`` is the DataFrame of ``workbench.inversion.pieces.attribution``
+    (rows: pieces, "sum of pieces", "full inversion"); ``target`` is
+    (lon, lat, pressure hPa). The shares are the table's; this only words them.
+    """
+    lon, lat, p = target
+    where = f"{p:g} hPa at {_fmt_lonlat(lon, lat)}"
+    full = float(table.loc["full inversion", "height_anomaly"])
+    out = []
+    small = abs(full) < 1.0
+    for name in table.index:
+        if name in ("sum of pieces", "full inversion"):
+            continue
+        z = float(table.loc[name, "height_anomaly"])
+        share = float(table.loc[name, "height_share_pct"])
+        if not math.isfinite(share):
+            out.append(f"{name}: {z:+.1f} m at {where}; the full anomaly there is zero, so no "
+                       "share can be given.")
+        elif abs(z) < 0.05 * max(abs(full), 1e-9) and abs(share) < 5:
+            out.append(f"{name} contributes little at {where}: {z:+.1f} m ({share:.0f} % of the "
+                       f"full {full:+.1f} m).")
+        elif share >= 0:
+            out.append(f"{name} accounts for {share:.0f} % of the balanced height anomaly at "
+                       f"{where} ({z:+.1f} m of {full:+.1f} m).")
+        else:
+            out.append(f"{name} works against the full anomaly at {where}: {z:+.1f} m against "
+                       f"{full:+.1f} m ({share:.0f} %).")
+    total = float(table.loc["sum of pieces", "height_anomaly"])
+    out.append(f"The pieces sum to {total:+.2f} m; the full inversion gives {full:+.2f} m "
+               f"(difference {abs(total - full):.1e} m).")
+    if small:
+        out.append("The full height anomaly at the target is under 1 m, so the percentages "
+                   "there are sensitive; consider another target point.")
+    return out
+
+
+def _default_target(state):
+    """When the session has no target: the strongest negative balanced height anomaly of the
+    full inversion at the overlay level (the balanced low centre), with a note."""
+    res = state.results()
+    if not res or "total" not in res:
+        return None, None
+    tot = res["total"]["height_anomaly"]
+    lev = tot["pressure"].values
+    k = int(np.argmin(np.abs(lev - state.overlay_level * 100.0)))
+    z = tot.isel(pressure=k)
+    inner = z.isel(latitude=slice(1, -1), longitude=slice(1, -1))
+    vals = np.asarray(inner.values, float)
+    if not np.isfinite(vals).any():
+        return None, None
+    j, i = np.unravel_index(np.nanargmin(vals), vals.shape)
+    lon = float(inner["longitude"].values[i])
+    lat = float(inner["latitude"].values[j])
+    return (lon, lat, float(lev[k]) / 100.0), (
+        "No target point was set in the session; the target used is the lowest balanced "
+        "height anomaly of the full inversion at the overlay level.")
+
+
+def _text_page(fig, y, text, size=10, weight="normal", width=120, color="black", x=0.06):
+    """Write wrapped text at height y (figure fraction); return the next free y."""
+    lines = []
+    for para in str(text).split("\n"):
+        lines.extend(textwrap.wrap(para, width=width) or [""])
+    for line in lines:
+        fig.text(x, y, line, fontsize=size, fontweight=weight, va="top", ha="left", color=color)
+        y -= size * 1.45 / 72.0 / fig.get_figheight()
+    return y
+
+
+def _caution_band(fig, invented):
+    from workbench.views.static import _caution
+
+    _caution(fig, None, invented)
+
+
+def _title_page(case, state, generated):
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=PAGE)
+    inv = invented_label(case)
+    y = 0.93
+    y = _text_page(fig, y, "PV diagnosis briefing", size=22, weight="bold")
+    y = _text_page(fig, y - 0.01, str(case.name), size=16, weight="bold")
+    if inv:
+        y = _text_page(fig, y - 0.01, inv, size=13, weight="bold", color="#b03a00")
+    t = case.times
+    valid = str(np.datetime_as_string(np.datetime64(case.times[state.time_index], "m"))).replace(
+        "T", " ") + " UTC"
+    first = str(np.datetime_as_string(np.datetime64(t[0], "m"))).replace("T", " ")
+    last = str(np.datetime_as_string(np.datetime64(t[-1], "m"))).replace("T", " ")
+    from workbench.views.static import _surface_label
+
+    info = [
+        f"Data source: {case.source}",
+        f"Data checksum (sha256): {case.checksum or 'not recorded (in-memory data)'}",
+        f"Times in the case: {len(t)} ({first} to {last} UTC); briefing valid time: {valid}",
+    ]
+    if case.members is not None:
+        info.append(f"Ensemble member: {case.members[state.member or 0]}")
+    d = case.domain
+    info += [
+        f"Domain: {d['lat_min']:g} to {d['lat_max']:g} N, {d['lon_min']:g} to {d['lon_max']:g} E; "
+        f"{len(case.levels_hpa)} pressure levels {case.levels_hpa.max():g}-{case.levels_hpa.min():g} hPa",
+        f"Map: {state.field} {_surface_label(state.surface, state.threshold)}; balanced flow at "
+        f"{state.overlay_level:g} hPa; dynamic tropopause {state.threshold:g} PVU; "
+        f"reference state: {state.reference}",
+    ]
+    if state.target is not None:
+        lon, lat, p = state.target
+        info.append(f"Target point: {_fmt_lonlat(lon, lat)} at {p:g} hPa")
+    info.append(f"Generated {generated} by PV Workbench {package_version()}")
+    y = _text_page(fig, y - 0.03, "\n".join(info), size=10.5)
+    y = _text_page(fig, y - 0.02, "Pieces of the piecewise QG inversion", size=12, weight="bold")
+    if state.pieces:
+        y = _text_page(fig, y, "\n".join("- " + _piece_line(p) for p in state.pieces), size=10)
+    else:
+        y = _text_page(fig, y, "none (maps and sections only)", size=10)
+    if state.sections:
+        y = _text_page(fig, y - 0.02, "Sections", size=12, weight="bold")
+        y = _text_page(fig, y, "\n".join(
+            f"- {s.name or f'section {k}'}: {_fmt_lonlat(*s.start)} to {_fmt_lonlat(*s.end)}"
+            for k, s in enumerate(state.sections)), size=10)
+    fig.text(0.5, 0.11, CAUTION, ha="center", va="bottom", fontsize=11, wrap=True,
+             fontweight="bold",
+             bbox=dict(boxstyle="round,pad=0.6", fc="#fff8dc", ec="#8a6d00", lw=1.2))
+    return fig
+
+
+def _table_page(case, state):
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=PAGE)
+    inv = invented_label(case)
+    y = _text_page(fig, 0.95, f"{case.name}: attribution at the target point", size=15,
+                   weight="bold")
+    if not state.pieces:
+        _text_page(fig, y - 0.02, "The session has no pieces, so there is nothing to attribute.",
+                   size=11)
+        _caution_band(fig, inv)
+        return fig, []
+    target, note = (tuple(state.target), None) if state.target is not None else _default_target(state)
+    if target is None:
+        _text_page(fig, y - 0.02, "No target point could be chosen; set one in the session.",
+                   size=11)
+        _caution_band(fig, inv)
+        return fig, []
+    table = state.attribution(target)
+    lon, lat, p = target
+    valid = str(np.datetime_as_string(np.datetime64(case.times[state.time_index], "m"))).replace(
+        "T", " ") + " UTC"
+    y = _text_page(fig, y, f"Balanced fields of each piece at {_fmt_lonlat(lon, lat)}, {p:g} hPa; "
+                          f"valid {valid}; reference state {state.reference}", size=10.5)
+    if note:
+        y = _text_page(fig, y, note, size=9.5, color="#8a3b00")
+    cols = ["piece", "Z' (m)", "u (m s-1)", "v (m s-1)", "speed (m s-1)",
+            "\u03b6 (1e-5 s-1)", "Z' share (%)", "\u03b6 share (%)"]
+    rows = []
+    for name, r in table.iterrows():
+        def f(v, fmt):
+            return "n/a" if not np.isfinite(v) else format(v, fmt)
+
+        rows.append([str(name), f(r["height_anomaly"], "+.2f"), f(r["u"], "+.2f"),
+                     f(r["v"], "+.2f"), f(r["wind_speed"], ".2f"),
+                     f(r["relative_vorticity"] * 1e5, "+.2f"), f(r["height_share_pct"], ".1f"),
+                     f(r["vorticity_share_pct"], ".1f")])
+    n = len(rows) + 1
+    h = min(0.05 * n, 0.45)
+    ax = fig.add_axes([0.05, y - 0.02 - h, 0.9, h])
+    ax.set_axis_off()
+    tab = ax.table(cellText=rows, colLabels=cols, loc="upper center", cellLoc="center",
+                   colLoc="center", bbox=[0, 0, 1, 1])
+    tab.auto_set_font_size(False)
+    tab.set_fontsize(9)
+    for (r, c), cell in tab.get_celld().items():
+        if r == 0:
+            cell.set_text_props(fontweight="bold")
+            cell.set_facecolor("#e8eef6")
+        elif rows[r - 1][0] in ("sum of pieces", "full inversion"):
+            cell.set_facecolor("#f2f2f2")
+            cell.set_text_props(fontweight="bold")
+    y = y - 0.05 - h
+    sentences = piece_summaries(table, target)
+    y = _text_page(fig, y, "Summary", size=12, weight="bold")
+    y = _text_page(fig, y, "\n".join("- " + s for s in sentences), size=10.5)
+    _text_page(fig, max(y - 0.01, 0.16),
+               "Shares are of the balanced (QG) height anomaly of the full inversion at the "
+               "target; pieces add up exactly because QG inversion is linear. Wind speeds do not "
+               "add (each row is the speed of its own wind).", size=8.5, color="#444444")
+    _caution_band(fig, inv)
+    return fig, sentences
+
+
+def briefing_figures(case, state) -> list:
+    """The briefing's pages as matplotlib Figures (title, maps, sections, attribution)."""
+    from workbench.views import static
+
+    pages = [_title_page(case, state, utc_now_iso())]
+    view = static.state_view(state)
+    settings = dataclasses.replace(view["settings"], width_in=PAGE[0])
+    view["settings"] = settings
+    md_kwargs = {k: v for k, v in view.items() if k not in ("case", "sections")}
+    pages.append(static.draw_map(static.map_data(case, **md_kwargs), settings, page_size=PAGE))
+    if view["surface"] != "tropopause":
+        trop = dict(md_kwargs, field="potential_temperature", surface="tropopause")
+        trop_settings = dataclasses.replace(settings, contour_field=None, levels=None,
+                                            colour_map=None)
+        trop["settings"] = trop_settings
+        pages.append(static.draw_map(static.map_data(case, **trop), trop_settings,
+                                     page_size=PAGE))
+    for k in range(len(state.sections)):
+        pages.append(static.draw_section(static.state_section_data(state, k), settings,
+                                         page_size=PAGE))
+    fig, _ = _table_page(case, state)
+    pages.append(fig)
+    return pages
+
+
+def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: bool = False) -> Path:
+    """Write the briefing PDF of ``case`` with a State (or a session file/dict) to ``path``.
+
+    Refuses (ExportError) an existing ``path`` unless ``overwrite=True``; the file
+    appears only when complete. Returns the path.
+    """
+    from matplotlib.backends.backend_pdf import PdfPages
+    import matplotlib
+
+    path = Path(path)
+    if path.suffix.lower() != ".pdf":
+        raise ExportError(f"briefing file {path.name} must end in .pdf")
+    state = _state_of(case, state_or_session)
+    if path.exists() and not overwrite:  # refuse before the work, not after
+        raise ExportError(
+            f"briefing {path} already exists; pass overwrite=True (or --overwrite) to replace "
+            "it, or choose another name"
+        )
+    with matplotlib.rc_context({"pdf.fonttype": 42}):
+        pages = briefing_figures(case, state)
+        with atomic_target(path, overwrite=overwrite, error=ExportError, what="briefing") as tmp:
+            meta = {
+                "Title": f"PV diagnosis briefing: {case.name}",
+                "Author": "PV Workbench",
+                "Subject": CAUTION,
+                "Creator": f"PV Workbench {package_version()}",
+                "Keywords": "potential vorticity; piecewise inversion; diagnostic analysis",
+            }
+            with PdfPages(tmp, metadata=meta) as pdf:
+                for fig in pages:
+                    pdf.savefig(fig)
+    return path
+
+
+def main(argv=None) -> int:
+    """``pvwb brief CASE --session FILE -o brief.pdf [--overwrite]``; returns an exit code."""
+    argv = list(sys.argv[1:] if argv is None else argv)
+    if argv and argv[0] == "brief":
+        argv = argv[1:]
+    ap = argparse.ArgumentParser(
+        prog="pvwb brief",
+        description="Make a multi-page briefing PDF (maps, sections, attribution) from a case "
+                    "and a saved session. " + CAUTION,
+    )
+    ap.add_argument("case", help="case file (netCDF, GRIB2 or Zarr)")
+    ap.add_argument("--session", "-s", help="session file (JSON) saved from the workbench")
+    ap.add_argument("-o", "--output", default="briefing.pdf", help="output PDF (default briefing.pdf)")
+    ap.add_argument("--overwrite", action="store_true", help="replace the output if it exists")
+    args = ap.parse_args(argv)
+    try:
+        from workbench.io import open_case
+
+        case = open_case(args.case)
+        out = make_briefing(case, args.session, args.output, overwrite=args.overwrite)
+    except WorkbenchError as exc:
+        print(f"pvwb brief: error: {exc}", file=sys.stderr)
+        return 2
+    print(f"briefing written to {out}")
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    raise SystemExit(main())

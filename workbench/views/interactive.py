@@ -1,0 +1,768 @@
+"""Interactive views (Bokeh models shown through Panel): the map, the section, the tables.
+
+Every view reads the shared :class:`~workbench.state.State` (and through it the Case) and
+draws; none computes physics. The map figure is built once per case; afterwards every change
+(field, time, pieces, balanced-flow overlay, section lines, target point) replaces the
+``.data`` of its ColumnDataSource or a mapper's range, so the browser updates the existing
+plot in place instead of rebuilding it.
+
+Mouse gestures on the map are reported to callbacks the app sets:
+
+* ``on_lasso(polygon)``: a lasso drawn with the lasso tool, ``[(lon, lat), ...]``;
+* ``on_section(start, end)``: a line dragged with the section tool, two (lon, lat) points;
+* ``on_tap(lon, lat)``: a click (the app uses it for the attribution target).
+
+Colour maps are those of the static figures (:data:`workbench.views.static.COLOUR_MAPS`:
+perceptually uniform, colour-blind safe), so the app and the briefing figures agree.
+"""
+from __future__ import annotations
+
+import math
+from functools import lru_cache
+
+import numpy as np
+import panel as pn
+from bokeh.events import SelectionGeometry, Tap
+from bokeh.models import (BoxZoomTool, ColorBar, ColumnDataSource, FreehandDrawTool, HoverTool,
+                          Label, LassoSelectTool, LinearColorMapper, PanTool, Range1d,
+                          ResetTool, SaveTool, TapTool, WheelZoomTool)
+from bokeh.plotting import figure
+
+from ..export import CAUTION, invented_label
+from ..sections import great_circle_path
+from ..state import surface_label
+
+__all__ = ["MapView", "SectionView", "palette", "field_style", "coastline_lines", "FIELD_LABELS",
+           "MODES"]
+
+#: field -> (label, display units, colour-map key, diverging)
+FIELD_LABELS = {
+    "ertel_pv": ("PV", "PVU", "pv", False),
+    "ertel_pv_anomaly": ("PV anomaly", "PVU", "anomaly", True),
+    "potential_temperature": ("potential temperature", "K", "theta", False),
+    "pressure": ("pressure", "hPa", "pressure", False),
+    "wind_speed": ("wind speed", "m s-1", "speed", False),
+    "geopotential_height": ("geopotential height", "m", "height", False),
+    "u": ("eastward wind", "m s-1", "anomaly", True),
+    "v": ("northward wind", "m s-1", "anomaly", True),
+}
+
+#: Mouse modes of the map: label -> tool key.
+MODES = {"Pan / zoom": "pan", "Lasso a piece": "lasso", "Draw a section": "section",
+         "Pick target point": "target"}
+
+BALANCED_COLOUR = "#1a1a1a"
+POS_CONTOUR = "#b2182b"
+NEG_CONTOUR = "#2166ac"
+
+
+@lru_cache(maxsize=None)
+def palette(key: str, n: int = 256) -> tuple:
+    """A Bokeh palette (hex strings) of the static figures' colour map ``key``."""
+    from matplotlib.colors import to_hex
+
+    from .static import COLOUR_MAPS
+
+    cmap = COLOUR_MAPS[key]
+    return tuple(to_hex(cmap(x)) for x in np.linspace(0, 1, n))
+
+
+def _nice(x: float) -> float:
+    if not np.isfinite(x) or x <= 0:
+        return 1.0
+    mag = 10 ** math.floor(math.log10(x))
+    for m in (1, 2, 2.5, 5, 10):
+        if m * mag >= x * 0.999:
+            return m * mag
+    return 10 * mag
+
+
+def field_style(field: str, values: np.ndarray):
+    """(palette, low, high, colour-bar title, scale to display units) for a map field."""
+    label, units, key, diverging = FIELD_LABELS.get(field, (field, "", "theta", False))
+    scale = 0.01 if field == "pressure" else 1.0
+    v = np.asarray(values, float)[np.isfinite(values)] * scale
+    if v.size == 0:
+        lo, hi = (-1.0, 1.0) if diverging else (0.0, 1.0)
+    elif field == "ertel_pv":
+        lo, hi = 0.0, float(min(12.0, max(4.0, np.percentile(v, 99))))
+        hi = math.ceil(hi)
+    elif diverging:
+        m = _nice(float(np.percentile(np.abs(v), 99)) or 1.0)
+        lo, hi = -m, m
+    else:
+        lo, hi = (float(x) for x in np.percentile(v, [1, 99]))
+        if hi <= lo:
+            hi = lo + 1.0
+    return palette(key), lo, hi, f"{label} ({units})", scale
+
+
+# --------------------------------------------------------------------------- coastlines
+
+
+@lru_cache(maxsize=8)
+def coastline_lines(lon_min, lon_max, lat_min, lat_max):
+    """Coastline segments clipped to a lon/lat box: (xs, ys, description).
+
+    Reads the finest coastline shapefile on this machine (GSHHS or Natural Earth under
+    cartopy's pre-existing data folder, Debian's /usr/share/cartopy/data); nothing is
+    downloaded. Returns empty lists and a message when no shapefile is available.
+    """
+    try:
+        from shapely.geometry import box
+        from shapely import affinity
+
+        from .static import coastline_source
+
+        src = coastline_source()
+        if src is None:
+            return [], [], ("no coastline data on this machine (looked in cartopy's data "
+                            "folders); map drawn without coastlines")
+        label, path = src
+        from cartopy.io import shapereader
+
+        geoms = list(shapereader.Reader(str(path)).geometries())
+    except Exception as exc:  # never let map data stop the app
+        return [], [], f"coastlines unavailable ({exc}); map drawn without them"
+    pad = 1.0
+    clip = box(lon_min - pad, lat_min - pad, lon_max + pad, lat_max + pad)
+    xs, ys = [], []
+    for shift in (-360.0, 0.0, 360.0):
+        c = affinity.translate(clip, -shift, 0)
+        for g in geoms:
+            if not g.intersects(c):
+                continue
+            part = g.boundary.intersection(c) if g.geom_type.endswith("Polygon") else g.intersection(c)
+            for line in getattr(part, "geoms", [part]):
+                if line.is_empty or not hasattr(line, "coords"):
+                    continue
+                arr = np.asarray(line.coords)
+                if len(arr) < 2:
+                    continue
+                xs.append((arr[:, 0] + shift).tolist())
+                ys.append(arr[:, 1].tolist())
+    return xs, ys, f"coastlines: {label}"
+
+
+# --------------------------------------------------------------------------- drawing helpers
+
+
+def _contour_lines(x, y, z, levels):
+    """Contour lines of z(y, x) as Bokeh multi_line lists, for each level (display only)."""
+    import contourpy
+
+    z = np.ma.masked_invalid(np.asarray(z, float))
+    if z.count() < 4:
+        return [], []
+    gen = contourpy.contour_generator(np.asarray(x, float), np.asarray(y, float), z,
+                                      line_type="Separate")
+    xs, ys = [], []
+    for lev in levels:
+        for seg in gen.lines(float(lev)):
+            if len(seg) >= 2:
+                xs.append(seg[:, 0].tolist())
+                ys.append(seg[:, 1].tolist())
+    return xs, ys
+
+
+def _vector_data(lon, lat, u, v, stride, scale_deg_per_ms, coslat0, min_speed=0.0):
+    """Arrow shafts and heads for wind (u, v) on a lon/lat map (display geometry only)."""
+    jj = np.arange(stride // 2, len(lat), stride)
+    ii = np.arange(stride // 2, len(lon), stride)
+    LO, LA = np.meshgrid(lon[ii], lat[jj])
+    U = np.asarray(u, float)[np.ix_(jj, ii)]
+    V = np.asarray(v, float)[np.ix_(jj, ii)]
+    ok = np.isfinite(U) & np.isfinite(V) & (np.hypot(U, V) > min_speed)
+    x0, y0, U, V = LO[ok], LA[ok], U[ok], V[ok]
+    x1 = x0 + U * scale_deg_per_ms / coslat0
+    y1 = y0 + V * scale_deg_per_ms
+    angle = np.arctan2(V, U) - np.pi / 2
+    speed = np.hypot(U, V)
+    shafts = dict(x0=x0.tolist(), y0=y0.tolist(), x1=x1.tolist(), y1=y1.tolist(),
+                  speed=speed.tolist())
+    heads = dict(x=x1.tolist(), y=y1.tolist(), angle=angle.tolist())
+    return shafts, heads
+
+
+def _empty_vectors():
+    return dict(x0=[], y0=[], x1=[], y1=[], speed=[]), dict(x=[], y=[], angle=[])
+
+
+def _push(pane):
+    """In a notebook (no server), send in-place model changes to the page."""
+    doc = pn.state.curdoc
+    if doc is not None and getattr(doc, "session_context", None) is not None:
+        return
+    try:
+        pn.io.push_notebook(pane)
+    except Exception:
+        pass
+
+
+def _centroid(poly):
+    a = np.asarray(poly, float)
+    return float(a[:, 0].mean()), float(a[:, 1].mean())
+
+
+# --------------------------------------------------------------------------- the map
+
+
+class MapView:
+    """The map: the state's field on its surface, coastlines, winds, pieces, overlay.
+
+    Built once per case (:attr:`figure`, Bokeh name ``"pvwb-map"``); everything afterwards
+    updates data sources in place. ``pane`` is the Panel pane to put in a layout.
+    """
+
+    def __init__(self, state, width=820, max_height=640):
+        self.state = state
+        self.on_lasso = None
+        self.on_section = None
+        self.on_tap = None
+        self.mode = "pan"
+        self._watchers = []
+        case = state.case
+        lat = case.data["latitude"].values
+        lon = case.data["longitude"].values
+        self.lon, self.lat = lon, lat
+        self.coslat0 = math.cos(math.radians(0.5 * (lat.min() + lat.max())))
+        dlon, dlat = float(lon.max() - lon.min()), float(lat.max() - lat.min())
+        height = int(width * dlat / max(dlon * self.coslat0, 1e-6))
+        if height > max_height:
+            width, height = int(width * max_height / height), max_height
+        self._build(width, max(height, 240))
+        self.pane = pn.pane.Bokeh(self.figure, sizing_mode="fixed")
+        for names, fn in ((["case", "time_index", "member", "surface", "field", "reference",
+                            "threshold"], self.refresh_field),
+                          (["pieces", "overlay_level", "time_index", "member", "reference"],
+                           self.refresh_overlay),
+                          (["pieces"], self.refresh_pieces),
+                          (["sections", "active_section"], self.refresh_sections),
+                          (["target"], self.refresh_target),
+                          (["annotations"], self.refresh_annotations)):
+            self._watchers.append(state.param.watch(lambda *ev, fn=fn: self._safe(fn), names))
+        self.refresh_all()
+
+    def detach(self):
+        """Stop following the state (before the view is dropped)."""
+        for w in self._watchers:
+            self.state.param.unwatch(w)
+        self._watchers = []
+
+    # ---------------------------------------------------------------- build (once)
+    def _build(self, width, height):
+        lon, lat = self.lon, self.lat
+        pad_x = 0.5 * float(lon[1] - lon[0]) if len(lon) > 1 else 0.5
+        pad_y = 0.5 * float(abs(lat[1] - lat[0])) if len(lat) > 1 else 0.5
+        x_range = Range1d(float(lon.min()) - pad_x, float(lon.max()) + pad_x,
+                          bounds=(float(lon.min()) - pad_x, float(lon.max()) + pad_x))
+        y_range = Range1d(float(lat.min()) - pad_y, float(lat.max()) + pad_y,
+                          bounds=(float(lat.min()) - pad_y, float(lat.max()) + pad_y))
+        self.tools = dict(
+            pan=PanTool(), wheel=WheelZoomTool(), box=BoxZoomTool(), reset=ResetTool(),
+            save=SaveTool(),
+            lasso=LassoSelectTool(description="Lasso a piece (a PV anomaly region)"),
+            section=FreehandDrawTool(description="Draw a section line (drag from start to end)",
+                                     num_objects=1),
+            target=TapTool(description="Pick the attribution target point"),
+        )
+        fig = figure(name="pvwb-map", width=width, height=height, x_range=x_range,
+                     y_range=y_range, tools=list(self.tools.values()), toolbar_location="above",
+                     x_axis_label="longitude (°E)", y_axis_label="latitude (°N)",
+                     output_backend="canvas")
+        fig.toolbar.logo = None
+        fig.toolbar.active_scroll = self.tools["wheel"]
+        fig.toolbar.active_drag = self.tools["pan"]
+        fig.title.text_font_size = "13px"
+        fig.grid.grid_line_alpha = 0.25
+        self.figure = fig
+        S = ColumnDataSource
+        self.src = dict(
+            field=S(dict(image=[np.zeros((1, 1))], x=[0.0], y=[0.0], dw=[1.0], dh=[1.0]),
+                    name="pvwb-field"),
+            trop=S(dict(xs=[], ys=[]), name="pvwb-pv2"),
+            coast=S(dict(xs=[], ys=[]), name="pvwb-coast"),
+            wind=S(_empty_vectors()[0], name="pvwb-wind"),
+            wind_head=S(_empty_vectors()[1], name="pvwb-wind-head"),
+            bal=S(_empty_vectors()[0], name="pvwb-balanced-vectors"),
+            bal_head=S(_empty_vectors()[1], name="pvwb-balanced-heads"),
+            zpos=S(dict(xs=[], ys=[]), name="pvwb-height-pos"),
+            zneg=S(dict(xs=[], ys=[]), name="pvwb-height-neg"),
+            pieces=S(dict(xs=[], ys=[], colour=[], name=[], alpha=[]), name="pvwb-pieces"),
+            piece_labels=S(dict(x=[], y=[], text=[], colour=[]), name="pvwb-piece-labels"),
+            sections=S(dict(xs=[], ys=[], width=[], alpha=[]), name="pvwb-sections"),
+            section_ends=S(dict(x=[], y=[], text=[]), name="pvwb-section-ends"),
+            stroke=S(dict(xs=[], ys=[]), name="pvwb-stroke"),
+            target=S(dict(x=[], y=[]), name="pvwb-target"),
+            grid=S(dict(x=[], y=[]), name="pvwb-grid"),
+            ann_text=S(dict(x=[], y=[], text=[], colour=[]), name="pvwb-ann-text"),
+            ann_poly=S(dict(xs=[], ys=[], colour=[]), name="pvwb-ann-regions"),
+            ann_arrow=S(dict(x0=[], y0=[], x1=[], y1=[], colour=[]), name="pvwb-ann-arrows"),
+        )
+        src = self.src
+        self.mapper = LinearColorMapper(palette=palette("pv"), low=0, high=8, nan_color=(0, 0, 0, 0))
+        self.image = fig.image(image="image", x="x", y="y", dw="dw", dh="dh", source=src["field"],
+                               color_mapper=self.mapper, name="pvwb-field-image")
+        self.colorbar = ColorBar(color_mapper=self.mapper, title="PV (PVU)", width=14,
+                                 title_text_font_size="12px", major_label_text_font_size="11px",
+                                 name="pvwb-colorbar")
+        fig.add_layout(self.colorbar, "right")
+        fig.multi_line("xs", "ys", source=src["coast"], line_color="#3b3b3b", line_width=1.0)
+        fig.multi_line("xs", "ys", source=src["trop"], line_color="#000000", line_width=1.6,
+                       line_alpha=0.8)
+        fig.segment("x0", "y0", "x1", "y1", source=src["wind"], line_color="#5a5a5a",
+                    line_width=1.0, line_alpha=0.75)
+        fig.scatter("x", "y", angle="angle", source=src["wind_head"], marker="triangle", size=5,
+                    fill_color="#5a5a5a", line_color=None, fill_alpha=0.75)
+        fig.patches("xs", "ys", source=src["ann_poly"], fill_alpha=0.12, fill_color="colour",
+                    line_color="colour", line_width=2, line_dash="dotted")
+        fig.patches("xs", "ys", source=src["pieces"], fill_color="colour", fill_alpha="alpha",
+                    line_color="colour", line_width=2.2, line_dash="dashed", name="pvwb-piece-patches")
+        fig.text("x", "y", text="text", source=src["piece_labels"], text_color="colour",
+                 text_font_size="12px", text_font_style="bold", text_align="center",
+                 text_baseline="middle", background_fill_color="white",
+                 background_fill_alpha=0.7)
+        fig.multi_line("xs", "ys", source=src["zpos"], line_color=POS_CONTOUR, line_width=2.0,
+                       name="pvwb-height-pos-lines")
+        fig.multi_line("xs", "ys", source=src["zneg"], line_color=NEG_CONTOUR, line_width=2.0,
+                       line_dash="dashed", name="pvwb-height-neg-lines")
+        fig.segment("x0", "y0", "x1", "y1", source=src["bal"], line_color=BALANCED_COLOUR,
+                    line_width=1.8, name="pvwb-balanced-shafts")
+        fig.scatter("x", "y", angle="angle", source=src["bal_head"], marker="triangle", size=7,
+                    fill_color=BALANCED_COLOUR, line_color=None)
+        fig.multi_line("xs", "ys", source=src["sections"], line_color="#6a3d9a",
+                       line_width="width", line_alpha="alpha")
+        fig.text("x", "y", text="text", source=src["section_ends"], text_color="#6a3d9a",
+                 text_font_size="14px", text_font_style="bold", text_align="center",
+                 text_baseline="bottom", y_offset=-4)
+        stroke = fig.multi_line("xs", "ys", source=src["stroke"], line_color="#6a3d9a",
+                                line_width=2, line_dash="dotted")
+        self.tools["section"].renderers = [stroke]
+        fig.scatter("x", "y", source=src["target"], marker="circle_x", size=16,
+                    fill_color="white", fill_alpha=0.6, line_color="#000000", line_width=2)
+        fig.segment("x0", "y0", "x1", "y1", source=src["ann_arrow"], line_color="colour",
+                    line_width=2)
+        fig.text("x", "y", text="text", source=src["ann_text"], text_color="colour",
+                 text_font_size="12px", text_font_style="bold", background_fill_color="white",
+                 background_fill_alpha=0.7)
+        grid = fig.scatter("x", "y", source=src["grid"], size=1, alpha=0.0,
+                           nonselection_alpha=0.0, selection_alpha=0.0, name="pvwb-grid-points")
+        self.tools["lasso"].renderers = [grid]
+        self.tools["target"].renderers = [grid]
+        fig.add_tools(HoverTool(renderers=[self.image], tooltips=[
+            ("lon", "$x{0.00}"), ("lat", "$y{0.00}"), ("value", "@image{0.00}")]))
+        self.key = Label(x=6, y=6, x_units="screen", y_units="screen", text="",
+                         text_font_size="11px", background_fill_color="white",
+                         background_fill_alpha=0.8, name="pvwb-overlay-key")
+        fig.add_layout(self.key)
+        fig.on_event(SelectionGeometry, self._lasso_event)
+        fig.on_event(Tap, self._tap_event)
+        src["stroke"].on_change("data", self._stroke_changed)
+        # lasso hit-test points: a coarse grid (display only)
+        step = max(1, int(round(len(lon) / 40)))
+        gx, gy = np.meshgrid(lon[::step], self.lat[::step])
+        src["grid"].data = dict(x=gx.ravel().tolist(), y=gy.ravel().tolist())
+        d = self.state.case.domain
+        xs, ys, note = coastline_lines(d["lon_min"], d["lon_max"], d["lat_min"], d["lat_max"])
+        src["coast"].data = dict(xs=xs, ys=ys)
+        self.coast_note = note
+
+    # ---------------------------------------------------------------- modes and events
+    def set_mode(self, mode):
+        """Activate the drag/tap tool of a mouse mode: 'pan', 'lasso', 'section' or 'target'."""
+        tb = self.figure.toolbar
+        if mode == "lasso":
+            tb.active_drag = self.tools["lasso"]
+            tb.active_tap = None
+        elif mode == "section":
+            tb.active_drag = self.tools["section"]
+            tb.active_tap = None
+        elif mode == "target":
+            tb.active_drag = self.tools["pan"]
+            tb.active_tap = self.tools["target"]
+        else:
+            tb.active_drag = self.tools["pan"]
+            tb.active_tap = None
+        self.mode = mode
+        _push(self.pane)
+
+    def _lasso_event(self, event):
+        if not event.final or self.on_lasso is None:
+            return
+        g = event.geometry
+        xs, ys = g.get("x"), g.get("y")
+        if xs is None or len(xs) < 3:
+            return
+        poly = [(float(x), float(y)) for x, y in zip(xs, ys)]
+        self.on_lasso(poly)
+
+    def _tap_event(self, event):
+        if getattr(self, "mode", "pan") != "target" or self.on_tap is None:
+            return
+        if event.x is None or event.y is None:
+            return
+        self.on_tap(float(event.x), float(event.y))
+
+    def _stroke_changed(self, attr, old, new):
+        xs, ys = new.get("xs", []), new.get("ys", [])
+        if not xs or not len(xs[0]):
+            return
+        x, y = list(xs[-1]), list(ys[-1])
+        self.src["stroke"].data = dict(xs=[], ys=[])
+        if len(x) < 2 or self.on_section is None:
+            return
+        self.on_section((float(x[0]), float(y[0])), (float(x[-1]), float(y[-1])))
+
+    # ---------------------------------------------------------------- refresh
+    def _safe(self, fn):
+        try:
+            fn()
+        except Exception as exc:  # the page never dies; the status says why
+            self.state.report(exc)
+        _push(self.pane)
+
+    def refresh_all(self):
+        for fn in (self.refresh_field, self.refresh_overlay, self.refresh_pieces,
+                   self.refresh_sections, self.refresh_target, self.refresh_annotations):
+            self._safe(fn)
+
+    def refresh_field(self):
+        st = self.state
+        da = st.map_field()
+        lat = da["latitude"].values
+        lon = da["longitude"].values
+        z = np.asarray(da.transpose("latitude", "longitude").values, float)
+        pal, lo, hi, title, scale = field_style(st.field, z)
+        img = z * scale
+        if len(lat) > 2 and np.ptp(np.diff(lat)) > 1e-6 * abs(lat[-1] - lat[0]):
+            # display on a uniform latitude grid (the image glyph needs one)
+            ulat = np.linspace(lat.min(), lat.max(), len(lat))
+            img = np.array([np.interp(ulat, lat, img[:, i]) for i in range(img.shape[1])]).T
+            lat = ulat
+        dx = float(lon[1] - lon[0]) if len(lon) > 1 else 1.0
+        dy = float(lat[1] - lat[0]) if len(lat) > 1 else 1.0
+        self.src["field"].data = dict(image=[img], x=[float(lon[0]) - dx / 2],
+                                      y=[float(lat[0]) - dy / 2], dw=[dx * len(lon)],
+                                      dh=[dy * len(lat)])
+        self.mapper.update(palette=list(pal), low=lo, high=hi)
+        self.colorbar.title = title
+        if st.field == "ertel_pv":  # the threshold contour: the dynamic tropopause's trace
+            xs, ys = _contour_lines(lon, da["latitude"].values, z, [st.threshold * np.sign(
+                np.nanmean(st.case.data["latitude"].values))])
+        else:
+            xs, ys = [], []
+        self.src["trop"].data = dict(xs=xs, ys=ys)
+        self._refresh_wind()
+        t = st.time_labels[st.time_index]
+        label, units = FIELD_LABELS.get(st.field, (st.field, ""))[:2]
+        self.figure.title.text = (f"{label} on {surface_label(st.surface, st.threshold)}, "
+                                  f"valid {t}" + (f", member {st.member}" if st.member is not None
+                                                  else ""))
+
+    def _refresh_wind(self):
+        st = self.state
+        try:
+            u = st.case.map_field("u", st.surface, reference=st.reference,
+                                  threshold=st.threshold, **st._sel())
+            v = st.case.map_field("v", st.surface, reference=st.reference,
+                                  threshold=st.threshold, **st._sel())
+        except Exception:
+            self.src["wind"].data, self.src["wind_head"].data = _empty_vectors()
+            return
+        stride = max(1, int(round(len(self.lon) / 22)))
+        spacing = stride * float(abs(self.lat[1] - self.lat[0]) if len(self.lat) > 1 else 1.0)
+        scale = 0.9 * spacing / 50.0  # 50 m/s spans about one arrow spacing
+        shafts, heads = _vector_data(self.lon, self.lat,
+                                     u.transpose("latitude", "longitude").values,
+                                     v.transpose("latitude", "longitude").values,
+                                     stride, scale, self.coslat0, min_speed=1.0)
+        self.src["wind"].data = shafts
+        self.src["wind_head"].data = heads
+
+    def refresh_overlay(self):
+        """Balanced flow of the visible pieces: vectors and height-anomaly contours, in place."""
+        st = self.state
+        ov = st.overlay() if st.pieces else None
+        if ov is None:
+            self.src["bal"].data, self.src["bal_head"].data = _empty_vectors()
+            self.src["zpos"].data = dict(xs=[], ys=[])
+            self.src["zneg"].data = dict(xs=[], ys=[])
+            self.key.text = "" if not st.pieces else "no visible piece (show one in the list)"
+            return
+        lon, lat = ov["longitude"].values, ov["latitude"].values
+        u = ov["u"].transpose("latitude", "longitude").values
+        v = ov["v"].transpose("latitude", "longitude").values
+        z = ov["height_anomaly"].transpose("latitude", "longitude").values
+        speed = np.hypot(u, v)
+        vmax = float(np.nanmax(speed)) if np.isfinite(speed).any() else 0.0
+        ref = _nice(max(vmax, 1e-3))
+        stride = max(1, int(round(len(lon) / 18)))
+        spacing = stride * float(abs(lat[1] - lat[0]) if len(lat) > 1 else 1.0)
+        shafts, heads = _vector_data(lon, lat, u, v, stride, 1.1 * spacing / ref, self.coslat0,
+                                     min_speed=0.05 * ref)
+        self.src["bal"].data = shafts
+        self.src["bal_head"].data = heads
+        zmax = float(np.nanmax(np.abs(z))) if np.isfinite(z).any() else 0.0
+        step = _nice(zmax / 5.0) if zmax > 0 else 1.0
+        levels = np.arange(step, zmax + step, step)
+        xs, ys = _contour_lines(lon, lat, z, levels)
+        self.src["zpos"].data = dict(xs=xs, ys=ys)
+        xs, ys = _contour_lines(lon, lat, z, -levels)
+        self.src["zneg"].data = dict(xs=xs, ys=ys)
+        names = ", ".join(ov.attrs["pieces"])
+        self.key.text = (f"balanced flow at {ov.attrs['level_hpa']:g} hPa of: {names} | "
+                         f"arrow ≈ {ref:g} m/s | height anomaly every {step:g} m "
+                         "(red +, blue dashed −)")
+
+    def refresh_pieces(self):
+        xs, ys, col, names, alpha = [], [], [], [], []
+        lx, ly, lt, lc = [], [], [], []
+        for p in self.state.pieces:
+            if p.polygon is None:
+                continue
+            a = np.asarray(p.polygon, float)
+            xs.append(a[:, 0].tolist())
+            ys.append(a[:, 1].tolist())
+            c = p.colour or "#444444"
+            col.append(c)
+            names.append(p.name)
+            alpha.append(0.08 if p.visible else 0.0)
+            cx, cy = _centroid(p.polygon)
+            lx.append(cx)
+            ly.append(cy)
+            lt.append(p.name if p.visible else f"{p.name} (hidden)")
+            lc.append(c)
+        self.src["pieces"].data = dict(xs=xs, ys=ys, colour=col, name=names, alpha=alpha)
+        self.src["piece_labels"].data = dict(x=lx, y=ly, text=lt, colour=lc)
+
+    def refresh_sections(self):
+        st = self.state
+        xs, ys, w, al = [], [], [], []
+        ex, ey, et = [], [], []
+        for k, s in enumerate(st.sections):
+            lon, lat, _, _ = great_circle_path(s.start, s.end, 60)
+            xs.append(lon.tolist())
+            ys.append(lat.tolist())
+            active = k == st.active_section
+            w.append(3.0 if active else 1.5)
+            al.append(1.0 if active else 0.5)
+            if active:
+                ex += [float(lon[0]), float(lon[-1])]
+                ey += [float(lat[0]), float(lat[-1])]
+                et += ["A", "B"]
+        self.src["sections"].data = dict(xs=xs, ys=ys, width=w, alpha=al)
+        self.src["section_ends"].data = dict(x=ex, y=ey, text=et)
+
+    def refresh_target(self):
+        t = self.state.target
+        self.src["target"].data = dict(x=[] if t is None else [t[0]], y=[] if t is None else [t[1]])
+
+    def refresh_annotations(self):
+        from ..annotations import Arrow, Label as ALabel, Region
+
+        tx, ty, tt, tc = [], [], [], []
+        px, py, pc = [], [], []
+        a0x, a0y, a1x, a1y, ac = [], [], [], [], []
+        for a in self.state.annotations:
+            if getattr(a, "space", "map") != "map":
+                continue
+            if isinstance(a, ALabel):
+                tx.append(a.lon), ty.append(a.lat), tt.append(a.text), tc.append(a.colour)
+            elif isinstance(a, Arrow):
+                a0x.append(a.start_lon), a0y.append(a.start_lat)
+                a1x.append(a.end_lon), a1y.append(a.end_lat), ac.append(a.colour)
+                if a.text:
+                    tx.append(a.start_lon), ty.append(a.start_lat), tt.append(a.text)
+                    tc.append(a.colour)
+            elif isinstance(a, Region):
+                arr = np.asarray(a.polygon, float)
+                px.append(arr[:, 0].tolist()), py.append(arr[:, 1].tolist()), pc.append(a.colour)
+                if a.label:
+                    cx, cy = a.centroid()
+                    tx.append(cx), ty.append(cy), tt.append(a.label), tc.append(a.colour)
+        self.src["ann_text"].data = dict(x=tx, y=ty, text=tt, colour=tc)
+        self.src["ann_poly"].data = dict(xs=px, ys=py, colour=pc)
+        self.src["ann_arrow"].data = dict(x0=a0x, y0=a0y, x1=a1x, y1=a1y, colour=ac)
+
+
+# --------------------------------------------------------------------------- the section
+
+
+class SectionView:
+    """The cross-section of the state's active section line.
+
+    Top panel: PV shaded (same colours as the map), potential temperature contours (every
+    5 K), section-normal wind (m s-1, positive into the page to the left of A->B; solid
+    positive, dashed negative) and the dynamic tropopause. Bottom panel, once pieces exist:
+    the visible pieces' summed balanced temperature anomaly (shaded), balanced normal wind
+    and the QG omega attributable to them (ascent dashed). Rebuilt when its line, the time
+    or the pieces change (the map is never rebuilt).
+    """
+
+    def __init__(self, state, width=820, defer=None):
+        self.state = state
+        self.width = width
+        self.defer = defer or (lambda fn: fn())
+        self.dataset = None
+        self.pane = pn.Column(self._placeholder(), sizing_mode="stretch_width",
+                              name="pvwb-section", css_classes=["pvwb-section"])
+        self._watchers = [state.param.watch(lambda *ev: self.defer(self.refresh), [
+            "sections", "active_section", "time_index", "member", "pieces", "reference",
+            "threshold"])]
+        self.refresh()
+
+    def detach(self):
+        for w in self._watchers:
+            self.state.param.unwatch(w)
+        self._watchers = []
+
+    def _placeholder(self):
+        return pn.pane.Markdown(
+            "**Section.** Choose *Draw a section* and drag a line across the map "
+            "(from A to B).", styles={"color": "#555"}, name="pvwb-section-hint")
+
+    def refresh(self):
+        st = self.state
+        if st.active_section is None or not st.sections:
+            self.pane.objects = [self._placeholder()]
+            return
+        try:
+            sec = st.section()
+        except Exception as exc:
+            st.report(exc)
+            self.pane.objects = [self._placeholder()]
+            return
+        figs = [self._main_figure(sec)]
+        if "balanced_normal_wind" in sec:
+            figs.append(self._pieces_figure(sec, figs[0]))
+        self.dataset = sec
+        self.pane.objects = [pn.pane.Bokeh(f, name="pvwb-section-figure") for f in figs]
+
+    def _frame(self, sec, title, height, x_range=None):
+        d = sec["distance"].values
+        p = sec["pressure"].values / 100.0
+        kw = dict(x_range=x_range) if x_range is not None else dict(x_range=(float(d[0]), float(d[-1])))
+        fig = figure(width=self.width, height=height, y_axis_type="log",
+                     y_range=(float(p.max()), float(p.min())), title=title,
+                     x_axis_label="distance from A (km)", y_axis_label="pressure (hPa)",
+                     tools="pan,wheel_zoom,box_zoom,reset,save", toolbar_location="above",
+                     name="pvwb-section-plot", **kw)
+        fig.toolbar.logo = None
+        fig.title.text_font_size = "13px"
+        ticks = [x for x in (1000, 925, 850, 700, 500, 400, 300, 250, 200, 150, 100, 70, 50)
+                 if p.min() <= x <= p.max()]
+        fig.yaxis.ticker = ticks
+        return fig, d, p
+
+    def _add_lines(self, fig, d, p, z, levels, colour, dash="solid", width=1.2, labels=True):
+        xs, ys = _contour_lines(d, p, z, levels)
+        if xs:
+            fig.multi_line(xs, ys, line_color=colour, line_width=width, line_dash=dash)
+        if labels:
+            # one label per level at the line's midpoint
+            lx, ly, lt = [], [], []
+            for lev in levels:
+                segs = _contour_lines(d, p, z, [lev])
+                if segs[0]:
+                    longest = max(range(len(segs[0])), key=lambda i: len(segs[0][i]))
+                    m = len(segs[0][longest]) // 2
+                    lx.append(segs[0][longest][m])
+                    ly.append(segs[1][longest][m])
+                    lt.append(f"{lev:g}")
+            if lx:
+                fig.text(lx, ly, text=lt, text_color=colour, text_font_size="10px",
+                         text_align="center", text_baseline="middle",
+                         background_fill_color="white", background_fill_alpha=0.6)
+
+    def _main_figure(self, sec):
+        st = self.state
+        s = st.sections[st.active_section]
+        title = (f"Section A ({s.start[0]:.1f}°E, {s.start[1]:.1f}°N) → B ({s.end[0]:.1f}°E, "
+                 f"{s.end[1]:.1f}°N), valid {st.time_labels[st.time_index]}")
+        fig, d, p = self._frame(sec, title, 330)
+        pv = sec["ertel_pv"].transpose("pressure", "distance").values
+        pal, lo, hi, ctitle, _ = field_style("ertel_pv", pv)
+        mapper = LinearColorMapper(palette=list(pal), low=lo, high=hi, nan_color=(0, 0, 0, 0))
+        # PV shaded as cells (pressure levels are not evenly spaced)
+        pe = np.sqrt(p[:-1] * p[1:])
+        pb = np.concatenate([[p[0]], pe, [p[-1]]])
+        de = 0.5 * (d[:-1] + d[1:])
+        db = np.concatenate([[d[0]], de, [d[-1]]])
+        L = np.meshgrid(db[:-1], np.arange(len(p)))[0]
+        RR = np.meshgrid(db[1:], np.arange(len(p)))[0]
+        B = np.repeat(pb[:-1, None], len(d), 1)
+        T = np.repeat(pb[1:, None], len(d), 1)
+        cells = ColumnDataSource(dict(left=L.ravel(), right=RR.ravel(), bottom=B.ravel(),
+                                      top=T.ravel(), pv=pv.ravel()))
+        fig.quad(left="left", right="right", bottom="bottom", top="top", source=cells,
+                 fill_color={"field": "pv", "transform": mapper}, line_color=None)
+        fig.add_layout(ColorBar(color_mapper=mapper, title=ctitle, width=12,
+                                title_text_font_size="11px"), "right")
+        th = sec["potential_temperature"].transpose("pressure", "distance").values
+        tlev = np.arange(5 * math.floor(np.nanmin(th) / 5), np.nanmax(th) + 5, 5.0)
+        self._add_lines(fig, d, p, th, tlev, "#3c3c3c", width=0.9, labels=True)
+        vn = sec["normal_wind"].transpose("pressure", "distance").values
+        vmax = float(np.nanmax(np.abs(vn))) if np.isfinite(vn).any() else 0
+        vlev = np.arange(10.0, vmax + 10, 10.0)
+        self._add_lines(fig, d, p, vn, vlev, "#8c2d04", width=1.4, labels=True)
+        self._add_lines(fig, d, p, vn, -vlev, "#8c2d04", dash="dashed", width=1.4, labels=True)
+        tp = sec["tropopause_pressure"].values / 100.0
+        fig.line(d, tp, line_color="black", line_width=3, legend_label=
+                 f"dynamic tropopause ({st.threshold:g} PVU)")
+        fig.line([], [], line_color="#3c3c3c", legend_label="θ every 5 K")
+        fig.line([], [], line_color="#8c2d04", legend_label="normal wind every 10 m/s (+ left of A→B)")
+        fig.legend.location = "bottom_right"
+        fig.legend.label_text_font_size = "10px"
+        fig.legend.background_fill_alpha = 0.7
+        return fig
+
+    def _pieces_figure(self, sec, top):
+        names = [str(n) for n in sec["piece"].values]
+        fig, d, p = self._frame(sec, "Balanced flow of the visible pieces: " + ", ".join(names),
+                                260, x_range=top.x_range)
+        ta = sec["balanced_temperature_anomaly"].sum("piece").transpose("pressure", "distance").values
+        m = _nice(float(np.nanmax(np.abs(ta))) if np.isfinite(ta).any() else 1.0)
+        mapper = LinearColorMapper(palette=list(palette("anomaly")), low=-m, high=m,
+                                   nan_color=(0, 0, 0, 0))
+        pe = np.sqrt(p[:-1] * p[1:])
+        pb = np.concatenate([[p[0]], pe, [p[-1]]])
+        de = 0.5 * (d[:-1] + d[1:])
+        db = np.concatenate([[d[0]], de, [d[-1]]])
+        L = np.meshgrid(db[:-1], np.arange(len(p)))[0]
+        RR = np.meshgrid(db[1:], np.arange(len(p)))[0]
+        B = np.repeat(pb[:-1, None], len(d), 1)
+        T = np.repeat(pb[1:, None], len(d), 1)
+        cells = ColumnDataSource(dict(left=L.ravel(), right=RR.ravel(), bottom=B.ravel(),
+                                      top=T.ravel(), t=ta.ravel()))
+        fig.quad(left="left", right="right", bottom="bottom", top="top", source=cells,
+                 fill_color={"field": "t", "transform": mapper}, line_color=None)
+        fig.add_layout(ColorBar(color_mapper=mapper, title="balanced T′ (K)", width=12,
+                                title_text_font_size="11px"), "right")
+        vn = sec["balanced_normal_wind"].sum("piece").transpose("pressure", "distance").values
+        vmax = float(np.nanmax(np.abs(vn))) if np.isfinite(vn).any() else 0.0
+        step = _nice(vmax / 4) if vmax > 0 else 1.0
+        lev = np.arange(step, vmax + step, step)
+        self._add_lines(fig, d, p, vn, lev, "#000000", width=1.5)
+        self._add_lines(fig, d, p, vn, -lev, "#000000", dash="dashed", width=1.5)
+        fig.line([], [], line_color="#000000", legend_label=f"balanced normal wind every {step:g} m/s")
+        if "piece_qg_omega" in sec:
+            om = sec["piece_qg_omega"].sum("piece").transpose("pressure", "distance").values
+            omax = float(np.nanmax(np.abs(om))) if np.isfinite(om).any() else 0.0
+            if omax > 0:
+                ostep = _nice(omax / 3)
+                olev = np.arange(ostep, omax + ostep, ostep)
+                self._add_lines(fig, d, p, om, -olev, "#cc79a7", dash="dashed", width=2, labels=False)
+                self._add_lines(fig, d, p, om, olev, "#cc79a7", width=1.2, labels=False)
+                fig.line([], [], line_color="#cc79a7", line_width=2, legend_label=
+                         f"QG ω due to the pieces every {ostep:g} Pa/s (dashed: ascent)")
+        fig.legend.location = "bottom_right"
+        fig.legend.label_text_font_size = "10px"
+        fig.legend.background_fill_alpha = 0.7
+        return fig
+
+
+def caution_html(case) -> str:
+    """The caution line (and the invented-case label) for the page header."""
+    inv = invented_label(case)
+    extra = f" <b>{inv}</b>" if inv else ""
+    return f"<span style='font-size:12px;color:#6b4e00'>⚠ {CAUTION}{extra}</span>"
