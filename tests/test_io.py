@@ -339,3 +339,14 @@ def test_eccodes_pinned():
 
     major, minor = (int(x) for x in eccodes.__version__.split(".")[:2])
     assert (major, minor) <= (2, 42), "eccodes > 2.42 clashes with pyproj's bundled PROJ: keep the pin"
+
+
+def test_ensemble_member_dimension():
+    # an ensemble on a 'number' dimension (the GRIB convention) becomes 'member'
+    ds = xr.concat([base(), base() + 0.0], dim="number").assign_coords(number=[0, 1])
+    for v in ("t", "u", "v", "z", "r"):
+        ds[v].attrs = base()[v].attrs
+    case = wb.open_case(ds)
+    assert case.data["temperature"].dims == ("time", "member", "pressure", "latitude", "longitude")
+    assert list(case.members) == [0, 1]
+    np.testing.assert_allclose(case.pv(1, member=1).values, case.pv(1, member=0).values)

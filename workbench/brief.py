@@ -122,6 +122,9 @@ def piece_summaries(table, target) -> list[str]:
         elif abs(z) < 0.05 * max(abs(full), 1e-9) and abs(share) < 5:
             out.append(f"{name} contributes little at {where}: {z:+.1f} m ({share:.0f} % of the "
                        f"full {full:+.1f} m).")
+        elif share > 100.5:
+            out.append(f"{name} gives {z:+.1f} m at {where}, more than the full {full:+.1f} m "
+                       f"({share:.0f} %); other pieces offset part of it.")
         elif share >= 0:
             out.append(f"{name} accounts for {share:.0f} % of the balanced height anomaly at "
                        f"{where} ({z:+.1f} m of {full:+.1f} m).")

@@ -232,6 +232,7 @@ def save_session(state, path, overwrite: bool = False) -> Path:
             f"State.to_dict() returned something that is not plain JSON ({exc}); "
             "this is a bug in the state's to_dict"
         ) from None
+    text = _compact_number_lists(text)
     with atomic_target(path, overwrite=overwrite, error=SessionError, what="session file") as tmp:
         with open(tmp, "w", encoding="utf-8") as fh:
             fh.write(text)
@@ -239,6 +240,19 @@ def save_session(state, path, overwrite: bool = False) -> Path:
             fh.flush()
             os.fsync(fh.fileno())
     return path
+
+
+_NUM = r"-?\d+(?:\.\d+)?(?:[eE][-+]?\d+)?|null"
+_NUMBER_LIST = re.compile(r"\[\n\s*((?:%s)(?:,\n\s*(?:%s))*)\n\s*\]" % (_NUM, _NUM))
+
+
+def _compact_number_lists(text: str) -> str:
+    """Put lists of plain numbers (points, layers, levels) on one line.
+
+    Only multi-line lists are touched; JSON strings cannot hold raw newlines, so
+    no string content can change."""
+    return _NUMBER_LIST.sub(lambda m: "[" + ", ".join(
+        x.strip() for x in m.group(1).split(",")) + "]", text)
 
 
 def _no_constants(name):

@@ -655,6 +655,8 @@ def draw_map(data: MapData, settings: FigureSettings | dict | None = None,
         height = map_h + _TOP_IN + _BOTTOM_IN + 0.25
         fig.set_size_inches(width, height)
     bottom = (_BOTTOM_IN + 0.2) / height
+    if page_size:  # centre the map in the space left between title block and caution
+        bottom += 0.5 * max(0.0, height - _TOP_IN - _BOTTOM_IN - 0.25 - map_h) / height
     ax.set_position([0.06, bottom, map_w / width, map_h / height])
     cmap = colour_map(settings.colour_map) if settings.colour_map else COLOUR_MAPS[key]
     levels = np.asarray(settings.levels) if settings.levels else _levels(values, div, field_name)
