@@ -34,6 +34,8 @@ __all__ = ["Workbench", "serve", "main", "resolve_data_path", "list_data_files",
            "LOOPBACK"]
 
 LOOPBACK = ("127.0.0.1", "localhost", "::1")
+_STATUS_COLOURS = {"info": ("#e8f1f8", "#12344d"), "success": ("#e6f4ea", "#0f3d1e"),
+                   "warning": ("#fff4d6", "#5c4200"), "error": ("#fde2e1", "#7a0b05")}
 DATA_SUFFIXES = (".nc", ".nc4", ".netcdf", ".grib", ".grib2", ".grb", ".grb2", ".zarr", ".txt",
                  ".cdf", ".h5")
 _CSS = """
@@ -192,14 +194,20 @@ class Workbench:
     # ---------------------------------------------------------------- common parts
     def _build_common(self):
         st = self.state
-        self.status = pn.pane.Alert("", alert_type="info", css_classes=["pvwb-status"],
-                                    margin=(0, 10), sizing_mode="stretch_width")
+        self.status = pn.pane.HTML("", css_classes=["pvwb-status"], margin=(0, 10),
+                                   sizing_mode="stretch_width")
         self.spinner = pn.indicators.LoadingSpinner(value=False, size=22, name="",
                                                     css_classes=["pvwb-busy"], margin=(8, 4))
 
         def show_status(*_):
-            self.status.alert_type = {"error": "danger"}.get(st.status_level, st.status_level)
-            self.status.object = st.status or " "
+            import html
+
+            bg, fg = _STATUS_COLOURS.get(st.status_level, _STATUS_COLOURS["info"])
+            icon = {"error": "✖ ", "warning": "⚠ ", "success": "✔ "}.get(st.status_level, "")
+            self.status.object = (
+                f"<div class='pvwb-status-text' data-level='{st.status_level}' style='background:"
+                f"{bg};color:{fg};padding:5px 10px;border-radius:4px;font-size:13px'>"
+                f"{icon}{html.escape(st.status or ' ')}</div>")
             self.spinner.value = bool(st.busy)
 
         st.param.watch(show_status, ["status", "status_level", "busy"])
@@ -321,7 +329,7 @@ class Workbench:
 
         times = {lab: i for i, lab in enumerate(st.time_labels)}
         self.time = pn.widgets.Select(name="Valid time", options=times, value=st.time_index,
-                                      width=190)
+                                      width=170)
         self.prev_t = pn.widgets.Button(name="◀", width=38, margin=(23, 2, 5, 2))
         self.next_t = pn.widgets.Button(name="▶", width=38, margin=(23, 2, 5, 2))
         self.prev_t.on_click(lambda e: self._step_time(-1))

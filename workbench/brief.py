@@ -27,7 +27,6 @@ import math
 import sys
 import textwrap
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 
@@ -194,7 +193,9 @@ def _title_page(case, state, generated):
         "T", " ") + " UTC"
     first = str(np.datetime_as_string(np.datetime64(t[0], "m"))).replace("T", " ")
     last = str(np.datetime_as_string(np.datetime64(t[-1], "m"))).replace("T", " ")
-    from workbench.views.static import _surface_label
+    from workbench.views.static import _FIELDS, _surface_label
+
+    field_label = _FIELDS.get(state.field, (None, state.field))[1]
 
     info = [
         f"Data source: {case.source}",
@@ -207,7 +208,7 @@ def _title_page(case, state, generated):
     info += [
         f"Domain: {d['lat_min']:g} to {d['lat_max']:g} N, {d['lon_min']:g} to {d['lon_max']:g} E; "
         f"{len(case.levels_hpa)} pressure levels {case.levels_hpa.max():g}-{case.levels_hpa.min():g} hPa",
-        f"Map: {state.field} {_surface_label(state.surface, state.threshold)}; balanced flow at "
+        f"Map: {field_label} {_surface_label(state.surface, state.threshold)}; balanced flow at "
         f"{state.overlay_level:g} hPa; dynamic tropopause {state.threshold:g} PVU; "
         f"reference state: {state.reference}",
     ]

@@ -222,7 +222,7 @@ def invented_label(case) -> str | None:
     flag = attrs.get("invented")
     text = " ".join(str(attrs.get(k, "")) for k in ("title", "comment", "scenario", "source"))
     truthy = flag is True or str(flag).strip().lower() in {"1", "true", "yes", "y"}
-    if truthy or "invented" in text.lower():
+    if getattr(case, "invented", False) is True or truthy or "invented" in text.lower():
         extra = attrs.get("invented_label") or attrs.get("scenario")
         base = "Invented case: not real weather data."
         return f"{base} {extra}".strip() if extra and str(extra) not in base else base

@@ -116,10 +116,12 @@ class StormSettings:
     step_minutes: float = 10.0
     # reference state
     jet_latitude: float = 45.0
-    surface_temperature_contrast: float = 28.0
-    baroclinic_zone_width_deg: float = 10.0
+    surface_temperature_contrast: float = 34.0
+    baroclinic_zone_width_deg: float = 12.0
     tropopause_break_latitude: float = 38.0
     tropopause_temperature_step: float = 10.0
+    tropopause_break_width_deg: float = 6.0
+    tropopause_corner_k: float = 4.0
     polar_tropopause_warming: float = 3.0
     mslp_mean_hpa: float = 1012.0
     mslp_contrast_hpa: float = 8.0
@@ -128,9 +130,9 @@ class StormSettings:
     upper_lat: float = 50.0
     upper_pressure_hpa: float = 320.0
     upper_depth_hpa: float = 110.0
-    upper_radius_zonal_km: float = 550.0
-    upper_radius_meridional_km: float = 1000.0
-    upper_height_anomaly_m: float = -160.0
+    upper_radius_zonal_km: float = 450.0
+    upper_radius_meridional_km: float = 700.0
+    upper_height_anomaly_m: float = -140.0
     surface_lon: float = -55.0
     surface_lat: float = 42.0
     surface_theta_k: float = 3.0
@@ -139,6 +141,10 @@ class StormSettings:
     latent_heating: bool = True
     heating_efficiency: float = 0.6
     rh_heating_threshold: float = 80.0
+    # surface exchange: boundary-layer drag on the relative vorticity below 850 hPa and
+    # relaxation of the surface theta' towards the (fixed) sea-surface state
+    drag_days: float = 1.0
+    surface_relaxation_days: float = 2.0
     # numerics
     filter_hours: float = 3.0
     sponge_points: int = 6
@@ -234,7 +240,8 @@ class StormSettings:
                     f"sample settings {name}_lon/{name}_lat: ({lon:g}, {lat:g}) lies outside the domain; "
                     "put the anomaly inside it.")
         for name in ("upper_radius_zonal_km", "upper_radius_meridional_km", "surface_radius_km", "upper_depth_hpa",
-                     "baroclinic_zone_width_deg", "filter_hours", "sponge_hours"):
+                     "baroclinic_zone_width_deg", "filter_hours", "sponge_hours", "drag_days",
+                     "surface_relaxation_days", "tropopause_break_width_deg", "tropopause_corner_k"):
             if getattr(s, name) <= 0:
                 raise InputError(f"sample setting {name}: must be > 0.")
         if not (150.0 <= s.upper_pressure_hpa <= 600.0):
@@ -303,13 +310,13 @@ def reference_state(settings: StormSettings, latitude, pressure):
     t_surface = USSA_T0 - 0.5 * s.surface_temperature_contrast * zone
 
     def shape(x):
-        return (s.tropopause_temperature_step * np.tanh((x - s.tropopause_break_latitude) / 6.0)
+        return (s.tropopause_temperature_step * np.tanh((x - s.tropopause_break_latitude) / s.tropopause_break_width_deg)
                 + s.polar_tropopause_warming * np.tanh((x - 55.0) / 10.0))
 
     t_trop = USSA_TTROP + shape(lat) - shape(s.jet_latitude)
     t_lapse = standard_lapse_temperature(p[:, None], t_surface[None, :])
     # smooth maximum of the lapse-rate profile and the isothermal stratosphere (a 1.5 K corner)
-    delta = 1.5
+    delta = s.tropopause_corner_k
     temperature = t_trop[None, :] + delta * np.logaddexp(0.0, (t_lapse - t_trop[None, :]) / delta)
     mslp = 100.0 * (s.mslp_mean_hpa - 0.5 * s.mslp_contrast_hpa * np.tanh((lat - s.jet_latitude) / 10.0))
     # height of the 1000 hPa surface above sea level: inverse of sea_level_pressure()
@@ -443,6 +450,12 @@ class _LifeCycleModel:
         self.sponge = ramp / (s.sponge_hours * 3600.0)
         self.interior = np.zeros((ny, nx), dtype=bool)
         self.interior[1:-1, 1:-1] = True
+        # heating and the ascent that drives it fade out across the sponge
+        self.inner_weight = (1.0 - ramp) * self.interior
+        # boundary-layer drag: 1/drag_days at 1000 hPa, falling linearly to zero at 850 hPa
+        ph = self.p / 100.0
+        self.drag = np.clip((ph - 850.0) / 150.0, 0.0, 1.0) / (s.drag_days * 86400.0)
+        self.relax = 1.0 / (s.surface_relaxation_days * 86400.0)
         vc = self.grid.vertical()
         self.h = vc["h"]
         # heating profile: zero at the bottom boundary and above 250 hPa, one in 950..350 hPa
@@ -459,15 +472,27 @@ class _LifeCycleModel:
         return (self.phibar + phi_anom) / self.f0
 
     def advection(self, x, phi_anom):
-        """-J(psi, q_total) for the stacked state (interior PV, bottom theta, top theta)."""
+        """-J(psi, q_total) for the stacked state (interior PV, bottom theta; the top theta' stays 0)."""
+        nz = self.p.size
         psi = self.total_psi(phi_anom)
-        psi_stack = np.concatenate([psi, psi[:1], psi[-1:]], axis=0)
+        psi_stack = np.concatenate([psi, psi[:1]], axis=0)
         tend = np.zeros_like(x)
-        tend[:, 1:-1, 1:-1] = -arakawa_jacobian(psi_stack, self.xbar + x) * self.jac_factor
+        tend[:nz + 1, 1:-1, 1:-1] = -arakawa_jacobian(psi_stack, self.xbar[:nz + 1] + x[:nz + 1]) * self.jac_factor
         return tend, psi
 
-    def damping(self, x):
-        return -self.filter_coef * _filter4(x) * self.interior - self.sponge * x
+    def damping(self, x, phi_anom):
+        """Grid-scale filter, sponge, boundary-layer drag and surface theta' relaxation."""
+        from .inversion.operator import horizontal_laplacian
+
+        nz = self.p.size
+        out = -self.filter_coef * _filter4(x) * self.interior - self.sponge * x
+        low = np.flatnonzero(self.drag > 0)
+        if low.size:
+            # d(q')/dt = -zeta'/tau with zeta' = lap(phi')/f0 on the lowest levels
+            zeta = np.nan_to_num(horizontal_laplacian(self.grid, phi_anom[low])) / self.f0
+            out[low] -= self.drag[low, None, None] * zeta
+        out[nz] -= self.relax * x[nz]
+        return out
 
     def cfl(self, psi):
         """Largest advective Courant number |u| dt/dx + |v| dt/dy of the QG flow."""
@@ -492,6 +517,8 @@ class _LifeCycleModel:
         om = np.zeros(self.shape)
         jac = arakawa_jacobian(psi[1:-1], dphi_dp[1:-1]) * self.jac_factor
         om[1:-1, 1:-1, 1:-1] = -(dphit_dp[1:-1, 1:-1, 1:-1] + jac) / self.sigma[1:-1, None, None]
+        # the diagnosis is unreliable next to the lateral boundary: fade it out across the sponge
+        om *= self.inner_weight
         return om
 
     def humidity(self, omega, temperature_anom):
@@ -541,16 +568,17 @@ class _LifeCycleModel:
         nz = self.p.size
         heat = np.zeros_like(x)
         if self.s.latent_heating and self.s.heating_efficiency > 0:
-            heat[:nz] = self.heating_tendency(diag["omega"], diag["rh"]) * self.interior
+            heat[:nz] = self.heating_tendency(diag["omega"], diag["rh"])
         self.max_cfl = max(self.max_cfl, self.cfl(diag["psi"]))
 
-        def rate(y, adv=None):
+        def rate(y, adv=None, phi=None):
             if adv is None:
-                adv, _ = self.advection(y, self.invert(y))
-            return adv + self.damping(y) + heat
+                phi = self.invert(y)
+                adv, _ = self.advection(y, phi)
+            return adv + self.damping(y, phi) + heat
 
         dt = self.dt
-        x1 = x + dt * rate(x, diag["adv"])
+        x1 = x + dt * rate(x, diag["adv"], diag["phi"])
         x2 = 0.75 * x + 0.25 * (x1 + dt * rate(x1))
         return x / 3.0 + (2.0 / 3.0) * (x2 + dt * rate(x2))
 
@@ -620,8 +648,28 @@ _VAR_ATTRS = {
 }
 
 
+def _single_thread_blas():
+    """A context that keeps BLAS on one thread (threadpoolctl if installed, else a no-op).
+
+    The model's matrix products are tiny; extra BLAS threads only contend for the cores and
+    one thread keeps the run's arithmetic independent of the machine's core count.
+    """
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover - the result is the same, only slower on busy machines
+        import contextlib
+
+        return contextlib.nullcontext()
+    return threadpool_limits(limits=1, user_api="blas")
+
+
 def _run(settings: StormSettings, progress=None):
     """Run the model; returns (times in hours, list of field dicts, model)."""
+    with _single_thread_blas():
+        return _run_model(settings, progress)
+
+
+def _run_model(settings: StormSettings, progress=None):
     model = _LifeCycleModel(settings)
     x = model.initial_state()
     steps_per_output = int(round(settings.output_every_hours * 60.0 / settings.step_minutes))

@@ -24,8 +24,8 @@ __all__ = ["State", "Section", "BOUNDARY_PIECES", "parse_surface", "surface_labe
 
 #: The boundary pieces one call away: State.add_boundary_piece(kind).
 BOUNDARY_PIECES = {
-    "bottom": "surface theta'",
-    "top": "lid theta'",
+    "bottom": "surface θ′",
+    "top": "lid θ′",
     "lateral": "lateral boundary",
     "remainder": "remainder",
 }
@@ -272,11 +272,11 @@ class State(param.Parameterized):
                                  f"(called {p.name!r})")
         return self.add_piece(name=self.new_piece_name(BOUNDARY_PIECES[kind]), kind=kind)
 
-    def _replace(self, name, **changes):
+    def _replace(self, target, **changes):
         api = _piece_api()
         new = []
         for p in self.pieces:
-            if p.name == name:
+            if p.name == target:
                 d = p.to_dict()
                 d.update(changes)
                 p = api.Piece.from_dict(d)

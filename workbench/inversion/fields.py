@@ -12,9 +12,9 @@ Relations (Holton & Hakim, *An Introduction to Dynamic Meteorology*, ch. 6):
 ``u = -(1/f0) a^-1 dphi/dlat``, ``v = (1/f0) (a cos lat)^-1 dphi/dlon``,
 ``zeta = lap(phi)/f0`` (the operator's own discrete Laplacian),
 ``T' = -(p/R_d) dphi/dp`` (hydrostatic), ``theta' = T'/Pi``, ``Z' = phi/g``.
-Horizontal and vertical derivatives are second-order centred differences
-(``numpy.gradient`` with ``edge_order=2`` on the coordinate values; wrap-around
-in longitude on a periodic grid).
+Horizontal derivatives are second-order centred differences (``numpy.gradient``
+with ``edge_order=2`` on the coordinate values; wrap-around in longitude on a
+periodic grid); the vertical derivative is taken in ln p the same way.
 """
 from __future__ import annotations
 
@@ -26,7 +26,7 @@ from workbench.inversion.operator import QGGrid, horizontal_laplacian
 from workbench.inversion.solver import get_solver
 from workbench.units import EARTH_RADIUS, G, KAPPA, P0, RD, coriolis
 
-__all__ = ["balanced_fields", "invert_qgpv", "grid_for", "spatial_dims", "central_f0"]
+__all__ = ["balanced_fields", "invert_qgpv", "grid_for", "spatial_dims", "central_f0", "hydrostatic_temperature"]
 
 DIMS = ("pressure", "latitude", "longitude")
 
@@ -112,6 +112,15 @@ def _deriv(a, x, axis, periodic=False):
     return np.gradient(a, x, axis=axis, edge_order=2)
 
 
+def hydrostatic_temperature(phi, pressure):
+    """T = -(p/R_d) dphi/dp = -(1/R_d) dphi/d(ln p) along axis -3.
+
+    Differentiated in ln p (second-order, non-uniform, second-order edges), which is exact
+    for an isothermal layer (phi linear in ln p) and accurate for real profiles.
+    """
+    return -np.gradient(np.asarray(phi, dtype=float), np.log(pressure), axis=-3, edge_order=2) / RD
+
+
 def balanced_fields(phi: xr.DataArray, f0, bottom_theta=None, top_theta=None, grid: QGGrid | None = None):
     """Balanced fields of a geopotential anomaly phi' (m2 s-2).
 
@@ -151,8 +160,7 @@ def balanced_fields(phi: xr.DataArray, f0, bottom_theta=None, top_theta=None, gr
     u = -dphi_dlat / (f0 * a)
     v = dphi_dlon / (f0 * a * np.cos(rlat)[:, None])
     zeta = horizontal_laplacian(grid, data) / f0
-    dphi_dp = np.gradient(data, p, axis=-3, edge_order=2)
-    temp = -(p[:, None, None] / RD) * dphi_dp
+    temp = hydrostatic_temperature(data, p)
     pi = (p / P0) ** KAPPA
     if bottom_theta is not None:
         temp[..., 0, :, :] = pi[0] * np.asarray(bottom_theta, dtype=float)

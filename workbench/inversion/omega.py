@@ -34,7 +34,7 @@ import scipy.sparse as sp
 import xarray as xr
 
 from workbench.errors import GridError
-from workbench.inversion.fields import _deriv, grid_for, spatial_dims
+from workbench.inversion.fields import _deriv, grid_for, hydrostatic_temperature, spatial_dims
 from workbench.inversion.operator import QGGrid, horizontal_matrix
 from workbench.inversion.solver import SeparableSolver
 from workbench.units import EARTH_RADIUS, OMEGA, RD
@@ -136,12 +136,12 @@ def _ddy(a, grid):
 def q_vector(grid: QGGrid, phi, temperature=None):
     """Q vector (Q1, Q2) (m2 kg-1 s-1) and the geostrophic wind (u_g, v_g) from geopotential (numpy).
 
-    ``temperature`` default: hydrostatic, ``T = -(p/R_d) dphi/dp``.
+    ``temperature`` default: hydrostatic, ``T = -(p/R_d) dphi/dp`` (differentiated in ln p).
     """
     phi = np.asarray(phi, dtype=float)
     p = grid.pressure
     if temperature is None:
-        temperature = -(p[:, None, None] / RD) * np.gradient(phi, p, axis=-3, edge_order=2)
+        temperature = hydrostatic_temperature(phi, p)
     t = np.asarray(temperature, dtype=float)
     ug = -_ddy(phi, grid) / grid.f0
     vg = _ddx(phi, grid) / grid.f0

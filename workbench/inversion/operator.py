@@ -53,6 +53,7 @@ __all__ = [
     "horizontal_laplacian",
     "horizontal_matrix",
     "boundary_terms",
+    "subtract_boundary_terms",
     "boundary_flux",
 ]
 
@@ -381,8 +382,23 @@ class AssembledOperator:
             raise GridError("q: assemble_operator works on one (nz, ny, nx) field at a time.")
         js, ls = slice(1, -1), grid.lon_slice
         b = np.array(q[:, js, ls], dtype=np.float64)
-        b -= boundary_terms(grid, bottom_theta, top_theta, lateral)[:, js, ls]
+        subtract_boundary_terms(grid, b, bottom_theta, top_theta, lateral)
         return b.ravel()
+
+    def spd_scaling(self):
+        """Row weights d with ``diag(d) @ matrix`` symmetric positive definite.
+
+        ``d = -f0 h_k cos(phi_j) (phi_{j+1} - phi_{j-1})/2`` (cell thickness x
+        latitude-cell area factor); use it for solvers that need a symmetric
+        positive-definite matrix (conjugate gradients, smoothed-aggregation AMG):
+        solve ``(diag(d) A) x = d * b``.
+        """
+        g = self.grid
+        nz, nyi, nxi = g.interior_shape
+        h = g.vertical()["h"]
+        dj = 0.5 * (g.phi[2:] - g.phi[:-2]) * np.cos(g.phi[1:-1])
+        w = -g.f0 * h[:, None, None] * dj[None, :, None] * np.ones((1, 1, nxi))
+        return w.ravel()
 
     def expand(self, x, lateral=None):
         """Full-grid phi from the interior solution x (lateral Dirichlet values from ``lateral``)."""
@@ -398,7 +414,8 @@ def boundary_terms(grid, bottom_theta=None, top_theta=None, lateral=None):
     ``L(phi) = L_int(phi at the unknowns) + boundary_terms(...)``, so the
     linear system on the unknowns is ``L_int x = q - boundary_terms``.  The
     boundary theta' enter as ``+F_b/h_0`` in the lowest cell and ``-F_t/h_top``
-    in the highest; the lateral Dirichlet values through the horizontal stencil.
+    in the highest; the lateral Dirichlet values through the horizontal stencil
+    (only at the interior nodes next to the lateral boundary).
     Returns an array (..., nz, ny, nx) (values at lateral nodes are meaningless).
     """
     lead = ()
@@ -406,19 +423,36 @@ def boundary_terms(grid, bottom_theta=None, top_theta=None, lateral=None):
         if arr is not None:
             lead = np.broadcast_shapes(lead, np.shape(arr)[:-n])
     out = np.zeros(lead + grid.shape)
+    subtract_boundary_terms(grid, out[..., 1:-1, grid.lon_slice], bottom_theta, top_theta, lateral, sign=-1.0)
+    return out
+
+
+def subtract_boundary_terms(grid, rhs, bottom_theta=None, top_theta=None, lateral=None, sign=1.0):
+    """In place: ``rhs -= sign * boundary_terms`` on the unknowns (rhs shape (..., *grid.interior_shape)).
+
+    Touches only the lowest and highest level (theta') and the rows/columns next
+    to the lateral boundary (lateral data), so it costs O(boundary), not O(volume).
+    """
     vc = grid.vertical()
+    js, ls = slice(1, -1), grid.lon_slice
     if bottom_theta is not None:
         bt = _check_shape(grid, "bottom_theta", bottom_theta, grid.shape[1:])
-        out[..., 0, :, :] += boundary_flux(grid, bt, 0) / vc["h"][0]
+        rhs[..., 0, :, :] -= sign * (boundary_flux(grid, bt[..., js, ls], 0) / vc["h"][0])
     if top_theta is not None:
         tt = _check_shape(grid, "top_theta", top_theta, grid.shape[1:])
-        out[..., -1, :, :] -= boundary_flux(grid, tt, -1) / vc["h"][-1]
+        rhs[..., -1, :, :] += sign * (boundary_flux(grid, tt[..., js, ls], -1) / vc["h"][-1])
     if lateral is not None:
-        lat_only = np.array(_check_shape(grid, "lateral", lateral, grid.shape))
-        lat_only[..., 1:-1, grid.lon_slice] = 0.0
-        # only the horizontal stencil reaches the lateral nodes
-        out += np.nan_to_num(horizontal_laplacian(grid, lat_only)) / grid.f0
-    return out
+        lat = _check_shape(grid, "lateral", lateral, grid.shape)
+        hc = grid.horizontal()
+        c = sign / grid.f0
+        # meridional neighbours: row 1 sees row 0, row ny-2 sees row ny-1
+        rhs[..., :, 0, :] -= (c * hc["south"][0]) * lat[..., :, 0, ls]
+        rhs[..., :, -1, :] -= (c * hc["north"][-1]) * lat[..., :, -1, ls]
+        if not grid.periodic:
+            # zonal neighbours: column 1 sees column 0, column nx-2 sees column nx-1
+            rhs[..., :, :, 0] -= (c * hc["zonal"]) * lat[..., :, 1:-1, 0]
+            rhs[..., :, :, -1] -= (c * hc["zonal"]) * lat[..., :, 1:-1, -1]
+    return rhs
 
 
 def horizontal_matrix(grid):

@@ -27,7 +27,7 @@ import numpy as np
 import scipy.fft as sfft
 
 from workbench.errors import GridError
-from workbench.inversion.operator import QGGrid, _check_shape, boundary_terms
+from workbench.inversion.operator import QGGrid, _check_shape, subtract_boundary_terms
 
 __all__ = ["QGSolver", "SeparableSolver", "get_solver", "clear_solver_cache"]
 
@@ -188,22 +188,28 @@ class QGSolver:
         grid = self.grid
         q = _check_shape(grid, "q", q, grid.shape)
         js, ls = slice(1, -1), grid.lon_slice
-        rhs = q[..., js, ls]
-        if bottom_theta is not None or top_theta is not None or lateral is not None:
-            rhs = rhs - boundary_terms(grid, bottom_theta, top_theta, lateral)[..., js, ls]
-        if not np.all(np.isfinite(rhs)):
+        shapes = [q.shape[:-3]]
+        shapes += [np.shape(a)[:-2] for a in (bottom_theta, top_theta) if a is not None]
+        if lateral is not None:
+            lateral = _check_shape(grid, "lateral", lateral, grid.shape)
+            shapes.append(lateral.shape[:-3])
+        lead = np.broadcast_shapes(*shapes)
+        rhs = np.empty(lead + grid.interior_shape)
+        rhs[...] = q[..., js, ls]
+        subtract_boundary_terms(grid, rhs, bottom_theta, top_theta, lateral)
+        if not np.isfinite(np.sum(rhs)):  # one reduction instead of a boolean array
             raise GridError(
                 "q: the QG PV anomaly (or the boundary data) contains NaN or infinite values at interior "
                 "nodes; fill or mask them before inverting (only lateral boundary nodes may be NaN)."
             )
         x = self._engine.solve_interior(rhs)
-        lead = x.shape[:-3]
-        if lateral is None:
-            out = np.zeros(lead + grid.shape)
-        else:
-            lat_arr = _check_shape(grid, "lateral", lateral, grid.shape)
-            out = np.array(np.broadcast_to(lat_arr, lead + grid.shape), dtype=np.float64)
+        out = np.empty(lead + grid.shape)
         out[..., js, ls] = x
+        edges = [(Ellipsis, 0, slice(None)), (Ellipsis, -1, slice(None))]
+        if not grid.periodic:
+            edges += [(Ellipsis, slice(None), 0), (Ellipsis, slice(None), -1)]
+        for e in edges:
+            out[e] = 0.0 if lateral is None else lateral[e]
         return out
 
     def residual(self, phi, q, bottom_theta=None, top_theta=None):

@@ -390,6 +390,8 @@ class MapView:
         if not event.final or self.on_lasso is None:
             return
         g = event.geometry
+        if g.get("type") != "poly" or self.mode != "lasso":
+            return  # taps with the target tool also report a (point) geometry
         xs, ys = g.get("x"), g.get("y")
         if xs is None or len(xs) < 3:
             return
@@ -654,9 +656,12 @@ class SectionView:
         fig.yaxis.ticker = ticks
         return fig, d, p
 
-    def _add_lines(self, fig, d, p, z, levels, colour, dash="solid", width=1.2, labels=True):
+    def _add_lines(self, fig, d, p, z, levels, colour, dash="solid", width=1.2, labels=True,
+                   at=0.5):
+        """Contour lines (display only) and one label per level, ``at`` a fraction along the
+        level's longest line."""
         xs, ys = _contour_lines(d, p, z, levels)
-        if xs:
+        if xs and width > 0:
             fig.multi_line(xs, ys, line_color=colour, line_width=width, line_dash=dash)
         if labels:
             # one label per level at the line's midpoint
@@ -665,7 +670,7 @@ class SectionView:
                 segs = _contour_lines(d, p, z, [lev])
                 if segs[0]:
                     longest = max(range(len(segs[0])), key=lambda i: len(segs[0][i]))
-                    m = len(segs[0][longest]) // 2
+                    m = min(len(segs[0][longest]) - 1, int(at * len(segs[0][longest])))
                     lx.append(segs[0][longest][m])
                     ly.append(segs[1][longest][m])
                     lt.append(f"{lev:g}")
@@ -695,12 +700,16 @@ class SectionView:
         cells = ColumnDataSource(dict(left=L.ravel(), right=RR.ravel(), bottom=B.ravel(),
                                       top=T.ravel(), pv=pv.ravel()))
         fig.quad(left="left", right="right", bottom="bottom", top="top", source=cells,
-                 fill_color={"field": "pv", "transform": mapper}, line_color=None)
+                 fill_color={"field": "pv", "transform": mapper},
+                 line_color={"field": "pv", "transform": mapper}, line_width=0.6)
         fig.add_layout(ColorBar(color_mapper=mapper, title=ctitle, width=12,
                                 title_text_font_size="11px"), "right")
         th = sec["potential_temperature"].transpose("pressure", "distance").values
-        tlev = np.arange(5 * math.floor(np.nanmin(th) / 5), np.nanmax(th) + 5, 5.0)
-        self._add_lines(fig, d, p, th, tlev, "#3c3c3c", width=0.9, labels=True)
+        lo5 = 5 * math.floor(np.nanmin(th) / 5)
+        tlev = np.concatenate([np.arange(lo5, 360.0, 5.0), np.arange(360.0, np.nanmax(th) + 20, 20.0)])
+        self._add_lines(fig, d, p, th, tlev, "#3c3c3c", width=0.9, labels=False)
+        self._add_lines(fig, d, p, th, tlev[(tlev % 10 == 0) & (tlev <= 360)], "#3c3c3c",
+                        width=0.0, labels=True, at=0.12)
         vn = sec["normal_wind"].transpose("pressure", "distance").values
         vmax = float(np.nanmax(np.abs(vn))) if np.isfinite(vn).any() else 0
         vlev = np.arange(10.0, vmax + 10, 10.0)
@@ -711,9 +720,7 @@ class SectionView:
                  f"dynamic tropopause ({st.threshold:g} PVU)")
         fig.line([], [], line_color="#3c3c3c", legend_label="θ every 5 K")
         fig.line([], [], line_color="#8c2d04", legend_label="normal wind every 10 m/s (+ left of A→B)")
-        fig.legend.location = "bottom_right"
-        fig.legend.label_text_font_size = "10px"
-        fig.legend.background_fill_alpha = 0.7
+        _legend_below(fig)
         return fig
 
     def _pieces_figure(self, sec, top):
@@ -735,7 +742,8 @@ class SectionView:
         cells = ColumnDataSource(dict(left=L.ravel(), right=RR.ravel(), bottom=B.ravel(),
                                       top=T.ravel(), t=ta.ravel()))
         fig.quad(left="left", right="right", bottom="bottom", top="top", source=cells,
-                 fill_color={"field": "t", "transform": mapper}, line_color=None)
+                 fill_color={"field": "t", "transform": mapper},
+                 line_color={"field": "t", "transform": mapper}, line_width=0.6)
         fig.add_layout(ColorBar(color_mapper=mapper, title="balanced T′ (K)", width=12,
                                 title_text_font_size="11px"), "right")
         vn = sec["balanced_normal_wind"].sum("piece").transpose("pressure", "distance").values
@@ -755,10 +763,21 @@ class SectionView:
                 self._add_lines(fig, d, p, om, olev, "#cc79a7", width=1.2, labels=False)
                 fig.line([], [], line_color="#cc79a7", line_width=2, legend_label=
                          f"QG ω due to the pieces every {ostep:g} Pa/s (dashed: ascent)")
-        fig.legend.location = "bottom_right"
-        fig.legend.label_text_font_size = "10px"
-        fig.legend.background_fill_alpha = 0.7
+        _legend_below(fig)
         return fig
+
+
+def _legend_below(fig):
+    if not fig.legend:
+        return
+    leg = fig.legend[0]
+    fig.center = [c for c in fig.center if c is not leg]
+    leg.orientation = "horizontal"
+    leg.label_text_font_size = "11px"
+    leg.border_line_color = None
+    leg.margin = 2
+    leg.padding = 2
+    fig.add_layout(leg, "below")
 
 
 def caution_html(case) -> str:

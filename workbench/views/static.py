@@ -54,6 +54,7 @@ from workbench.session import PROJECTIONS, FigureSettings
 __all__ = [
     "CAUTION",
     "FigureSettings",
+    "PROJECTIONS",
     "MapData",
     "SectionData",
     "Overlay",
@@ -130,9 +131,19 @@ def coastline_source(folders: Sequence[str] | None = None) -> tuple[str, Path] |
 def _coastline_geometries(path: Path):
     key = str(path)
     if key not in _COAST_CACHE:
+        import logging
+
         from cartopy.io import shapereader
 
-        _COAST_CACHE[key] = list(shapereader.Reader(str(path)).geometries())
+        # pyshp logs a notice for a few GSHHS rings stored as holes only; we draw outlines, so
+        # the coastline drawn is the same either way
+        log = logging.getLogger("shapefile")
+        level = log.level
+        log.setLevel(logging.ERROR)
+        try:
+            _COAST_CACHE[key] = list(shapereader.Reader(str(path)).geometries())
+        finally:
+            log.setLevel(level)
     return _COAST_CACHE[key]
 
 
@@ -314,6 +325,7 @@ class SectionData:
     invented: str | None = None
     threshold: float = 2.0
     omega_pieces: list | None = None  # pieces whose own QG omega (piece_qg_omega) is drawn
+    name: str = ""  # the section line's name, shown in the title
 
     def arrays(self) -> dict[str, np.ndarray]:
         return {k: np.asarray(v.values) for k, v in self.section.data_vars.items()}
@@ -927,7 +939,7 @@ def section_data(
         keys.add(str(name))
     items = [a for a in (annotations or []) if getattr(a, "section_key", None) in keys]
     return SectionData(section=ds, key=str(key), overlays=colours, annotations=items,
-                       threshold=threshold, **_case_meta(case, time, member))
+                       threshold=threshold, name=str(name or ""), **_case_meta(case, time, member))
 
 
 def _fmt_point(lon, lat) -> str:
@@ -1043,7 +1055,7 @@ def draw_section(data: SectionData, settings: FigureSettings | dict | None = Non
     ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.5 / plot_h * 1.0 - 0.02),
               ncol=2, fontsize=7, frameon=False)
     _draw_annotations_section(ax, data.annotations)
-    what = f"Cross-section A {a0} to B {b0} ({x.max():.0f} km)"
+    what = f"Cross-section{' ' + repr(data.name) if data.name else ''} A {a0} to B {b0} ({x.max():.0f} km)"
     _title_block(fig, _title_lines(data, what, "grey: below ground / no data"))
     _caution(fig, None, data.invented)
     return fig
@@ -1073,7 +1085,7 @@ def state_section_data(state, index=None) -> SectionData:
         keys.add(str(sec.name))
     items = [a for a in view["annotations"] if getattr(a, "section_key", None) in keys]
     return SectionData(section=ds, key=str(index), overlays=overlays, annotations=items,
-                       threshold=view["threshold"], omega_pieces=[],
+                       threshold=view["threshold"], omega_pieces=[], name=str(getattr(sec, "name", "")),
                        **_case_meta(view["case"], view["time"], view["member"]))
 
 
@@ -1120,6 +1132,9 @@ def save_figure(fig: Figure, path, dpi: int | None = None, overwrite: bool = Fal
     meta = {"png": {"Software": f"PV Workbench {package_version()}"},
             "svg": {"Creator": f"PV Workbench {package_version()}"},
             "pdf": {"Creator": f"PV Workbench {package_version()}"}}[fmt]
+    # SVG keeps its text as text (editable in slides, searchable); PDF embeds TrueType
+    rc = {"svg.fonttype": "none", "pdf.fonttype": 42}
     with atomic_target(path, overwrite=overwrite, error=ExportError, what="figure") as tmp:
-        fig.savefig(tmp, format=fmt, dpi=dpi or fig.dpi, metadata=meta)
+        with matplotlib.rc_context(rc):
+            fig.savefig(tmp, format=fmt, dpi=dpi or fig.dpi, metadata=meta)
     return path

@@ -1,0 +1,217 @@
+"""Benchmarks of the QG inversion (``pvwb bench [--json]``).
+
+For grids of about 1 deg (21x61x101), 0.5 deg (26x121x201) and 0.25 deg
+(37x241x401) points (levels x latitudes x longitudes) this measures, in one
+run:
+
+* ``fft_roundtrip``: one forward plus inverse 3-D real FFT
+  (``scipy.fft.rfftn``/``irfftn``) of an array of the grid's shape -- the
+  yardstick; ``ratio_to_fft`` of every other record is its median time over
+  this one;
+* ``fast_solver``: :class:`~workbench.inversion.solver.QGSolver` set-up time
+  and the median of repeated solves; ``max_rel_error`` is the closure error
+  ``|solve(L phi) - phi| / |phi|`` for a random phi with non-zero boundary data;
+* on the 1 deg grid only: ``spsolve`` (SuperLU, one call: factorisation and
+  solve, minimum-degree ordering on A^T + A) and ``pyamg`` (smoothed
+  aggregation on the symmetrised operator, CG, tol 1e-12; ``median_s`` is the
+  solve with the hierarchy reused, ``setup_s`` the hierarchy) on the same
+  assembled operator; ``max_rel_error`` is their difference from the fast
+  solver and ``fast_speedup`` how many times slower they are;
+* ``peak_mem_mb``: tracemalloc peak of the fast solver's set-up plus one solve,
+  and ``mem_ratio`` that peak over the size of one float64 field.
+
+The fields are invented (random), the timings are wall-clock and noisy: compare
+ratios within one run.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import statistics
+import sys
+import time
+import tracemalloc
+import warnings
+
+import numpy as np
+
+GRIDS = {
+    "1deg": (21, 61, 101),
+    "0.5deg": (26, 121, 201),
+    "0.25deg": (37, 241, 401),
+}
+
+__all__ = ["run", "main", "GRIDS", "make_grid"]
+
+
+def make_grid(shape):
+    """An invented regional grid of ``shape`` (nz, ny, nx) spanning 25-85N, 100 degrees of longitude."""
+    from workbench.inversion.operator import QGGrid
+
+    nz, ny, nx = shape
+    lat = np.linspace(25.0, 85.0, ny)
+    lon = np.linspace(-60.0, 40.0, nx)
+    p = np.linspace(100000.0, 10000.0, nz)
+    sigma = 2.0e-6 * (p[0] / p) ** 1.5
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # |f| varies by more than 2 over 25-85N: fine for timing
+        return QGGrid(lat, lon, p, sigma, 1.0e-4)
+
+
+def _median_time(fn, repeat):
+    times = []
+    for _ in range(repeat):
+        t = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - t)
+    return statistics.median(times)
+
+
+def _problem(grid, rng):
+    from workbench.inversion.operator import apply_qg_operator
+
+    phi = rng.standard_normal(grid.shape) * 100.0
+    bt = rng.standard_normal(grid.shape[1:])
+    tt = rng.standard_normal(grid.shape[1:])
+    q = apply_qg_operator(grid, phi, bt, tt)
+    return phi, q, bt, tt
+
+
+def bench_grid(name, shape, repeat=7, with_references=False, log=None):
+    """Records for one grid (see the module docstring)."""
+    import scipy.fft as sfft
+
+    from workbench.inversion.solver import QGSolver
+
+    rng = np.random.default_rng(1)
+    grid = make_grid(shape)
+    phi, q, bt, tt = _problem(grid, rng)
+    field_mb = q.nbytes / 1e6
+    records = []
+
+    def rec(method, median_s, t_fft, **extra):
+        r = dict(grid=name, shape=list(shape), method=method, median_s=median_s,
+                 ratio_to_fft=median_s / t_fft if t_fft else None, max_rel_error=None)
+        r.update(extra)
+        records.append(r)
+        if log:
+            log(r)
+        return r
+
+    data = rng.standard_normal(shape)
+    t_fft = _median_time(lambda: sfft.irfftn(sfft.rfftn(data), s=data.shape), repeat)
+    rec("fft_roundtrip", t_fft, t_fft)
+
+    t0 = time.perf_counter()
+    solver = QGSolver(grid)
+    setup = time.perf_counter() - t0
+    back = solver.solve(q, bt, tt, lateral=phi)
+    err = float(np.abs(back - phi).max() / np.abs(phi).max())
+    q0 = np.nan_to_num(q)
+    t_fast = _median_time(lambda: solver.solve(q0, bt, tt, lateral=phi), repeat)
+    del back
+    tracemalloc.start()
+    s2 = QGSolver(grid)
+    s2.solve(q0, bt, tt, lateral=phi)
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    del s2
+    fast = rec("fast_solver", t_fast, t_fft, setup_s=setup, max_rel_error=err,
+               peak_mem_mb=peak / 1e6, mem_ratio=peak / 1e6 / field_mb, field_mb=field_mb)
+
+    if with_references:
+        import scipy.sparse as sp
+        from scipy.sparse.linalg import spsolve
+
+        from workbench.inversion.operator import assemble_operator
+
+        ref_phi = solver.solve(q0, bt, tt, lateral=phi)
+        A = assemble_operator(grid)
+        b = A.rhs(q0, bt, tt, phi)
+        scale = np.abs(ref_phi).max()
+        Acsc = A.matrix.tocsc()
+        t0 = time.perf_counter()
+        x = spsolve(Acsc, b, permc_spec="MMD_AT_PLUS_A")
+        t_sp = time.perf_counter() - t0
+        rec("spsolve", t_sp, t_fft, max_rel_error=float(np.abs(A.expand(x, phi) - ref_phi).max() / scale),
+            fast_speedup=t_sp / fast["median_s"], repeats=1)
+        try:
+            import pyamg
+        except ImportError:  # optional dependency (the "bench" extra)
+            pyamg = None
+        if pyamg is not None:
+            d = A.spd_scaling()
+            M = sp.csr_matrix(sp.diags(d) @ A.matrix)
+            db = d * b
+            t0 = time.perf_counter()
+            ml = pyamg.smoothed_aggregation_solver(M)
+            t_setup = time.perf_counter() - t0
+            out = {}
+
+            def amg():
+                out["x"] = ml.solve(db, tol=1e-12, accel="cg", maxiter=1000)
+
+            t_amg = _median_time(amg, 3)
+            rec("pyamg", t_amg, t_fft, setup_s=t_setup,
+                max_rel_error=float(np.abs(A.expand(out["x"], phi) - ref_phi).max() / scale),
+                fast_speedup=t_amg / fast["median_s"], repeats=3)
+    return records
+
+
+def _table(records):
+    head = f"{'grid':8} {'shape':>14} {'method':14} {'median_s':>10} {'ratio_fft':>9} {'max_rel_err':>11} {'notes'}"
+    lines = [head, "-" * len(head)]
+    for r in records:
+        notes = []
+        if r.get("setup_s") is not None:
+            notes.append(f"setup {r['setup_s']:.3g} s")
+        if r.get("fast_speedup") is not None:
+            notes.append(f"fast solver {r['fast_speedup']:.0f}x faster")
+        if r.get("peak_mem_mb") is not None:
+            notes.append(f"peak {r['peak_mem_mb']:.0f} MB = {r['mem_ratio']:.1f} fields")
+        err = "" if r["max_rel_error"] is None else f"{r['max_rel_error']:.1e}"
+        lines.append(f"{r['grid']:8} {'x'.join(map(str, r['shape'])):>14} {r['method']:14} {r['median_s']:10.4g} "
+                     f"{r['ratio_to_fft']:9.2f} {err:>11} {', '.join(notes)}")
+    return "\n".join(lines)
+
+
+def run(json_output=False, grids=None, references=True, repeat=7, stream=None):
+    """Run the benchmarks; print a table (or one JSON list) and return the list of records.
+
+    ``grids``: names from :data:`GRIDS` (default all); ``references``: also time spsolve and
+    PyAMG on the 1 deg grid (about half a minute).
+    """
+    stream = stream or sys.stdout
+    names = list(grids or GRIDS)
+    records = []
+    t0 = time.perf_counter()
+    log = None if json_output else (lambda r: print(f"  measured {r['grid']} {r['method']}", file=sys.stderr))
+    for name in names:
+        if name not in GRIDS:
+            from workbench.errors import InputError
+
+            raise InputError(f"bench: unknown grid {name!r}; choose from {', '.join(GRIDS)}.")
+        records += bench_grid(name, GRIDS[name], repeat=repeat, with_references=references and name == "1deg",
+                              log=log)
+    if json_output:
+        print(json.dumps(records), file=stream)
+    else:
+        print(_table(records), file=stream)
+        print(f"(total {time.perf_counter() - t0:.1f} s; invented fields; ratios are within this run)", file=stream)
+    return records
+
+
+def main(argv=None):
+    """``pvwb bench [--json] [--grid NAME ...] [--no-references]``."""
+    ap = argparse.ArgumentParser(prog="pvwb bench", description="QG inversion benchmarks (solver vs FFT, spsolve, PyAMG).")
+    ap.add_argument("--json", action="store_true", help="print one JSON list of records")
+    ap.add_argument("--grid", action="append", choices=list(GRIDS), help="grid(s) to run (default all)")
+    ap.add_argument("--no-references", action="store_true", help="skip spsolve and PyAMG (the slow part)")
+    ap.add_argument("--repeat", type=int, default=7, help="repeats for the medians (default 7)")
+    args = ap.parse_args(argv)
+    run(json_output=args.json, grids=args.grid, references=not args.no_references, repeat=args.repeat)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
