@@ -163,3 +163,32 @@ def test_cli_brief(small_case_path, tmp_path, capsys):
     err = capsys.readouterr().err
     assert case.checksum in err and "sha256" in err
     assert not (tmp_path / "x.pdf").exists()
+
+
+def test_briefing_of_the_sample_case(sample_case_path, tmp_path):
+    """The committed invented sample storm: a session around its low, then `pvwb brief`."""
+    from workbench.sample import track_low
+
+    case = wb.open_case(sample_case_path)
+    st = State(case)
+    k = len(case.times) // 2
+    st.time_index = k
+    low = track_low(case.data)[k]
+    lon, lat = float(low["longitude"]), float(low["latitude"])
+    st.add_piece(name="upper", kind="interior",
+                 polygon=[(lon - 35, lat - 15), (lon + 5, lat - 15), (lon + 5, lat + 12),
+                          (lon - 35, lat + 12)], layer=(550, 100), sign=1)
+    st.add_boundary_piece("bottom")
+    st.add_section((lon - 30, lat - 10), (lon + 25, lat + 6), name="across the low")
+    st.set_target(lon, lat, 900.0)
+    st.figure_settings = {"dpi": 60, "projection": "lambert_conformal"}
+    session = save_session(st, tmp_path / "sample.json")
+    out = ARTIFACTS / "briefing_sample_case.pdf"
+    assert brief.main([str(sample_case_path), "--session", str(session), "-o", str(out),
+                       "--overwrite"]) == 0
+    pages, _ = _pdf_pages(out)
+    assert len(pages) == 5
+    assert all(CAUTION in p for p in pages)
+    assert "Invented case" in pages[0] and case.name in pages[0]
+    assert "across the low" in pages[3]
+    assert "sum of pieces" in pages[4]

@@ -4,7 +4,6 @@ from __future__ import annotations
 import warnings
 
 import numpy as np
-import pytest
 import xarray as xr
 from scipy.sparse.linalg import spsolve
 

@@ -5,7 +5,6 @@ dynamic tropopause, invert QG PV anomalies piece by piece, and brief. The intera
 :class:`Workbench` (Panel) is imported on first use so that computation never pulls in
 plotting or widget libraries.
 """
-from __future__ import annotations
 
 __version__ = "0.1.0"
 

@@ -307,6 +307,8 @@ class Workbench:
         ]
         self._fill_sidebar()
         self._refresh_file_list()
+        self._later(st.warm)  # anomaly and solver ready before the first lasso
+        self._watch(st, lambda *ev: self._later(st.warm), ["time_index", "member", "reference"])
         st.set_status(f"Case {case.name!r}: {len(case.times)} time(s), "
                       f"{len(case.levels_hpa)} levels. Lasso an anomaly to invert it.", "info")
 
@@ -481,7 +483,7 @@ class Workbench:
         self.attr_box = pn.Column(pn.Row(pn.pane.Markdown("**Attribution at the target**",
                                                           margin=(18, 5)), self.attr_level),
                                   self.attr_title, self.attr_table)
-        self._watch(st, lambda *ev: self._refresh_pieces_table(), ["pieces"])
+        self._watch(st, lambda *ev: self._later(self._refresh_pieces_table), ["pieces"])
         self._watch(st, lambda *ev: self._later(self._refresh_attribution),
                     ["pieces", "target", "time_index", "member", "reference"])
         self._refresh_pieces_table()

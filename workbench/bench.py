@@ -77,7 +77,7 @@ def _problem(grid, rng):
     return phi, q, bt, tt
 
 
-def bench_grid(name, shape, repeat=7, with_references=False, log=None):
+def bench_grid(name, shape, repeat=9, with_references=False, log=None):
     """Records for one grid (see the module docstring)."""
     import scipy.fft as sfft
 
@@ -99,24 +99,30 @@ def bench_grid(name, shape, repeat=7, with_references=False, log=None):
         return r
 
     data = rng.standard_normal(shape)
-    t_fft = _median_time(lambda: sfft.irfftn(sfft.rfftn(data), s=data.shape), repeat)
-    rec("fft_roundtrip", t_fft, t_fft)
-
     t0 = time.perf_counter()
     solver = QGSolver(grid)
     setup = time.perf_counter() - t0
     back = solver.solve(q, bt, tt, lateral=phi)
     err = float(np.abs(back - phi).max() / np.abs(phi).max())
-    q0 = np.nan_to_num(q)
-    t_fast = _median_time(lambda: solver.solve(q0, bt, tt, lateral=phi), repeat)
     del back
+    q0 = np.nan_to_num(q)
+    # interleave the yardstick and the solver so that both see the same machine load
+    t_ffts, t_solves = [], []
+    t_one = _median_time(lambda: sfft.irfftn(sfft.rfftn(data), s=data.shape), 1) + _median_time(
+        lambda: solver.solve(q0, bt, tt, lateral=phi), 1)
+    repeat = int(min(101, max(repeat, np.ceil(1.5 / t_one))))  # small grids: more samples against noise
+    for _ in range(repeat):
+        t_ffts.append(_median_time(lambda: sfft.irfftn(sfft.rfftn(data), s=data.shape), 1))
+        t_solves.append(_median_time(lambda: solver.solve(q0, bt, tt, lateral=phi), 1))
+    t_fft, t_fast = statistics.median(t_ffts), statistics.median(t_solves)
+    rec("fft_roundtrip", t_fft, t_fft, repeats=repeat)
     tracemalloc.start()
     s2 = QGSolver(grid)
     s2.solve(q0, bt, tt, lateral=phi)
     _, peak = tracemalloc.get_traced_memory()
     tracemalloc.stop()
     del s2
-    fast = rec("fast_solver", t_fast, t_fft, setup_s=setup, max_rel_error=err,
+    fast = rec("fast_solver", t_fast, t_fft, setup_s=setup, max_rel_error=err, repeats=repeat,
                peak_mem_mb=peak / 1e6, mem_ratio=peak / 1e6 / field_mb, field_mb=field_mb)
 
     if with_references:
@@ -175,7 +181,7 @@ def _table(records):
     return "\n".join(lines)
 
 
-def run(json_output=False, grids=None, references=True, repeat=7, stream=None):
+def run(json_output=False, grids=None, references=True, repeat=9, stream=None):
     """Run the benchmarks; print a table (or one JSON list) and return the list of records.
 
     ``grids``: names from :data:`GRIDS` (default all); ``references``: also time spsolve and
@@ -207,7 +213,7 @@ def main(argv=None):
     ap.add_argument("--json", action="store_true", help="print one JSON list of records")
     ap.add_argument("--grid", action="append", choices=list(GRIDS), help="grid(s) to run (default all)")
     ap.add_argument("--no-references", action="store_true", help="skip spsolve and PyAMG (the slow part)")
-    ap.add_argument("--repeat", type=int, default=7, help="repeats for the medians (default 7)")
+    ap.add_argument("--repeat", type=int, default=9, help="repeats for the medians (default 9)")
     args = ap.parse_args(argv)
     run(json_output=args.json, grids=args.grid, references=not args.no_references, repeat=args.repeat)
     return 0

@@ -161,8 +161,10 @@ def _default_target(state):
         "height anomaly of the full inversion at the overlay level.")
 
 
-def _text_page(fig, y, text, size=10, weight="normal", width=120, color="black", x=0.06):
+def _text_page(fig, y, text, size=10, weight="normal", width=None, color="black", x=0.06):
     """Write wrapped text at height y (figure fraction); return the next free y."""
+    if width is None:  # characters per line that fit the page at this font size
+        width = int((1.0 - 2 * x) * fig.get_figwidth() * 72.0 / (0.56 * size))
     lines = []
     for para in str(text).split("\n"):
         lines.extend(textwrap.wrap(para, width=width) or [""])
@@ -178,7 +180,7 @@ def _caution_band(fig, invented):
     _caution(fig, None, invented)
 
 
-def _title_page(case, state, generated):
+def _title_page(case, state, generated, notes=()):
     from matplotlib.figure import Figure
 
     fig = Figure(figsize=PAGE)
@@ -227,6 +229,9 @@ def _title_page(case, state, generated):
         y = _text_page(fig, y, "\n".join(
             f"- {s.name or f'section {k}'}: {_fmt_lonlat(*s.start)} to {_fmt_lonlat(*s.end)}"
             for k, s in enumerate(state.sections)), size=10)
+    if notes:
+        y = _text_page(fig, y - 0.02, "Notes from the computation", size=12, weight="bold")
+        y = _text_page(fig, y, "\n".join("- " + n for n in notes), size=9.5, color="#8a3b00")
     fig.text(0.5, 0.11, CAUTION, ha="center", va="bottom", fontsize=11, wrap=True,
              fontweight="bold",
              bbox=dict(boxstyle="round,pad=0.6", fc="#fff8dc", ec="#8a6d00", lw=1.2))
@@ -297,29 +302,49 @@ def _table_page(case, state):
     return fig, sentences
 
 
+def _notes(caught) -> list[str]:
+    """The package's own warnings raised while the pages were made (deduplicated)."""
+    out = []
+    for w in caught:
+        if "workbench" not in str(w.filename).replace("\\", "/"):
+            continue
+        msg = " ".join(str(w.message).split())
+        if msg not in out:
+            out.append(msg)
+    return out
+
+
 def briefing_figures(case, state) -> list:
-    """The briefing's pages as matplotlib Figures (title, maps, sections, attribution)."""
+    """The briefing's pages as matplotlib Figures (title, maps, sections, attribution).
+
+    Warnings the package raises while computing (e.g. a domain where constant-f0 QG is
+    rough) are listed on the title page under "Notes from the computation"."""
+    import warnings
+
     from workbench.views import static
 
-    pages = [_title_page(case, state, utc_now_iso())]
-    view = static.state_view(state)
-    settings = dataclasses.replace(view["settings"], width_in=PAGE[0])
-    view["settings"] = settings
-    md_kwargs = {k: v for k, v in view.items() if k not in ("case", "sections")}
-    pages.append(static.draw_map(static.map_data(case, **md_kwargs), settings, page_size=PAGE))
-    if view["surface"] != "tropopause":
-        trop = dict(md_kwargs, field="potential_temperature", surface="tropopause")
-        trop_settings = dataclasses.replace(settings, contour_field=None, levels=None,
-                                            colour_map=None)
-        trop["settings"] = trop_settings
-        pages.append(static.draw_map(static.map_data(case, **trop), trop_settings,
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        pages = []
+        view = static.state_view(state)
+        settings = dataclasses.replace(view["settings"], width_in=PAGE[0])
+        view["settings"] = settings
+        md_kwargs = {k: v for k, v in view.items() if k not in ("case", "sections")}
+        pages.append(static.draw_map(static.map_data(case, **md_kwargs), settings,
                                      page_size=PAGE))
-    for k in range(len(state.sections)):
-        pages.append(static.draw_section(static.state_section_data(state, k), settings,
+        if view["surface"] != "tropopause":
+            trop = dict(md_kwargs, field="potential_temperature", surface="tropopause")
+            trop_settings = dataclasses.replace(settings, contour_field=None, levels=None,
+                                                colour_map=None)
+            trop["settings"] = trop_settings
+            pages.append(static.draw_map(static.map_data(case, **trop), trop_settings,
                                          page_size=PAGE))
-    fig, _ = _table_page(case, state)
-    pages.append(fig)
-    return pages
+        for k in range(len(state.sections)):
+            pages.append(static.draw_section(static.state_section_data(state, k), settings,
+                                             page_size=PAGE))
+        fig, _ = _table_page(case, state)
+        pages.append(fig)
+    return [_title_page(case, state, utc_now_iso(), _notes(caught))] + pages
 
 
 def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: bool = False) -> Path:

@@ -25,7 +25,7 @@ else ``"remainder"``), so the pieces always add up to the full inversion.
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass
 
 import numpy as np
 import xarray as xr

@@ -32,16 +32,12 @@ from pathlib import Path
 from typing import Any, Sequence
 
 import matplotlib
-
-if not os.environ.get("MPLBACKEND") and not matplotlib.get_backend().lower().startswith(
-    ("module://", "qt", "tk", "gtk", "wx", "macosx", "nbagg", "webagg", "ipympl", "widget")
-):
-    matplotlib.use("Agg")
-
+import matplotlib.text
+import matplotlib.ticker
 import numpy as np
 import xarray as xr
 from matplotlib import colors as mcolors
-from matplotlib.figure import Figure
+from matplotlib.figure import Figure  # figures are built without pyplot: no GUI backend needed
 
 import cartopy
 import cartopy.crs as ccrs
@@ -498,7 +494,7 @@ def _projection(settings: FigureSettings, lon0: float, lat_min: float, lat_max: 
 
 def _title_lines(meta, what: str, extra: str | None = None) -> tuple[str, str, str]:
     name = meta.case_name or "(unnamed data)"
-    if meta.invented:
+    if meta.invented and "invented" not in name.lower():
         name = f"{name}  [INVENTED CASE]"
     line2 = what
     if meta.valid_time:
@@ -612,7 +608,16 @@ def _contour_step(values) -> float:
     return _nice_step(2 * m, 10) if m > 0 else 0.0
 
 
-def _symmetric_levels(values, n=10):
+#: Below these magnitudes an overlay field is not contoured (it would draw round-off).
+NEGLIGIBLE = {"wind": 0.05, "height": 0.1, "omega": 1e-3}  # m s-1, m, Pa s-1
+
+
+def _symmetric_levels(values, n=10, floor: float = 0.0):
+    """Contour levels symmetric about zero (zero left out), or (None, 0) when the field's
+    largest magnitude is at most ``floor``."""
+    v = np.abs(np.asarray(values, float))
+    if not np.isfinite(v).any() or float(np.nanmax(v)) <= floor:
+        return None, 0.0
     step = _contour_step(values)
     if step == 0:
         return None, 0.0
@@ -704,7 +709,7 @@ def draw_map(data: MapData, settings: FigureSettings | dict | None = None,
         u = np.asarray(o.u.transpose("latitude", "longitude").values, float)
         v = np.asarray(o.v.transpose("latitude", "longitude").values, float)
         z = np.asarray(o.height_anomaly.transpose("latitude", "longitude").values, float)
-        zlev, zstep = _symmetric_levels(z)
+        zlev, zstep = _symmetric_levels(z, floor=NEGLIGIBLE["height"])
         if zlev:
             cs = ax.contour(lon, lat, z, levels=zlev, colors=o.colour, linewidths=1.4,
                             linestyles=["dashed" if x < 0 else "solid" for x in zlev],
@@ -1005,13 +1010,17 @@ def draw_section(data: SectionData, settings: FigureSettings | dict | None = Non
     if "balanced_normal_wind" in ds:
         for name, colour in data.overlays:
             bn = np.asarray(ds["balanced_normal_wind"].sel(piece=name).values, float)
-            bl, bstep = _symmetric_levels(bn)
+            bl, bstep = _symmetric_levels(bn, floor=NEGLIGIBLE["wind"])
             if bl:
                 cs = ax.contour(x, p, bn, levels=bl, colors=colour, linewidths=1.5,
                                 linestyles=["dashed" if v < 0 else "solid" for v in bl], zorder=5)
                 ax.clabel(cs, fmt="%g", fontsize=6.5)
                 handles.append(Line2D([], [], color=colour, lw=1.5,
                                       label=f"{name}: balanced normal wind (every {bstep:g} m s-1)"))
+            else:
+                handles.append(Line2D([], [], color=colour, lw=1.5, ls=":",
+                                      label=f"{name}: balanced normal wind < "
+                                            f"{NEGLIGIBLE['wind']:g} m s-1 here (not drawn)"))
     omegas = []  # (label, DataArray)
     if "qg_omega" in ds:
         if "piece" in ds["qg_omega"].dims:  # older layout: one omega per piece
@@ -1023,10 +1032,11 @@ def draw_section(data: SectionData, settings: FigureSettings | dict | None = Non
         for n in ds["piece_qg_omega"]["piece"].values:
             if str(n) in data.omega_pieces:
                 omegas.append((f"due to {n}", ds["piece_qg_omega"].sel(piece=n)))
-    omega_styles = (("#009e73", 1.1), ("#e69f00", 1.1), ("#56b4e9", 1.1))
+    # greys: piece colours take the colour-blind-safe hues
+    omega_styles = (("#606060", 1.1), ("#9a9a9a", 1.1), ("#303030", 1.1))
     for k, (olabel, om) in enumerate(omegas):
         ov = np.asarray(om.values, float)
-        ol, ostep = _symmetric_levels(ov)
+        ol, ostep = _symmetric_levels(ov, floor=NEGLIGIBLE["omega"])
         colour, lw = omega_styles[k % len(omega_styles)]
         if ol:
             ax.contour(x, p, ov, levels=ol, colors=colour, linewidths=lw,
