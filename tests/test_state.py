@@ -216,3 +216,40 @@ def test_set_case_clears_grid_bound_things(state, small_case):
     state.set_target(-5.0, 46.0)
     state.set_case(small_case)
     assert state.pieces == [] and state.sections == [] and state.target is None
+
+
+def test_incremental_results_match_a_full_piecewise_inversion(state, small_case):
+    # bookkeeping check: appending/dropping pieces one at a time (what lassos do) must give
+    # exactly what the inversion layer's invert_pieces gives for the whole list (linearity of
+    # QG inversion, Davis & Emanuel 1991, makes the remainder update exact).
+    from workbench.inversion.pieces import invert_pieces
+
+    def check():
+        got = state.results()
+        want = invert_pieces(small_case.anomaly(time=0, reference="time_mean"), state.pieces)
+        assert list(got) == list(want)
+        for name in want:
+            for var in ("height_anomaly", "u", "v", "temperature_anomaly"):
+                a, b = got[name][var].values, want[name][var].values
+                scale = float(np.nanmax(np.abs(want["total"][var].values)))
+                assert float(np.nanmax(np.abs(a - b))) <= 1e-10 * scale, (name, var)
+
+    state.warm()
+    state.add_piece(name="upper", polygon=TROUGH, layer=(150.0, 450.0), sign=1)
+    check()
+    # overlaps the first piece: the first claim wins
+    state.add_piece(name="wider", polygon=[(-30.0, 35.0), (15.0, 35.0), (15.0, 58.0),
+                                            (-30.0, 58.0)], layer=(100.0, 1000.0), sign=0)
+    check()
+    state.add_piece(name="warm surface", kind="bottom", polygon=TROUGH, sign=1)
+    state.add_boundary_piece("bottom")
+    state.add_boundary_piece("lateral")
+    check()
+    state.rename_piece("wider", "the rest aloft")
+    state.toggle_piece("upper", False)
+    check()
+    state.remove_piece("lateral boundary")
+    state.remove_piece("surface θ′")
+    check()
+    state.remove_piece("upper")  # not at the end: a full inversion again
+    check()

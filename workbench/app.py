@@ -196,7 +196,7 @@ class Workbench:
         st = self.state
         self.status = pn.pane.HTML("", css_classes=["pvwb-status"], margin=(0, 10),
                                    sizing_mode="stretch_width")
-        self.spinner = pn.indicators.LoadingSpinner(value=False, size=22, name="",
+        self.spinner = pn.indicators.LoadingSpinner(value=False, size=22,
                                                     css_classes=["pvwb-busy"], margin=(8, 4))
 
         def show_status(*_):
@@ -214,11 +214,11 @@ class Workbench:
         show_status()
         self.header = pn.pane.HTML("", sizing_mode="stretch_width", css_classes=["pvwb-header"])
         # open file
-        self.file_select = pn.widgets.Select(name="Case file (data folders)", options={},
+        self.file_select = pn.widgets.Select(label="Case file (data folders)", options={},
                                              width=250)
-        self.file_path = pn.widgets.TextInput(name="…or a file name in a data folder",
+        self.file_path = pn.widgets.TextInput(label="…or a file name in a data folder",
                                               placeholder="e.g. storm.nc", width=250)
-        self.open_button = pn.widgets.Button(name="Open", button_type="primary", width=90,
+        self.open_button = pn.widgets.Button(label="Open", color="primary", width=90,
                                              css_classes=["pvwb-open"])
         self.open_button.on_click(lambda e: self._guard(self.open_file))
         self._refresh_file_list()
@@ -330,10 +330,10 @@ class Workbench:
         from .views.interactive import FIELD_LABELS, MODES
 
         times = {lab: i for i, lab in enumerate(st.time_labels)}
-        self.time = pn.widgets.Select(name="Valid time", options=times, value=st.time_index,
+        self.time = pn.widgets.Select(label="Valid time", options=times, value=st.time_index,
                                       width=170)
-        self.prev_t = pn.widgets.Button(name="◀", width=38, margin=(23, 2, 5, 2))
-        self.next_t = pn.widgets.Button(name="▶", width=38, margin=(23, 2, 5, 2))
+        self.prev_t = pn.widgets.Button(label="◀", width=38, margin=(23, 2, 5, 2))
+        self.next_t = pn.widgets.Button(label="▶", width=38, margin=(23, 2, 5, 2))
         self.prev_t.on_click(lambda e: self._step_time(-1))
         self.next_t.on_click(lambda e: self._step_time(+1))
         sopts = self._surface_options()
@@ -341,48 +341,48 @@ class Workbench:
             thetas = [v for v in sopts.values() if isinstance(v, float)]
             if thetas and isinstance(st.surface, float):
                 st.surface = min(thetas, key=lambda v: abs(v - st.surface))
-        self.surface = pn.widgets.Select(name="Surface", options=sopts, value=st.surface,
+        self.surface = pn.widgets.Select(label="Surface", options=sopts, value=st.surface,
                                          width=250)
-        self.field = pn.widgets.Select(name="Field", value=st.field, width=250, options={
+        self.field = pn.widgets.Select(label="Field", value=st.field, width=250, options={
             f"{FIELD_LABELS[f][0]} ({FIELD_LABELS[f][1]})": f for f in case.MAP_FIELDS})
         levels = {f"{p:g} hPa": float(p) for p in case.levels_hpa}
-        self.level = pn.widgets.Select(name="Balanced-flow level", options=levels,
+        self.level = pn.widgets.Select(label="Balanced-flow level", options=levels,
                                        value=float(st.overlay_level), width=120)
-        self.reference = pn.widgets.Select(name="Reference state", width=120,
+        self.reference = pn.widgets.Select(label="Reference state", width=120,
                                            options={"time mean": "time_mean",
                                                     "area mean": "area_mean",
                                                     "zonal mean": "zonal_mean"},
                                            value=st.reference if st.reference in
                                            ("time_mean", "area_mean", "zonal_mean") else "time_mean")
-        self.threshold = pn.widgets.FloatInput(name="Tropopause (PVU)", value=st.threshold,
+        self.threshold = pn.widgets.FloatInput(label="Tropopause (PVU)", value=st.threshold,
                                                step=0.5, start=0.5, end=10, width=120)
-        self.mode = pn.widgets.RadioButtonGroup(name="Mouse", options=list(MODES),
+        self.mode = pn.widgets.RadioButtonGroup(label="Mouse", options=list(MODES),
                                                 value="Lasso a piece", orientation="vertical",
-                                                button_type="default", width=250,
+                                                width=250,
                                                 css_classes=["pvwb-mode"])
         # the next lassoed piece
-        self.p_kind = pn.widgets.Select(name="A lasso makes", width=250, options={
+        self.p_kind = pn.widgets.Select(label="A lasso makes", width=250, options={
             "interior PV piece": "interior", "surface θ′ piece (lower boundary)": "bottom",
             "lid θ′ piece (upper boundary)": "top"})
-        self.p_coord = pn.widgets.RadioButtonGroup(name="Layer in", options=["pressure", "theta"],
+        self.p_coord = pn.widgets.RadioButtonGroup(label="Layer in", options=["pressure", "theta"],
                                                    value="pressure", width=250)
         pmax = float(max(case.levels_hpa))
         pmin = float(min(case.levels_hpa))
-        self.p_layer = pn.widgets.RangeSlider(name="Layer (hPa)", start=pmin, end=pmax,
+        self.p_layer = pn.widgets.RangeSlider(label="Layer (hPa)", start=pmin, end=pmax,
                                               value=(pmin, min(500.0, pmax)), step=25, width=250)
-        self.p_sign = pn.widgets.RadioButtonGroup(name="Sign", options={
+        self.p_sign = pn.widgets.RadioButtonGroup(label="Sign", options={
             "positive": 1, "negative": -1, "both": 0}, value=1, width=250)
-        self.p_threshold = pn.widgets.FloatInput(name="Min. |PV anomaly| (PVU)", value=0.0,
+        self.p_threshold = pn.widgets.FloatInput(label="Min. |PV anomaly| (PVU)", value=0.0,
                                                  start=0.0, step=0.1, width=120)
-        self.p_moist = pn.widgets.Checkbox(name="moist only (RH ≥)", value=False, width=120,
+        self.p_moist = pn.widgets.Checkbox(label="moist only (RH ≥)", value=False, width=120,
                                            margin=(28, 5, 5, 10))
-        self.p_rh = pn.widgets.IntInput(name="RH (%)", value=80, start=0, end=100, step=5,
+        self.p_rh = pn.widgets.IntInput(label="RH (%)", value=80, start=0, end=100, step=5,
                                         width=70)
-        self.p_name = pn.widgets.TextInput(name="Name of the next piece", placeholder="auto",
+        self.p_name = pn.widgets.TextInput(label="Name of the next piece", placeholder="auto",
                                            width=250)
         self.boundary_buttons = []
         for kind, label in BOUNDARY_PIECES.items():
-            b = pn.widgets.Button(name=f"+ {label}", width=120, css_classes=[f"pvwb-add-{kind}"])
+            b = pn.widgets.Button(label=f"+ {label}", width=120, css_classes=[f"pvwb-add-{kind}"])
             b.on_click(lambda e, k=kind: self._guard(self.add_boundary, k))
             self.boundary_buttons.append(b)
 
@@ -472,7 +472,7 @@ class Workbench:
         self.pieces_box = pn.Column(pn.pane.Markdown("**Pieces** (edit a name to rename; tick "
                                                      "to show/hide; ✖ deletes)", margin=(0, 5)),
                                     self.pieces_table)
-        self.attr_level = pn.widgets.Select(name="Target level", width=110, value=float(
+        self.attr_level = pn.widgets.Select(label="Target level", width=110, value=float(
             st.overlay_level), options={f"{p:g} hPa": float(p) for p in st.case.levels_hpa})
         self.attr_level.param.watch(lambda ev: self._guard(self._retarget_level, ev.new), "value")
         self.attr_title = pn.pane.Markdown("", margin=(0, 5))

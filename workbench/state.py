@@ -278,7 +278,7 @@ class State(param.Parameterized):
             raise PieceError(f"boundary piece {kind!r} is unknown; use one of "
                              f"{', '.join(BOUNDARY_PIECES)}")
         for p in self.pieces:
-            if p.kind == kind:
+            if p.kind == kind and p.polygon is None:
                 raise PieceError(f"the {BOUNDARY_PIECES[kind]} piece exists already "
                                  f"(called {p.name!r})")
         return self.add_piece(name=self.new_piece_name(BOUNDARY_PIECES[kind]), kind=kind)

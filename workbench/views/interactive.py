@@ -640,7 +640,7 @@ class SectionView:
         self.dataset = sec
         self.pane.objects = [pn.pane.Bokeh(f, name="pvwb-section-figure") for f in figs]
 
-    def _frame(self, sec, title, height, x_range=None):
+    def _frame(self, sec, title, height, x_range=None, name="pvwb-section-plot"):
         d = sec["distance"].values
         p = sec["pressure"].values / 100.0
         kw = dict(x_range=x_range) if x_range is not None else dict(x_range=(float(d[0]), float(d[-1])))
@@ -648,7 +648,7 @@ class SectionView:
                      y_range=(float(p.max()), float(p.min())), title=title,
                      x_axis_label="distance from A (km)", y_axis_label="pressure (hPa)",
                      tools="pan,wheel_zoom,box_zoom,reset,save", toolbar_location="above",
-                     name="pvwb-section-plot", **kw)
+                     name=name, **kw)
         fig.toolbar.logo = None
         fig.title.text_font_size = "13px"
         ticks = [x for x in (1000, 925, 850, 700, 500, 400, 300, 250, 200, 150, 100, 70, 50)
@@ -726,7 +726,7 @@ class SectionView:
     def _pieces_figure(self, sec, top):
         names = [str(n) for n in sec["piece"].values]
         fig, d, p = self._frame(sec, "Balanced flow of the visible pieces: " + ", ".join(names),
-                                260, x_range=top.x_range)
+                                260, x_range=top.x_range, name="pvwb-section-pieces-plot")
         ta = sec["balanced_temperature_anomaly"].sum("piece").transpose("pressure", "distance").values
         m = _nice(float(np.nanmax(np.abs(ta))) if np.isfinite(ta).any() else 1.0)
         mapper = LinearColorMapper(palette=list(palette("anomaly")), low=-m, high=m,
