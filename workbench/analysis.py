@@ -12,7 +12,7 @@ import numpy as np
 
 from .errors import InputError
 
-__all__ = ["standard_pieces", "storm_centre", "analyse", "default_case_path", "main"]
+__all__ = ["standard_pieces", "storm_centre", "analyse", "default_case_path", "load_pieces", "main"]
 
 SAMPLE_DIR = Path(__file__).resolve().parents[1] / "sample_cases"
 
@@ -90,6 +90,19 @@ def _parse_target(text):
     return lon, lat, p
 
 
+def load_pieces(path):
+    """Pieces from a JSON file holding a list of piece dicts (``Piece.to_dict()`` form)."""
+    from .inversion.pieces import Piece
+
+    try:
+        raw = json.loads(Path(path).read_text())
+    except (OSError, ValueError) as exc:
+        raise InputError(f"Cannot read pieces from {str(path)!r}: {exc}. Give a JSON list of pieces.") from exc
+    if not isinstance(raw, list):
+        raise InputError(f"{str(path)!r} must hold a JSON list of pieces.")
+    return [Piece.from_dict(d) for d in raw]
+
+
 def main(argv=None):
     import workbench as wb
 
@@ -109,15 +122,7 @@ def main(argv=None):
     if args.command == "info":
         print(case)
         return 0
-    pieces = None
-    if args.pieces:
-        from .inversion.pieces import Piece
-
-        try:
-            raw = json.loads(Path(args.pieces).read_text())
-        except (OSError, ValueError) as exc:
-            raise InputError(f"Cannot read pieces from {args.pieces!r}: {exc}") from exc
-        pieces = [Piece.from_dict(d) for d in raw]
+    pieces = load_pieces(args.pieces) if args.pieces else None
     times = range(case.times.size) if args.time is None else [
         int(args.time) if str(args.time).lstrip("-").isdigit() else args.time]
     import pandas as pd

@@ -86,15 +86,9 @@ def main(argv=None):
     parser.add_argument("-o", "--output", help="write the joined table as CSV")
     parser.add_argument("--overwrite", action="store_true")
     args = parser.parse_args(argv)
-    from .analysis import _parse_target
-    import json
+    from .analysis import _parse_target, load_pieces
 
-    pieces = None
-    if args.pieces:
-        try:
-            pieces = json.loads(Path(args.pieces).read_text())
-        except (OSError, ValueError) as exc:
-            raise InputError(f"Cannot read pieces from {args.pieces!r}: {exc}") from exc
+    pieces = load_pieces(args.pieces) if args.pieces else None
     path = args.case or default_case_path()
     client = cluster = None
     if args.scheduler or args.local_cluster:

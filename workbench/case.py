@@ -17,7 +17,6 @@ import xarray as xr
 
 from . import physics
 from .errors import GridError, InputError
-from .units import coriolis
 
 __all__ = ["Case", "MAP_FIELDS", "REFERENCE_KINDS"]
 
@@ -101,7 +100,9 @@ class Case:
     @property
     def f0(self):
         """Constant Coriolis parameter for QG (s-1): the domain centre's unless overridden."""
-        return self._f0 if self._f0 is not None else float(coriolis(self.central_latitude))
+        from .inversion.fields import central_f0
+
+        return self._f0 if self._f0 is not None else central_f0(self.data["latitude"].values)
 
     @property
     def invented(self):

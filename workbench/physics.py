@@ -282,12 +282,6 @@ def check_qg_domain(latitude) -> None:
             "Crop the case (e.g. ds.sel(latitude=slice(15, 80))).")
 
 
-def central_f0(latitude) -> float:
-    """Coriolis parameter at the domain's central latitude."""
-    lat = np.asarray(latitude, dtype=float)
-    return float(coriolis(0.5 * (lat.min() + lat.max())))
-
-
 def qg_pv(geopotential: xr.DataArray, temperature: xr.DataArray, sigma: xr.DataArray, f0: float,
           *, include_f: bool = True) -> xr.DataArray:
     """QG PV q = f + (1/f0) lap(Phi) + d/dp[(f0/sigma) dPhi/dp] (s-1), Holton & Hakim ch. 6.
