@@ -203,6 +203,7 @@ def test_lasso_makes_a_piece_and_updates_the_overlay_in_place(page, anomaly_cent
     assert "inverted" in _status(page)
     assert page.locator(".pvwb-pieces").get_by_text("interior").count() == 1
     assert page.problems == []
+    page.mouse.move(5, 5)  # no hover tooltip in the picture
     page.screenshot(path=str(ARTIFACTS / "app_lasso.png"), full_page=True)
 
 
@@ -226,6 +227,7 @@ def test_section_line_drawn_with_the_mouse_shows_the_section(page, anomaly_centr
                          "'pvwb-section-ends').data.text")
     assert ends == ["A", "B"]
     assert page.problems == []
+    page.mouse.move(5, 5)
     page.screenshot(path=str(ARTIFACTS / "app_after_lasso.png"), full_page=True)
 
 

@@ -117,7 +117,7 @@ class Workbench:
         pn.extension("tabulator", raw_css=[_CSS], notifications=False)
         from .io import open_case
 
-        case = case_or_path
+        case = case_or_path if case_or_path is not None else getattr(state, "case", None)
         if case is not None and not hasattr(case, "map_field"):
             case = open_case(case)
         if data_dirs is None and case is not None and case.source not in (None, "<in-memory>"):
@@ -296,7 +296,8 @@ class Workbench:
         self.map.set_mode(MODE_KEYS[self.mode.value])
         self.section = SectionView(st, width=self.width, defer=self._later)
         self._build_tables()
-        notes = [self.map.coast_note]
+        notes = ["grey arrows: wind on the map surface", "black line: the tropopause "
+                 "threshold on PV maps", self.map.coast_note]
         self.main[:] = [
             pn.Row(pn.Column(self.map.pane,
                              pn.pane.Markdown(" · ".join(notes), styles={"font-size": "11px",

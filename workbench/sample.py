@@ -145,7 +145,11 @@ class StormSettings:
     # relaxation of the surface theta' towards the (fixed) sea-surface state
     drag_days: float = 1.0
     surface_relaxation_days: float = 2.0
+    # the seed is run (linearly, dry) for breeding_hours and rescaled to this surface low
+    breeding_hours: float = 36.0
+    initial_low_depth_m: float = 50.0
     # numerics
+    min_pv_gradient_beta: float = 0.5
     filter_hours: float = 3.0
     sponge_points: int = 6
     sponge_hours: float = 3.0
@@ -239,6 +243,11 @@ class StormSettings:
                 raise InputError(
                     f"sample settings {name}_lon/{name}_lat: ({lon:g}, {lat:g}) lies outside the domain; "
                     "put the anomaly inside it.")
+        if not (0.0 <= s.breeding_hours <= 120.0):
+            raise InputError(f"sample setting breeding_hours: {s.breeding_hours:g} must be within 0..120.")
+        if s.breeding_hours > 0 and not (0.0 < s.initial_low_depth_m <= 300.0):
+            raise InputError(
+                f"sample setting initial_low_depth_m: {s.initial_low_depth_m:g} must be within (0, 300] m.")
         for name in ("upper_radius_zonal_km", "upper_radius_meridional_km", "surface_radius_km", "upper_depth_hpa",
                      "baroclinic_zone_width_deg", "filter_hours", "sponge_hours", "drag_days",
                      "surface_relaxation_days", "tropopause_break_width_deg", "tropopause_corner_k"):
@@ -429,7 +438,15 @@ class _LifeCycleModel:
         th_ext = ref_ext["temperature"] / self.exner[:, None]
         qbar = apply_qg_operator(grid_ext, phi_ext, np.repeat(th_ext[0][:, None], 3, axis=1),
                                  np.repeat(th_ext[-1][:, None], 3, axis=1))[:, 1:-1, 1]
-        qbar = qbar + coriolis(self.lat)[None, :]
+        fcor = coriolis(self.lat)
+        qbar = qbar + fcor[None, :]
+        # keep the background PV gradient >= min_pv_gradient_beta * beta on every level: the
+        # jet's stratospheric north flank would otherwise carry a weakly negative gradient and a
+        # slow, domain-filling barotropic instability (the zonal background stays a steady state)
+        floor = s.min_pv_gradient_beta * np.diff(fcor)
+        dq = np.maximum(np.diff(qbar, axis=1), floor[None, :])
+        self.pv_gradient_clipped = float(np.abs(np.diff(qbar, axis=1) - dq).max())
+        qbar = qbar[:, :1] + np.concatenate([np.zeros((qbar.shape[0], 1)), np.cumsum(dq, axis=1)], axis=1)
         theta_bar = ref["temperature"] / self.exner[:, None]
         # stacked background: interior PV on nz levels, then bottom and top theta
         self.xbar = np.concatenate([qbar, theta_bar[:1], theta_bar[-1:]], axis=0)[:, :, None]
@@ -554,20 +571,20 @@ class _LifeCycleModel:
         return t
 
     # -------------------------------------------------------------------- one diagnosis + step
-    def diagnose(self, x):
-        """Inversion, advection, omega and humidity at state x."""
+    def diagnose(self, x, moist=True):
+        """Inversion, advection, omega and humidity at state x (omega = 0 unless ``moist``)."""
         phi = self.invert(x)
         adv, psi = self.advection(x, phi)
-        om = self.omega(x, phi, adv, psi)
+        om = self.omega(x, phi, adv, psi) if moist else np.zeros(self.shape)
         t_anom = self.temperature_anomaly(x, phi)
         rh = self.humidity(om, t_anom)
         return dict(phi=phi, adv=adv, psi=psi, omega=om, t_anom=t_anom, rh=rh)
 
-    def step(self, x, diag):
+    def step(self, x, diag, moist=True):
         """One SSP-RK3 step; the heating is held at its value at the start of the step."""
         nz = self.p.size
         heat = np.zeros_like(x)
-        if self.s.latent_heating and self.s.heating_efficiency > 0:
+        if moist and self.s.latent_heating and self.s.heating_efficiency > 0:
             heat[:nz] = self.heating_tendency(diag["omega"], diag["rh"])
         self.max_cfl = max(self.max_cfl, self.cfl(diag["psi"]))
 
@@ -602,7 +619,28 @@ class _LifeCycleModel:
         # surface warm anomaly
         r = _distance_km(lat2, lon2, s.surface_lat, s.surface_lon)
         x[nz] = s.surface_theta_k * np.exp(-((r / s.surface_radius_km) ** 2)) * self.interior
+        if s.breeding_hours > 0:
+            x = self.breed(x)
         return x
+
+    def breed(self, seed):
+        """Let the seed organise into the growing structure of the jet, then rescale it.
+
+        The seed, scaled down a million times (so that the dynamics are linear), is run dry for
+        ``breeding_hours``; the result is scaled so that its deepest 1000 hPa height anomaly
+        inside the domain (away from the sponge) is ``-initial_low_depth_m``.
+        """
+        s = self.s
+        eps = 1.0e-6
+        y = seed * eps
+        d = self.diagnose(y, moist=False)
+        for _ in range(int(round(s.breeding_hours * 60.0 / s.step_minutes))):
+            y = self.step(y, d, moist=False)
+            d = self.diagnose(y, moist=False)
+        z1000 = d["phi"][0] / G
+        w = self.sponge == 0
+        scale = s.initial_low_depth_m / -z1000[w].min()
+        return y * scale
 
     # -------------------------------------------------------------------- output fields
     def fields(self, x, diag):

@@ -33,8 +33,8 @@ BOUNDARY_PIECES = {
 }
 
 #: Colour-blind-safe colours for new pieces, in turn.
-PIECE_COLOURS = ("#0072b2", "#d55e00", "#009e73", "#cc79a7", "#e69f00", "#56b4e9", "#f0e442",
-                 "#000000")
+PIECE_COLOURS = ("#009e73", "#cc79a7", "#e69f00", "#56b4e9", "#0072b2", "#f0e442", "#000000",
+                 "#d55e00")
 REFERENCE_KINDS = ("time_mean", "area_mean", "zonal_mean")
 _NAME_OK = re.compile(r"^[^\x00-\x1f]{1,60}$")
 

@@ -51,9 +51,11 @@ FIELD_LABELS = {
 MODES = {"Pan / zoom": "pan", "Lasso a piece": "lasso", "Draw a section": "section",
          "Pick target point": "target"}
 
-BALANCED_COLOUR = "#1a1a1a"
-POS_CONTOUR = "#b2182b"
-NEG_CONTOUR = "#2166ac"
+BALANCED_COLOUR = "#000000"
+WIND_COLOUR = "#8c8c8c"
+SECTION_COLOUR = "#1f1f1f"
+POS_CONTOUR = "#d55e00"
+NEG_CONTOUR = "#5e3c99"
 
 
 @lru_cache(maxsize=None)
@@ -310,10 +312,10 @@ class MapView:
         fig.multi_line("xs", "ys", source=src["coast"], line_color="#3b3b3b", line_width=1.0)
         fig.multi_line("xs", "ys", source=src["trop"], line_color="#000000", line_width=1.6,
                        line_alpha=0.8)
-        fig.segment("x0", "y0", "x1", "y1", source=src["wind"], line_color="#5a5a5a",
-                    line_width=1.0, line_alpha=0.75)
+        fig.segment("x0", "y0", "x1", "y1", source=src["wind"], line_color=WIND_COLOUR,
+                    line_width=1.0, line_alpha=0.8, name="pvwb-wind-shafts")
         fig.scatter("x", "y", angle="angle", source=src["wind_head"], marker="triangle", size=5,
-                    fill_color="#5a5a5a", line_color=None, fill_alpha=0.75)
+                    fill_color=WIND_COLOUR, line_color=None, fill_alpha=0.8)
         fig.patches("xs", "ys", source=src["ann_poly"], fill_alpha=0.12, fill_color="colour",
                     line_color="colour", line_width=2, line_dash="dotted")
         fig.patches("xs", "ys", source=src["pieces"], fill_color="colour", fill_alpha="alpha",
@@ -322,20 +324,23 @@ class MapView:
                  text_font_size="12px", text_font_style="bold", text_align="center",
                  text_baseline="middle", background_fill_color="white",
                  background_fill_alpha=0.7)
-        fig.multi_line("xs", "ys", source=src["zpos"], line_color=POS_CONTOUR, line_width=2.0,
-                       name="pvwb-height-pos-lines")
-        fig.multi_line("xs", "ys", source=src["zneg"], line_color=NEG_CONTOUR, line_width=2.0,
-                       line_dash="dashed", name="pvwb-height-neg-lines")
+        for key, colour, dash in (("zpos", POS_CONTOUR, "solid"), ("zneg", NEG_CONTOUR, "dashed")):
+            fig.multi_line("xs", "ys", source=src[key], line_color="white", line_width=4.0,
+                           line_alpha=0.7)  # a halo keeps the lines legible on any shading
+            fig.multi_line("xs", "ys", source=src[key], line_color=colour, line_width=2.0,
+                           line_dash=dash, name=f"pvwb-{key}-lines")
         fig.segment("x0", "y0", "x1", "y1", source=src["bal"], line_color=BALANCED_COLOUR,
-                    line_width=1.8, name="pvwb-balanced-shafts")
-        fig.scatter("x", "y", angle="angle", source=src["bal_head"], marker="triangle", size=7,
-                    fill_color=BALANCED_COLOUR, line_color=None)
-        fig.multi_line("xs", "ys", source=src["sections"], line_color="#6a3d9a",
+                    line_width=2.2, name="pvwb-balanced-shafts")
+        fig.scatter("x", "y", angle="angle", source=src["bal_head"], marker="triangle", size=8,
+                    fill_color=BALANCED_COLOUR, line_color="white", line_width=0.5)
+        fig.multi_line("xs", "ys", source=src["sections"], line_color="white",
+                       line_width=5, line_alpha="alpha")
+        fig.multi_line("xs", "ys", source=src["sections"], line_color=SECTION_COLOUR,
                        line_width="width", line_alpha="alpha")
-        fig.text("x", "y", text="text", source=src["section_ends"], text_color="#6a3d9a",
+        fig.text("x", "y", text="text", source=src["section_ends"], text_color=SECTION_COLOUR,
                  text_font_size="14px", text_font_style="bold", text_align="center",
                  text_baseline="bottom", y_offset=-4)
-        stroke = fig.multi_line("xs", "ys", source=src["stroke"], line_color="#6a3d9a",
+        stroke = fig.multi_line("xs", "ys", source=src["stroke"], line_color=SECTION_COLOUR,
                                 line_width=2, line_dash="dotted")
         self.tools["section"].renderers = [stroke]
         fig.scatter("x", "y", source=src["target"], marker="circle_x", size=16,
@@ -512,9 +517,9 @@ class MapView:
         xs, ys = _contour_lines(lon, lat, z, -levels)
         self.src["zneg"].data = dict(xs=xs, ys=ys)
         names = ", ".join(ov.attrs["pieces"])
-        self.key.text = (f"balanced flow at {ov.attrs['level_hpa']:g} hPa of: {names} | "
-                         f"arrow ≈ {ref:g} m/s | height anomaly every {step:g} m "
-                         "(red +, blue dashed −)")
+        self.key.text = (f"balanced flow at {ov.attrs['level_hpa']:g} hPa of {names}: "
+                         f"arrow ≈ {ref:g} m/s per spacing; Z′ every {step:g} m "
+                         "(orange +, purple dashed −)")
 
     def refresh_pieces(self):
         xs, ys, col, names, alpha = [], [], [], [], []
