@@ -38,11 +38,40 @@ __all__ = ["make_briefing", "briefing_figures", "piece_summaries", "main"]
 PAGE = (11.69, 8.27)  # A4 landscape, inches
 
 
+def standard_state(case, time=None):
+    """The state a briefing uses when no session is given: the time of the deepest low (the
+    minimum of mean sea-level pressure, or of the lowest level's geopotential) unless ``time``
+    is given, the standard pieces (:func:`workbench.analysis.standard_pieces`), the attribution
+    target at the storm centre on the overlay level, and a west-east section through it."""
+    import numpy as np
+
+    from workbench.analysis import standard_pieces, storm_centre
+    from workbench.state import State
+
+    if time is None:
+        field = case.data["mslp"] if "mslp" in case.data else case.data["geopotential"].isel(pressure=0)
+        dims = [d for d in field.dims if d not in ("time",)]
+        ti = int(np.nanargmin(field.min(dims).values))
+    else:
+        ti = case.time_index(time)
+    st = State(case, time_index=ti)
+    for piece in standard_pieces(moist=case.relative_humidity(ti) is not None):
+        st.add_piece(piece)
+    lon, lat = storm_centre(case, ti)
+    st.set_target(lon, lat)
+    d = case.domain
+    half = min(20.0, 0.45 * (d["lon_max"] - d["lon_min"]))
+    west = max(d["lon_min"] + 1.0, lon - half)
+    east = min(d["lon_max"] - 1.0, lon + half)
+    st.add_section((west, lat), (east, lat), name="west-east through the storm centre")
+    return st
+
+
 def _state_of(case, state_or_session):
     from workbench.state import State
 
     if state_or_session is None:
-        return State(case)
+        return standard_state(case)
     if isinstance(state_or_session, (str, Path)):
         from workbench.session import load_session
 
@@ -276,7 +305,7 @@ def _table_page(case, state):
                      f(r["relative_vorticity"] * 1e5, "+.2f"), f(r["height_share_pct"], ".1f"),
                      f(r["vorticity_share_pct"], ".1f")])
     n = len(rows) + 1
-    h = min(0.05 * n, 0.45)
+    h = min(0.04 * n, 0.40)
     ax = fig.add_axes([0.05, y - 0.02 - h, 0.9, h])
     ax.set_axis_off()
     tab = ax.table(cellText=rows, colLabels=cols, loc="upper center", cellLoc="center",
@@ -294,7 +323,7 @@ def _table_page(case, state):
     sentences = piece_summaries(table, target)
     y = _text_page(fig, y, "Summary", size=12, weight="bold")
     y = _text_page(fig, y, "\n".join("- " + s for s in sentences), size=10.5)
-    _text_page(fig, max(y - 0.01, 0.16),
+    _text_page(fig, y - 0.01,
                "Shares are of the balanced (QG) height anomaly of the full inversion at the "
                "target; pieces add up exactly because QG inversion is linear. Wind speeds do not "
                "add (each row is the speed of its own wind).", size=8.5, color="#444444")
@@ -391,15 +420,18 @@ def main(argv=None) -> int:
         description="Make a multi-page briefing PDF (maps, sections, attribution) from a case "
                     "and a saved session. " + CAUTION,
     )
-    ap.add_argument("case", help="case file (netCDF, GRIB2 or Zarr)")
-    ap.add_argument("--session", "-s", help="session file (JSON) saved from the workbench")
+    ap.add_argument("case", nargs="?", help="case file (netCDF, GRIB2 or Zarr; default: the invented "
+                    "sample storm)")
+    ap.add_argument("--session", "-s", help="session file (JSON) saved from the workbench (default: the "
+                    "standard pieces at the time of the deepest low, target at the storm centre)")
     ap.add_argument("-o", "--output", default="briefing.pdf", help="output PDF (default briefing.pdf)")
     ap.add_argument("--overwrite", action="store_true", help="replace the output if it exists")
     args = ap.parse_args(argv)
     try:
+        from workbench.analysis import default_case_path
         from workbench.io import open_case
 
-        case = open_case(args.case)
+        case = open_case(args.case or default_case_path())
         out = make_briefing(case, args.session, args.output, overwrite=args.overwrite)
     except WorkbenchError as exc:
         print(f"pvwb brief: error: {exc}", file=sys.stderr)
