@@ -466,7 +466,7 @@ class Workbench:
             show_index=False, editors={"name": "input", "show": {"type": "tickCross"},
                                        "kind": None, "layer": None, "sign": None},
             formatters={"show": {"type": "tickCross"}}, buttons={"delete": "✖"},
-            width=420, height=190, layout="fit_data_table", css_classes=["pvwb-pieces"],
+            width=420, height=160, layout="fit_data_table", css_classes=["pvwb-pieces"],
             sortable=False, selectable=False)
         self.pieces_table.on_edit(lambda ev: self._guard(self._piece_edited, ev))
         self.pieces_table.on_click(lambda ev: self._guard(self._piece_clicked, ev))
@@ -478,7 +478,7 @@ class Workbench:
         self.attr_level.param.watch(lambda ev: self._guard(self._retarget_level, ev.new), "value")
         self.attr_title = pn.pane.Markdown("", margin=(0, 5))
         self.attr_table = pn.widgets.Tabulator(pd.DataFrame(), show_index=False, disabled=True,
-                                               width=420, height=230, layout="fit_data_table",
+                                               width=420, height=200, layout="fit_data_table",
                                                css_classes=["pvwb-attribution"], sortable=False,
                                                selectable=False)
         self.attr_box = pn.Column(pn.Row(pn.pane.Markdown("**Attribution at the target**",

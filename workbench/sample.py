@@ -113,7 +113,7 @@ class StormSettings:
     base_time: str = "2051-02-09T00:00"
     hours: float = 84.0
     output_every_hours: float = 6.0
-    step_minutes: float = 10.0
+    step_minutes: float = 15.0
     # reference state
     jet_latitude: float = 45.0
     surface_temperature_contrast: float = 34.0
@@ -126,30 +126,28 @@ class StormSettings:
     mslp_mean_hpa: float = 1012.0
     mslp_contrast_hpa: float = 8.0
     # initial perturbation: upper PV anomaly (trough) and a surface warm anomaly
-    upper_lon: float = -66.0
-    upper_lat: float = 50.0
-    upper_pressure_hpa: float = 320.0
-    upper_depth_hpa: float = 110.0
-    upper_radius_zonal_km: float = 450.0
+    upper_lon: float = -68.0
+    upper_lat: float = 45.0
+    upper_pressure_hpa: float = 450.0
+    upper_depth_hpa: float = 180.0
+    upper_radius_zonal_km: float = 500.0
     upper_radius_meridional_km: float = 700.0
-    upper_height_anomaly_m: float = -140.0
-    surface_lon: float = -55.0
-    surface_lat: float = 42.0
-    surface_theta_k: float = 3.0
+    upper_ring_fraction: float = 1.0
+    upper_height_anomaly_m: float = -170.0
+    surface_lon: float = -57.0
+    surface_lat: float = 45.0
+    surface_theta_k: float = 4.0
     surface_radius_km: float = 550.0
+    surface_ring_fraction: float = 1.0
     # the demonstration latent heating
     latent_heating: bool = True
-    heating_efficiency: float = 0.6
-    rh_heating_threshold: float = 80.0
+    heating_efficiency: float = 0.85
+    rh_heating_threshold: float = 70.0
     # surface exchange: boundary-layer drag on the relative vorticity below 850 hPa and
     # relaxation of the surface theta' towards the (fixed) sea-surface state
-    drag_days: float = 1.0
-    surface_relaxation_days: float = 2.0
-    # the seed is run (linearly, dry) for breeding_hours and rescaled to this surface low
-    breeding_hours: float = 36.0
-    initial_low_depth_m: float = 50.0
+    drag_days: float = 5.0
+    surface_relaxation_days: float = 3.0
     # numerics
-    min_pv_gradient_beta: float = 0.5
     filter_hours: float = 3.0
     sponge_points: int = 6
     sponge_hours: float = 3.0
@@ -243,11 +241,6 @@ class StormSettings:
                 raise InputError(
                     f"sample settings {name}_lon/{name}_lat: ({lon:g}, {lat:g}) lies outside the domain; "
                     "put the anomaly inside it.")
-        if not (0.0 <= s.breeding_hours <= 120.0):
-            raise InputError(f"sample setting breeding_hours: {s.breeding_hours:g} must be within 0..120.")
-        if s.breeding_hours > 0 and not (0.0 < s.initial_low_depth_m <= 300.0):
-            raise InputError(
-                f"sample setting initial_low_depth_m: {s.initial_low_depth_m:g} must be within (0, 300] m.")
         for name in ("upper_radius_zonal_km", "upper_radius_meridional_km", "surface_radius_km", "upper_depth_hpa",
                      "baroclinic_zone_width_deg", "filter_hours", "sponge_hours", "drag_days",
                      "surface_relaxation_days", "tropopause_break_width_deg", "tropopause_corner_k"):
@@ -438,15 +431,7 @@ class _LifeCycleModel:
         th_ext = ref_ext["temperature"] / self.exner[:, None]
         qbar = apply_qg_operator(grid_ext, phi_ext, np.repeat(th_ext[0][:, None], 3, axis=1),
                                  np.repeat(th_ext[-1][:, None], 3, axis=1))[:, 1:-1, 1]
-        fcor = coriolis(self.lat)
-        qbar = qbar + fcor[None, :]
-        # keep the background PV gradient >= min_pv_gradient_beta * beta on every level: the
-        # jet's stratospheric north flank would otherwise carry a weakly negative gradient and a
-        # slow, domain-filling barotropic instability (the zonal background stays a steady state)
-        floor = s.min_pv_gradient_beta * np.diff(fcor)
-        dq = np.maximum(np.diff(qbar, axis=1), floor[None, :])
-        self.pv_gradient_clipped = float(np.abs(np.diff(qbar, axis=1) - dq).max())
-        qbar = qbar[:, :1] + np.concatenate([np.zeros((qbar.shape[0], 1)), np.cumsum(dq, axis=1)], axis=1)
+        qbar = qbar + coriolis(self.lat)[None, :]
         theta_bar = ref["temperature"] / self.exner[:, None]
         # stacked background: interior PV on nz levels, then bottom and top theta
         self.xbar = np.concatenate([qbar, theta_bar[:1], theta_bar[-1:]], axis=0)[:, :, None]
@@ -608,7 +593,10 @@ class _LifeCycleModel:
         # upper PV anomaly: an ellipse elongated north-south, Gaussian in pressure
         dy = EARTH_RADIUS / 1000.0 * np.deg2rad(lat2 - s.upper_lat)
         dx = EARTH_RADIUS / 1000.0 * np.deg2rad(lon2 - s.upper_lon) * np.cos(np.deg2rad(0.5 * (lat2 + s.upper_lat)))
-        horiz = np.exp(-((dx / s.upper_radius_zonal_km) ** 2 + (dy / s.upper_radius_meridional_km) ** 2))
+        rr = (dx / s.upper_radius_zonal_km) ** 2 + (dy / s.upper_radius_meridional_km) ** 2
+        # a short-wave trough: the core minus a ring of equal area integral (zero net PV), so that
+        # its far field decays fast instead of filling the domain
+        horiz = np.exp(-rr) - s.upper_ring_fraction * 0.25 * np.exp(-rr / 4.0)
         vert = np.exp(-(((self.p / 100.0) - s.upper_pressure_hpa) / s.upper_depth_hpa) ** 2)
         shape_q = vert[:, None, None] * horiz[None] * self.interior
         # scale: the upper anomaly alone gives the requested height anomaly minimum at its level
@@ -618,29 +606,9 @@ class _LifeCycleModel:
         x[:nz] = scale * shape_q
         # surface warm anomaly
         r = _distance_km(lat2, lon2, s.surface_lat, s.surface_lon)
-        x[nz] = s.surface_theta_k * np.exp(-((r / s.surface_radius_km) ** 2)) * self.interior
-        if s.breeding_hours > 0:
-            x = self.breed(x)
+        rs = (r / s.surface_radius_km) ** 2
+        x[nz] = s.surface_theta_k * (np.exp(-rs) - s.surface_ring_fraction * 0.25 * np.exp(-rs / 4.0)) * self.interior
         return x
-
-    def breed(self, seed):
-        """Let the seed organise into the growing structure of the jet, then rescale it.
-
-        The seed, scaled down a million times (so that the dynamics are linear), is run dry for
-        ``breeding_hours``; the result is scaled so that its deepest 1000 hPa height anomaly
-        inside the domain (away from the sponge) is ``-initial_low_depth_m``.
-        """
-        s = self.s
-        eps = 1.0e-6
-        y = seed * eps
-        d = self.diagnose(y, moist=False)
-        for _ in range(int(round(s.breeding_hours * 60.0 / s.step_minutes))):
-            y = self.step(y, d, moist=False)
-            d = self.diagnose(y, moist=False)
-        z1000 = d["phi"][0] / G
-        w = self.sponge == 0
-        scale = s.initial_low_depth_m / -z1000[w].min()
-        return y * scale
 
     # -------------------------------------------------------------------- output fields
     def fields(self, x, diag):
