@@ -7,11 +7,23 @@ list and the attribution table beside it, the section below and a status line at
 Display it in a notebook cell (``wb`` or ``pn.panel(wb)``) or serve it with :func:`serve` /
 ``pvwb serve CASE``.
 
+Beside the map, three tabs: the attribution table, *Annotate* (text labels placed with the
+"Place a label" mouse mode, highlighted regions lassoed when "A lasso makes" is set to
+"highlighted region", delete the last / all) and *Save & export*: save and load sessions
+(:mod:`workbench.session`), the map and the active section as PNG/SVG/PDF
+(:func:`workbench.views.static.map_figure` / ``section_figure`` + ``save_figure``), the
+briefing PDF (:func:`workbench.brief.make_briefing`) and the pieces' balanced fields as netCDF
+(:func:`workbench.export.export_balanced`); each written file is also offered for download.
+
 Security: :func:`serve` binds 127.0.0.1 unless told otherwise, and any other address needs a
 token (asked for on a login page). The page's "open file" control only opens files inside the
 configured data folders (:func:`resolve_data_path`); a path outside them, or one climbing out
 with ``..`` or a symbolic link, raises :class:`~workbench.errors.AccessError`. Files are read
-by the netCDF/GRIB/Zarr readers of :mod:`workbench.io` only.
+by the netCDF/GRIB/Zarr readers of :mod:`workbench.io` only. Files are written only inside
+the output folder (``output_dir``, default the first data folder; :func:`resolve_output_path`
+refuses anything else with AccessError), atomically, and an existing file is replaced only when
+the page's "Overwrite an existing file" box is ticked. Sessions are loaded from the data folders
+and the output folder, and the case a session names must lie in the data folders too.
 """
 from __future__ import annotations
 
@@ -27,11 +39,11 @@ import numpy as np
 import panel as pn
 import param
 
-from .errors import AccessError, InputError, WorkbenchError
+from .errors import AccessError, ExportError, InputError, SessionError, WorkbenchError
 from .state import BOUNDARY_PIECES, State, surface_label
 
-__all__ = ["Workbench", "serve", "main", "resolve_data_path", "list_data_files",
-           "LOOPBACK"]
+__all__ = ["Workbench", "serve", "main", "resolve_data_path", "resolve_output_path",
+           "list_data_files", "list_session_files", "LOOPBACK"]
 
 LOOPBACK = ("127.0.0.1", "localhost", "::1")
 _STATUS_COLOURS = {"info": ("#e8f1f8", "#12344d"), "success": ("#e6f4ea", "#0f3d1e"),
@@ -100,6 +112,73 @@ def list_data_files(data_dirs, limit=500):
     return out
 
 
+def resolve_output_path(name, folders, suffixes=None) -> Path:
+    """The real path a file called ``name`` would have inside the output ``folders``.
+
+    A relative ``name`` is taken inside the first folder (subfolders that exist are fine);
+    an absolute one must lie inside one of the folders. The check is made on the resolved
+    path, so ``..`` and symbolic links leading out raise :class:`AccessError`. ``suffixes``
+    (e.g. ``(".json",)``) limits the file types; a folder name is refused (InputError).
+    The file need not exist (whether it may be replaced is the caller's business).
+    """
+    folders = _folders(folders)
+    if not folders:
+        raise AccessError("no output folder is configured, so nothing can be saved from the "
+                          "page; start the server with --output-dir FOLDER (or --data-dir)")
+    text = os.fspath(name).strip() if name is not None else ""
+    if not text:
+        raise InputError("give a file name to save to")
+    if "\x00" in text:
+        raise AccessError("file names cannot contain NUL characters")
+    cand = Path(text).expanduser()
+    if not cand.is_absolute():
+        cand = folders[0] / cand
+    real = cand.resolve()
+    if not any(f in real.parents for f in folders):
+        raise AccessError(f"{text!r} is outside the output folder "
+                          f"({', '.join(str(f) for f in folders)}); give a plain file name "
+                          "(no '..' and no links leading out)")
+    if real.is_dir():
+        raise InputError(f"{text!r} is a folder; give a file name")
+    if suffixes and real.suffix.lower() not in suffixes:
+        raise InputError(f"{real.name} must end in {' or '.join(suffixes)}")
+    return real
+
+
+def list_session_files(folders, limit=200):
+    """Session files (``*.json``) in ``folders``, newest first, as ``{label: absolute path}``."""
+    found = []
+    for f in _folders(folders):
+        for p in f.rglob("*.json"):
+            rel = p.relative_to(f)
+            if any(part.startswith(".") for part in rel.parts) or not p.is_file():
+                continue
+            found.append((p.stat().st_mtime, f"{f.name}/{rel}", str(p.resolve())))
+    found.sort(key=lambda t: -t[0])
+    out = {}
+    for _, label, path in found:
+        if path not in out.values():
+            out[label] = path
+        if len(out) >= limit:
+            break
+    return out
+
+
+def _slug(text):
+    import re
+
+    keep = re.sub(r"[^A-Za-z0-9.\-]+", "_", str(text).strip())
+    return keep.strip("._")[:60] or "case"
+
+
+def _case_stem(case):
+    """A short file-name stem for a case: its file's name, else its name."""
+    src = str(getattr(case, "source", "") or "")
+    if src and src != "<in-memory>":
+        return _slug(Path(src).stem)
+    return _slug(getattr(case, "name", "case"))
+
+
 # --------------------------------------------------------------------------- the workbench
 
 
@@ -111,9 +190,12 @@ class Workbench:
     case_or_path : a :class:`workbench.Case`, a path to a case file, or None.
     data_dirs : folders the page may open files from (default: the case file's folder).
     state : optionally an existing :class:`State` to show (e.g. a reloaded session).
+    output_dir : the folder sessions and exports are written to (default: the first data
+        folder; it must exist).
     """
 
-    def __init__(self, case_or_path=None, data_dirs=None, state=None, width=820):
+    def __init__(self, case_or_path=None, data_dirs=None, state=None, width=820,
+                 output_dir=None):
         pn.extension("tabulator", raw_css=[_CSS], notifications=False)
         from .io import open_case
 
@@ -123,6 +205,14 @@ class Workbench:
         if data_dirs is None and case is not None and case.source not in (None, "<in-memory>"):
             data_dirs = [str(Path(case.source).resolve().parent)]
         self.data_dirs = [str(p) for p in _folders(data_dirs)]
+        if output_dir is not None:
+            out = _folders([output_dir])
+            if not out:
+                raise InputError(f"output folder {output_dir!r} does not exist; create it or "
+                                 "give an existing folder")
+            self.output_dir = str(out[0])
+        else:
+            self.output_dir = self.data_dirs[0] if self.data_dirs else None
         self.width = width
         if state is not None:
             self.state = state
@@ -177,10 +267,10 @@ class Workbench:
             t0 = time.perf_counter()
             try:
                 fn()
+                msg = done() if callable(done) else (done or "Done")
             except Exception as exc:  # noqa: BLE001
                 st.report(exc)
             else:
-                msg = done() if callable(done) else (done or "Done")
                 st.set_status(f"{msg} ({time.perf_counter() - t0:.1f} s)", "success")
             finally:
                 st.busy = False
@@ -293,9 +383,15 @@ class Workbench:
         self.map.on_lasso = lambda poly: self._guard(self.lasso_piece, poly)
         self.map.on_section = lambda a, b: self._guard(self.draw_section, a, b)
         self.map.on_tap = lambda x, y: self._guard(self.pick_target, x, y)
+        self.map.on_label = lambda x, y: self._guard(self.place_label, x, y)
         self.map.set_mode(MODE_KEYS[self.mode.value])
         self.section = SectionView(st, width=self.width, defer=self._later)
         self._build_tables()
+        self._build_annotate_box()
+        self._build_export_box()
+        self.tabs = pn.Tabs(("Attribution", self.attr_box), ("Annotate", self.annotate_box),
+                            ("Save & export", self.export_box), width=430,
+                            css_classes=["pvwb-tabs"])
         notes = ["grey arrows: wind on the map surface", "black line: the tropopause "
                  "threshold on PV maps", self.map.coast_note]
         self.main[:] = [
@@ -303,7 +399,7 @@ class Workbench:
                              pn.pane.Markdown(" · ".join(notes), styles={"font-size": "11px",
                                                                           "color": "#666"},
                                               margin=(0, 10))),
-                   pn.Column(self.pieces_box, self.attr_box, width=430)),
+                   pn.Column(self.pieces_box, self.tabs, width=430)),
             self.section.pane,
         ]
         self._fill_sidebar()
@@ -364,7 +460,8 @@ class Workbench:
         # the next lassoed piece
         self.p_kind = pn.widgets.Select(label="A lasso makes", width=250, options={
             "interior PV piece": "interior", "surface θ′ piece (lower boundary)": "bottom",
-            "lid θ′ piece (upper boundary)": "top"})
+            "lid θ′ piece (upper boundary)": "top",
+            "highlighted region (annotation)": "region"})
         self.p_coord = pn.widgets.RadioButtonGroup(label="Layer in", options=["pressure", "theta"],
                                                    value="pressure", width=250)
         pmax = float(max(case.levels_hpa))
@@ -575,6 +672,8 @@ class Workbench:
                                                                  d["lat_max"]))
                    for x, y in polygon]
         kind = self.p_kind.value
+        if kind == "region":
+            return self.lasso_region(polygon)
         base = {"interior": "piece", "bottom": "surface θ′ (lasso)", "top": "lid θ′ (lasso)"}[kind]
         name = self.p_name.value.strip() or st.new_piece_name(base)
         kw = dict(name=name, kind=kind, polygon=polygon, sign=int(self.p_sign.value))
@@ -613,6 +712,380 @@ class Workbench:
                               else None)
         self.state.set_status(f"Target point {lon:.2f}°E {lat:.2f}°N.", "info")
 
+    # ---------------------------------------------------------------- annotations
+    def _build_annotate_box(self):
+        from .annotations import PALETTE
+
+        st = self.state
+        self.label_text = pn.widgets.TextInput(
+            name="Label text (also the region's label)", width=410,
+            placeholder="e.g. L, jet streak, dry intrusion", css_classes=["pvwb-label-text"])
+        self.ann_colour = pn.widgets.Select(name="Colour", width=130, value="black",
+                                            options=[c for c in PALETTE if c != "white"])
+        self.label_click_button = pn.widgets.Button(name="Label the last clicked point",
+                                                    width=260, margin=(23, 5, 5, 10),
+                                                    css_classes=["pvwb-label-click"])
+        self.undo_ann_button = pn.widgets.Button(name="Delete the last one", width=200,
+                                                 css_classes=["pvwb-ann-undo"])
+        self.clear_ann_button = pn.widgets.Button(name="Delete all annotations", width=200,
+                                                  button_type="danger", button_style="outline",
+                                                  css_classes=["pvwb-ann-clear"])
+        self.label_click_button.on_click(lambda e: self._guard(self.label_last_click))
+        self.undo_ann_button.on_click(lambda e: self._guard(self.delete_last_annotation))
+        self.clear_ann_button.on_click(lambda e: self._guard(self.delete_all_annotations))
+        self.ann_list = pn.pane.Markdown("", margin=(0, 8), css_classes=["pvwb-ann-list"],
+                                         styles={"font-size": "13px"})
+        help_md = pn.pane.Markdown(
+            "**Label:** choose *Place a label* under *Mouse on the map*, type the text here and "
+            "click the map.  \n**Highlighted region:** set *A lasso makes* to *highlighted "
+            "region* and lasso it. Annotations are saved in the session and drawn on the "
+            "exported figures and the briefing.", margin=(0, 8), styles={"font-size": "13px"})
+        self.annotate_box = pn.Column(
+            help_md, self.label_text, pn.Row(self.ann_colour, self.label_click_button),
+            pn.Row(self.undo_ann_button, self.clear_ann_button), self.ann_list,
+            name="Annotate")
+        self._watch(st, lambda *ev: self._refresh_ann_list(), ["annotations"])
+        self._refresh_ann_list()
+
+    def _label_text(self):
+        return (self.label_text.value_input or self.label_text.value or "").strip()
+
+    def _refresh_ann_list(self):
+        from .annotations import PALETTE, Arrow, Label, Region
+
+        names = {v: k for k, v in PALETTE.items()}
+        rows = []
+        for k, a in enumerate(self.state.annotations, 1):
+            where = "" if a.space == "map" else f" (on {a.space.replace(':', ' ')})"
+            if isinstance(a, Label):
+                rows.append(f"{k}. label “{a.text}” at {a.lon:.1f}°E {a.lat:.1f}°N{where}")
+            elif isinstance(a, Region):
+                lab = f" “{a.label}”" if a.label else ""
+                rows.append(f"{k}. region{lab}, {len(a.polygon)} points, "
+                            f"{names.get(a.colour, a.colour)}{where}")
+            elif isinstance(a, Arrow):
+                rows.append(f"{k}. arrow{' “' + a.text + '”' if a.text else ''}{where}")
+            else:
+                rows.append(f"{k}. {a.kind}{where}")
+        self.ann_list.object = ("**Annotations**  \n" + "  \n".join(rows)) if rows else \
+            "*No annotations yet.*"
+
+    def place_label(self, lon, lat):
+        """Put a text label (the Annotate tab's text and colour) at (lon, lat) on the map."""
+        from .annotations import Label
+
+        text = self._label_text()
+        if not text:
+            raise InputError("type the label's text in the Annotate tab first, then click "
+                             "the map")
+        d = self.state.case.domain
+        if not (d["lon_min"] <= lon <= d["lon_max"] and d["lat_min"] <= lat <= d["lat_max"]):
+            raise InputError(f"({lon:.2f}, {lat:.2f}) is outside the map; click inside it")
+        a = self.state.add_annotation(Label(text=text, lon=float(lon), lat=float(lat),
+                                            colour=self.ann_colour.value, size=12.0))
+        self.state.set_status(f"Label “{text}” placed at {lon:.2f}°E {lat:.2f}°N.", "success")
+        return a
+
+    def label_last_click(self):
+        """Label the point last clicked on the map (in any mode that clicks)."""
+        click = getattr(self.map, "last_click", None)
+        if click is None:
+            raise InputError("click a point on the map first (mode *Pick target point* or "
+                             "*Place a label*), then press this button")
+        return self.place_label(*click)
+
+    def lasso_region(self, polygon):
+        """A highlighted region annotation of the lassoed outline (label: the Annotate text)."""
+        from .annotations import Region
+
+        colour = self.ann_colour.value
+        a = self.state.add_annotation(Region(polygon=[list(p) for p in polygon],
+                                             label=self._label_text() or None, colour=colour,
+                                             fill=colour, alpha=0.15, linestyle="dashed"))
+        self.state.set_status(f"Highlighted region{' “' + a.label + '”' if a.label else ''} "
+                              "added (it is an annotation, not a piece).", "success")
+        return a
+
+    def delete_last_annotation(self):
+        a = self.state.remove_annotation(-1)
+        what = getattr(a, "text", None) or getattr(a, "label", None) or ""
+        self.state.set_status(f"Deleted the {a.kind}{' “' + what + '”' if what else ''}.",
+                              "info")
+
+    def delete_all_annotations(self):
+        n = self.state.clear_annotations()
+        if not n:
+            raise InputError("there are no annotations to delete")
+        self.state.set_status(f"Deleted {n} annotation(s).", "info")
+
+    # ---------------------------------------------------------------- save & export
+    def _write_folders(self):
+        return [self.output_dir] if self.output_dir else []
+
+    def _read_folders(self):
+        out = list(self.data_dirs)
+        if self.output_dir and self.output_dir not in out:
+            out.append(self.output_dir)
+        return out
+
+    def _build_export_box(self):
+        from .session import PROJECTIONS
+
+        st = self.state
+        fs = st.figure_settings
+        where = self.output_dir or "(none: start with --output-dir)"
+        self.overwrite = pn.widgets.Checkbox(name="Overwrite an existing file", value=False,
+                                             css_classes=["pvwb-overwrite"])
+        self.session_name = pn.widgets.TextInput(
+            name="Session file", width=290, css_classes=["pvwb-session-name"],
+            placeholder=f"blank: {_case_stem(st.case)}_session.json")
+        self.save_session_button = pn.widgets.Button(name="Save session", button_type="primary",
+                                                     width=110, margin=(23, 5, 5, 5),
+                                                     css_classes=["pvwb-save-session"])
+        self.session_select = pn.widgets.Select(name="Saved sessions (data and output folders)",
+                                                options={}, width=290,
+                                                css_classes=["pvwb-session-list"])
+        self.load_session_button = pn.widgets.Button(name="Load session", width=110,
+                                                     margin=(23, 5, 5, 5),
+                                                     css_classes=["pvwb-load-session"])
+        self.export_name = pn.widgets.TextInput(
+            name="Name for exported files", width=410, css_classes=["pvwb-export-name"],
+            placeholder=f"blank: {_case_stem(st.case)} (then _map_<time>.png and so on)")
+        self.export_format = pn.widgets.RadioButtonGroup(name="Figure format",
+                                                         options=["PNG", "SVG", "PDF"],
+                                                         value="PNG", width=200,
+                                                         margin=(23, 5, 5, 10))
+        self.export_dpi = pn.widgets.IntInput(name="dpi", value=int(fs["dpi"]), start=30,
+                                              end=1200, step=10, width=80)
+        self.projection = pn.widgets.Select(
+            name="Map projection", width=180, value=fs["projection"],
+            options={p.replace("_", " "): p for p in PROJECTIONS})
+        self.map_fig_button = pn.widgets.Button(name="Map figure", width=200,
+                                                css_classes=["pvwb-export-map"])
+        self.section_fig_button = pn.widgets.Button(name="Section figure", width=200,
+                                                    css_classes=["pvwb-export-section"])
+        self.brief_button = pn.widgets.Button(name="Briefing PDF", width=200,
+                                              css_classes=["pvwb-export-brief"])
+        self.netcdf_button = pn.widgets.Button(name="Balanced fields (netCDF)", width=200,
+                                               css_classes=["pvwb-export-netcdf"])
+        self.download = pn.widgets.FileDownload(file=None, filename="", visible=False,
+                                                button_type="success", width=410,
+                                                css_classes=["pvwb-download"])
+        self.save_session_button.on_click(lambda e: self._guard(self.save_session_file))
+        self.load_session_button.on_click(lambda e: self._guard(self.load_session_file))
+        self.map_fig_button.on_click(lambda e: self._guard(self.export_map))
+        self.section_fig_button.on_click(lambda e: self._guard(self.export_section))
+        self.brief_button.on_click(lambda e: self._guard(self.export_briefing))
+        self.netcdf_button.on_click(lambda e: self._guard(self.export_netcdf))
+
+        def set_fs(key, value):
+            st.figure_settings = {**st.figure_settings, key: value}
+
+        self.export_dpi.param.watch(lambda ev: self._guard(set_fs, "dpi", int(ev.new)), "value")
+        self.projection.param.watch(lambda ev: self._guard(set_fs, "projection", ev.new),
+                                    "value")
+
+        def fs_to_widgets(*_):
+            self._state_to_widget(self.export_dpi, int(st.figure_settings["dpi"]))
+            self._state_to_widget(self.projection, st.figure_settings["projection"])
+
+        self._watch(st, fs_to_widgets, ["figure_settings"])
+        small = {"font-size": "13px"}
+        self.export_box = pn.Column(
+            pn.pane.Markdown(f"Files are written to **{where}**.", margin=(0, 8), styles=small,
+                             css_classes=["pvwb-output-folder"]),
+            self.overwrite,
+            pn.pane.Markdown("**Session** (pieces, sections, annotations, settings)",
+                             margin=(4, 8, 0, 8)),
+            pn.Row(self.session_name, self.save_session_button),
+            pn.Row(self.session_select, self.load_session_button),
+            pn.pane.Markdown("**Figures and exports**", margin=(4, 8, 0, 8)),
+            self.export_name,
+            pn.Row(self.projection, self.export_dpi, self.export_format),
+            pn.GridBox(self.map_fig_button, self.section_fig_button, self.brief_button,
+                       self.netcdf_button, ncols=2),
+            self.download,
+            name="Save & export")
+        self._refresh_session_list()
+
+    def _refresh_session_list(self, select=None):
+        files = list_session_files(self._read_folders())
+        self.session_select.options = files
+        if select is not None and str(select) in files.values():
+            self.session_select.value = str(select)
+
+    def _refuse_existing(self, path, error, what):
+        if path.exists() and not self.overwrite.value:
+            raise error(f"{what} {path.name} already exists in {path.parent}; tick “Overwrite "
+                        "an existing file” to replace it, or choose another name")
+
+    def _stem(self):
+        return (self.export_name.value_input or self.export_name.value or "").strip() or \
+            _case_stem(self.state.case)
+
+    def _time_tag(self):
+        t = str(self.state.valid_time)[:16]
+        return t[:13].replace("-", "").replace("T", "") + "Z"
+
+    def _export_path(self, kind, suffix):
+        name = f"{self._stem()}_{kind}" + ("" if kind == "briefing" else f"_{self._time_tag()}")
+        return resolve_output_path(name + suffix, self._write_folders(), (suffix,))
+
+    def _written(self, path, what):
+        self.download.param.update(file=str(path), filename=path.name, visible=True,
+                                   label=f"Download {path.name}")
+        self.last_written = path
+        return f"{what} {path}"
+
+    def save_session_file(self, name=None):
+        """Save the whole state as a session file in the output folder (refusing to replace
+        an existing file unless "Overwrite" is ticked); returns the path."""
+        from .session import save_session
+
+        st = self.state
+        text = name if name is not None else (self.session_name.value_input or
+                                              self.session_name.value or "").strip()
+        text = text or f"{_case_stem(st.case)}_session.json"
+        if not Path(text).suffix:
+            text += ".json"
+        path = resolve_output_path(text, self._write_folders(), (".json",))
+        self._refuse_existing(path, SessionError, "session file")
+        overwrite = bool(self.overwrite.value)
+
+        def job():
+            save_session(st, path, overwrite=overwrite)
+            self._refresh_session_list(select=path)
+
+        self._work(f"Saving session {path.name}", job,
+                   lambda: self._written(path, "Session saved to"))
+        return path
+
+    def _session_case(self, doc, path):
+        """The case a session document names: the open case when the checksum matches (or
+        when it is the very file recorded), else the recorded file if it is in the data
+        folders (AccessError otherwise)."""
+        from .io import open_case
+
+        block = doc["case"]
+        cur = self.state.case
+        if cur is not None and block.get("sha256") and cur.checksum == block.get("sha256"):
+            return cur
+        cands = []
+        if isinstance(block.get("relative_path"), str):
+            cands.append(path.parent / block["relative_path"])
+        cands.append(Path(block["path"]))
+        for c in cands:
+            try:
+                real = resolve_data_path(c, self.data_dirs)
+            except (AccessError, InputError):
+                continue
+            if cur is not None and cur.source not in (None, "<in-memory>") and \
+                    Path(str(cur.source)).resolve() == real:
+                return cur  # the same file: load_session names both checksums
+            return open_case(real)
+        raise AccessError(f"the session's case {block['path']} is not in the data folders "
+                          f"({', '.join(self.data_dirs) or 'none'}); copy it there or start the "
+                          "server with --data-dir on its folder")
+
+    def load_session_file(self, name=None):
+        """Load a session file from the data or output folders into the page (the case it
+        names must be in the data folders). A bad file leaves the page as it was and its
+        SessionError message in the status area."""
+        from .session import load_session, read_session_file
+
+        text = name if name is not None else self.session_select.value
+        if not text:
+            raise InputError("pick a saved session in the list first")
+        path = resolve_data_path(text, self._read_folders())
+        holder = {}
+
+        def job():
+            doc = read_session_file(path)
+            new = load_session(path, case=self._session_case(doc, path))
+            if new.case is not self.state.case:
+                self._switch_case(new.case)
+            self._apply_state(new)
+            holder["state"] = new
+
+        def done():
+            st = self.state
+            return (f"Loaded session {path.name}: {len(st.pieces)} piece(s), "
+                    f"{len(st.sections)} section(s), {len(st.annotations)} annotation(s)")
+
+        self._work(f"Loading session {path.name}", job, done)
+        return path
+
+    def _apply_state(self, new):
+        st = self.state
+        opts = dict(self.surface.options)
+        if new.surface not in opts.values():
+            from .state import surface_label as _label
+
+            opts[_label(new.surface, new.threshold)] = new.surface
+            self.surface.options = opts
+        st.assign(new)
+        if st.target is not None and st.target[2] in self.attr_level.options.values():
+            self._state_to_widget(self.attr_level, float(st.target[2]))
+
+    def export_map(self):
+        """The map as the static figure (map_figure(state)) in the chosen format."""
+        return self._export_figure("map")
+
+    def export_section(self):
+        """The active section as the static figure (section_figure(state))."""
+        if not self.state.sections:
+            raise InputError("there is no section line yet; choose *Draw a section* and drag "
+                             "a line across the map first")
+        return self._export_figure("section")
+
+    def _export_figure(self, which):
+        from .views import static
+
+        st = self.state
+        fmt = self.export_format.value.lower()
+        path = self._export_path(which, "." + fmt)
+        self._refuse_existing(path, ExportError, "figure")
+        dpi, overwrite = int(self.export_dpi.value), bool(self.overwrite.value)
+
+        def job():
+            fig = static.map_figure(st) if which == "map" else \
+                static.section_figure(st, st.active_section)
+            static.save_figure(fig, path, dpi=dpi, overwrite=overwrite)
+
+        self._work(f"Drawing the {which} figure", job,
+                   lambda: self._written(path, f"{which.capitalize()} figure saved to"))
+        return path
+
+    def export_briefing(self):
+        """The multi-page briefing PDF of the current state (make_briefing)."""
+        from .brief import make_briefing
+
+        st = self.state
+        path = self._export_path("briefing", ".pdf")
+        self._refuse_existing(path, ExportError, "briefing")
+        overwrite = bool(self.overwrite.value)
+        self._work("Making the briefing PDF", lambda: make_briefing(st.case, st, path,
+                                                                    overwrite=overwrite),
+                   lambda: self._written(path, "Briefing saved to"))
+        return path
+
+    def export_netcdf(self):
+        """The balanced fields of every piece, the remainder and the full inversion
+        (export_balanced), as CF netCDF."""
+        from .export import export_balanced
+
+        st = self.state
+        if not st.pieces:
+            raise InputError("there are no pieces to export; lasso an anomaly or add a "
+                             "boundary piece first")
+        path = self._export_path("balanced", ".nc")
+        self._refuse_existing(path, ExportError, "netCDF export")
+        overwrite = bool(self.overwrite.value)
+        self._work("Writing the balanced fields", lambda: export_balanced(
+            st.results(), None, path, overwrite=overwrite, case=st.case,
+            settings=st.to_dict()), lambda: self._written(path, "Balanced fields saved to"))
+        return path
+
     # ---------------------------------------------------------------- display
     def __panel__(self):
         return self.layout
@@ -628,7 +1101,7 @@ class Workbench:
 
 
 MODE_KEYS = {"Pan / zoom": "pan", "Lasso a piece": "lasso", "Draw a section": "section",
-             "Pick target point": "target"}
+             "Pick target point": "target", "Place a label": "label"}
 
 
 # --------------------------------------------------------------------------- serving
@@ -651,12 +1124,13 @@ def check_binding(address, token):
 
 
 def serve(case=None, address="127.0.0.1", port=0, data_dirs=None, token=None, show=False,
-          start=True, verbose=True):
+          start=True, verbose=True, output_dir=None):
     """Serve the workbench page; returns the Bokeh server (its ``.port`` is the real port).
 
     ``case``: a Case, a path or None. Each browser session gets its own State on the same
     Case (derived fields are cached once). ``address`` other than loopback needs ``token``
-    (the page then asks for it). With ``start=True`` this blocks until stopped.
+    (the page then asks for it). ``output_dir``: where the page saves sessions and exports
+    (default the first data folder). With ``start=True`` this blocks until stopped.
     """
     from .io import open_case
 
@@ -665,6 +1139,8 @@ def serve(case=None, address="127.0.0.1", port=0, data_dirs=None, token=None, sh
         case = open_case(case)
     if data_dirs is None and case is not None and case.source not in (None, "<in-memory>"):
         data_dirs = [str(Path(case.source).resolve().parent)]
+    if output_dir is not None and not Path(output_dir).expanduser().is_dir():
+        raise InputError(f"output folder {output_dir!r} does not exist; create it first")
     port = int(port) or _free_port(address)
     origins = [f"{address}:{port}"] + ([f"localhost:{port}", f"127.0.0.1:{port}"]
                                        if address in LOOPBACK else [])
@@ -673,7 +1149,7 @@ def serve(case=None, address="127.0.0.1", port=0, data_dirs=None, token=None, sh
         kw.update(basic_auth=str(token), cookie_secret=secrets.token_hex(32))
 
     def page():
-        return Workbench(case, data_dirs=data_dirs).layout
+        return Workbench(case, data_dirs=data_dirs, output_dir=output_dir).layout
 
     server = pn.serve({"/": page}, port=port, address=address, websocket_origin=origins,
                       show=show, start=False, title="PV Workbench", verbose=False, **kw)
@@ -682,6 +1158,9 @@ def serve(case=None, address="127.0.0.1", port=0, data_dirs=None, token=None, sh
         print(f"PV Workbench at http://{host}:{server.port}/", flush=True)
         if data_dirs:
             print("data folders: " + ", ".join(str(d) for d in _folders(data_dirs)), flush=True)
+        out = _folders([output_dir]) if output_dir else _folders(data_dirs)[:1]
+        if out:
+            print(f"output folder: {out[0]}", flush=True)
     if start:
         server.start()
         try:
@@ -692,7 +1171,8 @@ def serve(case=None, address="127.0.0.1", port=0, data_dirs=None, token=None, sh
 
 
 def main(argv=None):
-    """``pvwb serve [CASE] [--port N] [--address A --token T] [--data-dir D ...]``."""
+    """``pvwb serve [CASE] [--port N] [--address A --token T] [--data-dir D ...]
+    [--output-dir O]``."""
     argv = list(sys.argv[1:] if argv is None else argv)
     if argv and argv[0] == "serve":
         argv = argv[1:]
@@ -708,6 +1188,9 @@ def main(argv=None):
     ap.add_argument("--data-dir", action="append", dest="data_dirs",
                     help="folder the page may open files from (repeatable; default: the "
                          "case's folder)")
+    ap.add_argument("--output-dir", dest="output_dir",
+                    help="folder the page saves sessions, figures and exports to (default: "
+                         "the first data folder)")
     ap.add_argument("--show", action="store_true", help="open a browser tab")
     args = ap.parse_args(argv)
     try:
@@ -717,7 +1200,7 @@ def main(argv=None):
                 if not Path(d).expanduser().is_dir():
                     raise InputError(f"data folder {d!r} does not exist; give an existing folder")
         serve(args.case, address=args.address, port=args.port, data_dirs=args.data_dirs,
-              token=args.token, show=args.show)
+              token=args.token, show=args.show, output_dir=args.output_dir)
     except WorkbenchError as exc:
         print(f"pvwb serve: {exc}", file=sys.stderr)
         return 2

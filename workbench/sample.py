@@ -18,21 +18,28 @@ How the case is made (all deterministic: no random numbers, no thread-dependent 
    200-250 hPa at about 43 N.
 2. **Model.** Quasi-geostrophic potential vorticity (QG PV) dynamics on the project's
    inversion engine (:mod:`workbench.inversion`): the interior QG PV anomaly q' on every
-   level and the potential-temperature anomalies theta' on the bottom (1000 hPa) and top
-   (100 hPa) boundaries are advected by the geostrophic flow of the jet plus the
-   perturbation (Arakawa's energy- and enstrophy-conserving Jacobian on the sphere); the
-   background QG PV includes the full Coriolis parameter f (so beta) and the jet's own PV
-   gradient. Every stage inverts (q', theta'_bottom, theta'_top) for the geopotential
+   level and the potential-temperature anomaly theta' on the bottom boundary (1000 hPa) are
+   advected by the geostrophic flow of the jet plus the perturbation (Arakawa's energy- and
+   enstrophy-conserving Jacobian on the sphere); the background QG PV includes the full
+   Coriolis parameter f (so beta) and the jet's own PV gradient. The 100 hPa top is a lid
+   with theta' = 0 (a lid carrying the stratosphere's strong theta gradient would grow
+   spurious lid-trapped waves). Every stage inverts (q', theta'_bottom) for the geopotential
    anomaly with ``get_solver(QGGrid(...)).solve`` (phi' = 0 on the lateral boundary). Time
-   stepping is the three-stage strong-stability-preserving Runge-Kutta scheme; a grid-scale
-   fourth-order filter and a sponge near the lateral boundaries damp the perturbation.
+   stepping is the three-stage strong-stability-preserving Runge-Kutta scheme. Damping: a
+   grid-scale fourth-order filter, a sponge near the lateral boundaries, a boundary-layer
+   drag on the relative vorticity below 850 hPa and a relaxation of the surface theta'
+   towards the (fixed) sea-surface state.
+   The initial perturbation is an upper-level PV anomaly (a short-wave trough centred at
+   380 hPa, its core surrounded by a ring of opposite sign so that its far field stays local)
+   upstream of a weak surface warm anomaly (theta' = 4 K, likewise ringed).
 3. **Latent heating, a demonstration simplification, not a moist model.** An invented
    relative-humidity field is high where the QG flow ascends (and in lower-tropospheric warm
    air) and low where it descends. Where the relative humidity exceeds a threshold and the QG
    vertical motion is upward, a heating rate offsets a fraction of the adiabatic cooling of
    the ascent, ``dtheta/dt = e * s(RH) * (-omega) * (-dthetabar/dp)``. The ascent omega is the
    adiabatic QG vertical motion diagnosed from the QG thermodynamic equation with the
-   inverted geopotential tendency of the model itself. The heating's PV tendency
+   inverted geopotential tendency of the model itself (it agrees with the Q-vector omega of
+   :mod:`workbench.inversion.omega` to a pattern correlation above 0.98). The heating's PV tendency
    ``-d/dp[(f0/sigma)(R_d Pi/p) dtheta/dt]`` creates a positive lower-tropospheric PV anomaly
    below the heating maximum (and a negative one above it); the column total is conserved.
 4. **Output.** Every 6 h the state is written as full pressure-level fields that follow
@@ -83,8 +90,8 @@ LEVELS_HPA = (1000, 975, 950, 925, 900, 850, 800, 750, 700, 650, 600, 550, 500, 
               250, 200, 150, 100)
 #: Storage quanta (powers of two, exactly representable in float32): every written value is a
 #: multiple of its quantum, which leaves trailing zero bits for the compressor.
-QUANTA = {"geopotential": 2.0 ** -3, "temperature": 2.0 ** -7, "u": 2.0 ** -7, "v": 2.0 ** -7,
-          "relative_humidity": 2.0 ** -4, "mslp": 2.0 ** -2}
+QUANTA = {"geopotential": 2.0 ** -1, "temperature": 2.0 ** -7, "u": 2.0 ** -4, "v": 2.0 ** -4,
+          "relative_humidity": 2.0 ** -1, "mslp": 1.0}
 #: The caution that goes with every product made from this case.
 CAUTION = ("Diagnostic analyses of model or analysis data, not forecasts or warnings; decisions follow "
            "the official warnings of the responsible meteorological service and local procedures.")
@@ -128,12 +135,12 @@ class StormSettings:
     # initial perturbation: upper PV anomaly (trough) and a surface warm anomaly
     upper_lon: float = -68.0
     upper_lat: float = 45.0
-    upper_pressure_hpa: float = 450.0
-    upper_depth_hpa: float = 180.0
+    upper_pressure_hpa: float = 380.0
+    upper_depth_hpa: float = 220.0
     upper_radius_zonal_km: float = 500.0
     upper_radius_meridional_km: float = 700.0
     upper_ring_fraction: float = 1.0
-    upper_height_anomaly_m: float = -170.0
+    upper_height_anomaly_m: float = -210.0
     surface_lon: float = -57.0
     surface_lat: float = 45.0
     surface_theta_k: float = 4.0
@@ -256,7 +263,7 @@ class StormSettings:
             raise InputError(f"sample setting rh_heating_threshold: {s.rh_heating_threshold:g} must be in [0, 100).")
         if s.sponge_points < 1:
             raise InputError("sample setting sponge_points: must be at least 1.")
-        if not (-40.0 < s.surface_temperature_contrast < 60.0) or s.surface_temperature_contrast < 0:
+        if not (0.0 <= s.surface_temperature_contrast <= 60.0):
             raise InputError("sample setting surface_temperature_contrast: must be within 0..60 K.")
 
 
@@ -819,6 +826,9 @@ def write_case(ds: xr.Dataset, path, *, overwrite=False):
     os.close(fd)
     try:
         ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; give the file the usual permissions
         os.replace(tmp, target)
     except BaseException:
         try:

@@ -2,8 +2,9 @@
 
 The :class:`State` holds what the user has chosen on top of a :class:`~workbench.case.Case`:
 time and member, the map surface and field, the overlay level, the reference state, the
-tropopause threshold, the pieces of a piecewise inversion, the section lines, the annotations
-and the target point of the attribution table, plus a status message and a busy flag.
+tropopause threshold, the pieces of a piecewise inversion, the section lines, the annotations,
+the target point of the attribution table and the static figures' settings, plus a status
+message and a busy flag.
 
 Widgets change the state; views watch it (``state.param.watch``) and redraw. Everything the
 state holds converts to plain JSON types with :meth:`State.to_dict` and back with
@@ -90,6 +91,27 @@ def surface_label(surface, threshold=2.0) -> str:
     return f"{float(surface):g} K"
 
 
+def _figure_settings_dict(value):
+    """A full, validated figure-settings dict (``session.FigureSettings`` as plain data)."""
+    from .session import FigureSettings
+
+    if value is None:
+        return FigureSettings().to_dict()
+    if hasattr(value, "to_dict") and not isinstance(value, dict):
+        value = value.to_dict()
+    return FigureSettings.from_dict(dict(value)).to_dict()
+
+
+class FigureSettingsDict(param.Dict):
+    """The static figures' settings: a dict of ``workbench.session.FigureSettings`` fields.
+
+    Setting it accepts a FigureSettings, a dict of some of its fields (the others take their
+    defaults) or None (all defaults); unknown keys or bad values raise InputError."""
+
+    def __set__(self, obj, val):
+        super().__set__(obj, _figure_settings_dict(val))
+
+
 class Surface(param.Parameter):
     """A map surface parameter (validated and normalised by :func:`parse_surface`)."""
 
@@ -138,11 +160,16 @@ class State(param.Parameterized):
     annotations = param.List(default=[], doc="Labels, arrows and regions (workbench.annotations).")
     target = param.NumericTuple(default=None, length=3, allow_None=True,
                                 doc="Attribution target point (lon, lat, pressure hPa).")
+    figure_settings = FigureSettingsDict(
+        default=None, allow_None=True,
+        doc="How the static figures look (projection, size, dpi, colours...): the fields of "
+            "workbench.session.FigureSettings as a dict; None or missing keys take the defaults.")
     status = param.String(default="", doc="Status message for the user.")
     status_level = param.Selector(default="info", objects=["info", "success", "warning", "error"])
     busy = param.Boolean(default=False, doc="True while a computation runs.")
 
     def __init__(self, case=None, **params):
+        params["figure_settings"] = _figure_settings_dict(params.get("figure_settings"))
         super().__init__(case=case, **params)
         if case is not None:
             self._fit_to_case()
@@ -560,14 +587,43 @@ class State(param.Parameterized):
 
     # ------------------------------------------------------------------ annotations
     def add_annotation(self, annotation):
-        from .annotations import annotations_from_list
+        """Add a Label, Arrow, Region (or Section*) annotation, or its dict; returns it."""
+        from .annotations import annotation_from_dict, annotations_from_list
 
+        if isinstance(annotation, dict):
+            annotation = annotation_from_dict(annotation)
         self.annotations = annotations_from_list(list(self.annotations) + [annotation])
         return annotation
 
+    def remove_annotation(self, which=-1):
+        """Delete one annotation: by position (default the last one added) or by its id;
+        returns it. InputError when there is none."""
+        items = list(self.annotations)
+        if not items:
+            raise InputError("there are no annotations to delete")
+        if isinstance(which, str):
+            idx = [k for k, a in enumerate(items) if a.id == which]
+            if not idx:
+                raise InputError(f"there is no annotation with id {which!r}")
+            k = idx[0]
+        else:
+            k = int(which)
+            if not -len(items) <= k < len(items):
+                raise InputError(f"annotation index {k} is out of range (there are "
+                                 f"{len(items)})")
+        gone = items.pop(k)
+        self.annotations = items
+        return gone
+
+    def clear_annotations(self):
+        """Delete every annotation; returns how many there were."""
+        n = len(self.annotations)
+        self.annotations = []
+        return n
+
     # ------------------------------------------------------------------ serialisation
     def to_dict(self) -> dict[str, Any]:
-        """Plain JSON types: settings, pieces, sections, annotations, target."""
+        """Plain JSON types: settings, pieces, sections, annotations, target, figure settings."""
         from .annotations import annotations_to_list
 
         case = self.case
@@ -585,6 +641,7 @@ class State(param.Parameterized):
             "active_section": self.active_section,
             "annotations": annotations_to_list(self.annotations),
             "target": None if self.target is None else [float(x) for x in self.target],
+            "figure_settings": _figure_settings_dict(self.figure_settings),
         }
         if case is not None:
             d["case"] = {"name": case.name, "path": str(case.source), "sha256": case.checksum}
@@ -635,4 +692,29 @@ class State(param.Parameterized):
             st.active_section = active
             st.annotations = annotations_from_list(d.get("annotations", []))
             st.target = target
+            st.figure_settings = d.get("figure_settings")
         return st
+
+    #: What :meth:`assign` copies (the user's choices; not case, status or busy).
+    CHOICES = ("time_index", "member", "surface", "field", "overlay_level", "reference",
+               "threshold", "pieces", "sections", "active_section", "annotations", "target",
+               "figure_settings")
+
+    def assign(self, other):
+        """Take over every choice of ``other`` (a State on the same case, e.g. a reloaded
+        session) in place, so that views and widgets watching this State follow.
+
+        Raises InputError when ``other`` is on a different case (compare checksums): switch
+        the case first with :meth:`set_case`."""
+        if other.case is not self.case and getattr(other.case, "checksum", None) != \
+                getattr(self.case, "checksum", None):
+            raise InputError("the state to take over belongs to another case; open that case "
+                             "first (set_case), then assign")
+        values = {k: getattr(other, k) for k in self.CHOICES}
+        with param.parameterized.batch_call_watchers(self):
+            if self.case is not other.case:
+                self.case = other.case
+                self._fit_to_case()
+            for k, v in values.items():
+                setattr(self, k, v)
+        return self

@@ -10,7 +10,12 @@ Mouse gestures on the map are reported to callbacks the app sets:
 
 * ``on_lasso(polygon)``: a lasso drawn with the lasso tool, ``[(lon, lat), ...]``;
 * ``on_section(start, end)``: a line dragged with the section tool, two (lon, lat) points;
-* ``on_tap(lon, lat)``: a click (the app uses it for the attribution target).
+* ``on_tap(lon, lat)``: a click in the "target" mode (the app's attribution target);
+* ``on_label(lon, lat)``: a click in the "label" mode (the app places a text label there).
+
+Every click's position is kept in :attr:`MapView.last_click`. Annotations of the state
+(:mod:`workbench.annotations` labels, arrows and highlighted regions in map space) are drawn
+from the sources ``pvwb-ann-text``, ``pvwb-ann-regions`` and ``pvwb-ann-arrows``.
 
 Colour maps are those of the static figures (:data:`workbench.views.static.COLOUR_MAPS`:
 perceptually uniform, colour-blind safe), so the app and the briefing figures agree.
@@ -49,7 +54,7 @@ FIELD_LABELS = {
 
 #: Mouse modes of the map: label -> tool key.
 MODES = {"Pan / zoom": "pan", "Lasso a piece": "lasso", "Draw a section": "section",
-         "Pick target point": "target"}
+         "Pick target point": "target", "Place a label": "label"}
 
 BALANCED_COLOUR = "#000000"
 WIND_COLOUR = "#8c8c8c"
@@ -221,6 +226,8 @@ class MapView:
         self.on_lasso = None
         self.on_section = None
         self.on_tap = None
+        self.on_label = None
+        self.last_click = None
         self.mode = "pan"
         self._watchers = []
         case = state.case
@@ -297,9 +304,13 @@ class MapView:
             stroke=S(dict(xs=[], ys=[]), name="pvwb-stroke"),
             target=S(dict(x=[], y=[]), name="pvwb-target"),
             grid=S(dict(x=[], y=[]), name="pvwb-grid"),
-            ann_text=S(dict(x=[], y=[], text=[], colour=[]), name="pvwb-ann-text"),
-            ann_poly=S(dict(xs=[], ys=[], colour=[]), name="pvwb-ann-regions"),
-            ann_arrow=S(dict(x0=[], y0=[], x1=[], y1=[], colour=[]), name="pvwb-ann-arrows"),
+            ann_text=S(dict(x=[], y=[], text=[], colour=[], size=[], style=[], fill=[]),
+                       name="pvwb-ann-text"),
+            ann_poly=S(dict(xs=[], ys=[], colour=[], fill=[], alpha=[], width=[], dash=[]),
+                       name="pvwb-ann-regions"),
+            ann_arrow=S(dict(x0=[], y0=[], x1=[], y1=[], colour=[], width=[]),
+                        name="pvwb-ann-arrows"),
+            ann_head=S(dict(x=[], y=[], angle=[], colour=[]), name="pvwb-ann-arrow-heads"),
         )
         src = self.src
         self.mapper = LinearColorMapper(palette=palette("pv"), low=0, high=8, nan_color=(0, 0, 0, 0))
@@ -316,8 +327,9 @@ class MapView:
                     line_width=1.0, line_alpha=0.8, name="pvwb-wind-shafts")
         fig.scatter("x", "y", angle="angle", source=src["wind_head"], marker="triangle", size=5,
                     fill_color=WIND_COLOUR, line_color=None, fill_alpha=0.8)
-        fig.patches("xs", "ys", source=src["ann_poly"], fill_alpha=0.12, fill_color="colour",
-                    line_color="colour", line_width=2, line_dash="dotted")
+        fig.patches("xs", "ys", source=src["ann_poly"], fill_alpha="alpha", fill_color="fill",
+                    line_color="colour", line_width="width", line_dash="dash",
+                    name="pvwb-ann-region-patches")
         fig.patches("xs", "ys", source=src["pieces"], fill_color="colour", fill_alpha="alpha",
                     line_color="colour", line_width=2.2, line_dash="dashed", name="pvwb-piece-patches")
         fig.text("x", "y", text="text", source=src["piece_labels"], text_color="colour",
@@ -346,10 +358,14 @@ class MapView:
         fig.scatter("x", "y", source=src["target"], marker="circle_x", size=16,
                     fill_color="white", fill_alpha=0.6, line_color="#000000", line_width=2)
         fig.segment("x0", "y0", "x1", "y1", source=src["ann_arrow"], line_color="colour",
-                    line_width=2)
+                    line_width="width")
+        fig.scatter("x", "y", angle="angle", source=src["ann_head"], marker="triangle", size=11,
+                    fill_color="colour", line_color="colour")
         fig.text("x", "y", text="text", source=src["ann_text"], text_color="colour",
-                 text_font_size="12px", text_font_style="bold", background_fill_color="white",
-                 background_fill_alpha=0.7)
+                 text_font_size="size", text_font_style="style", text_align="center",
+                 text_baseline="middle", background_fill_color="fill",
+                 background_fill_alpha=0.8, border_line_color="colour",
+                 border_line_alpha=0.6, padding=2, name="pvwb-ann-labels")
         grid = fig.scatter("x", "y", source=src["grid"], size=1, alpha=0.0,
                            nonselection_alpha=0.0, selection_alpha=0.0, name="pvwb-grid-points")
         self.tools["lasso"].renderers = [grid]
@@ -374,7 +390,8 @@ class MapView:
 
     # ---------------------------------------------------------------- modes and events
     def set_mode(self, mode):
-        """Activate the drag/tap tool of a mouse mode: 'pan', 'lasso', 'section' or 'target'."""
+        """Activate the drag/tap tool of a mouse mode: 'pan', 'lasso', 'section', 'target'
+        or 'label'."""
         tb = self.figure.toolbar
         if mode == "lasso":
             tb.active_drag = self.tools["lasso"]
@@ -382,7 +399,7 @@ class MapView:
         elif mode == "section":
             tb.active_drag = self.tools["section"]
             tb.active_tap = None
-        elif mode == "target":
+        elif mode in ("target", "label"):
             tb.active_drag = self.tools["pan"]
             tb.active_tap = self.tools["target"]
         else:
@@ -404,11 +421,14 @@ class MapView:
         self.on_lasso(poly)
 
     def _tap_event(self, event):
-        if getattr(self, "mode", "pan") != "target" or self.on_tap is None:
-            return
         if event.x is None or event.y is None:
             return
-        self.on_tap(float(event.x), float(event.y))
+        self.last_click = (float(event.x), float(event.y))
+        mode = getattr(self, "mode", "pan")
+        if mode == "target" and self.on_tap is not None:
+            self.on_tap(*self.last_click)
+        elif mode == "label" and self.on_label is not None:
+            self.on_label(*self.last_click)
 
     def _stroke_changed(self, attr, old, new):
         xs, ys = new.get("xs", []), new.get("ys", [])
@@ -565,31 +585,55 @@ class MapView:
         self.src["target"].data = dict(x=[] if t is None else [t[0]], y=[] if t is None else [t[1]])
 
     def refresh_annotations(self):
+        """The state's map annotations: labels (their colour, size and box), arrows (shaft
+        and head) and highlighted regions (outline style, optional fill, label at the
+        centroid), drawn as they are in the static figures."""
         from ..annotations import Arrow, Label as ALabel, Region
 
-        tx, ty, tt, tc = [], [], [], []
-        px, py, pc = [], [], []
-        a0x, a0y, a1x, a1y, ac = [], [], [], [], []
+        text = dict(x=[], y=[], text=[], colour=[], size=[], style=[], fill=[])
+        poly = dict(xs=[], ys=[], colour=[], fill=[], alpha=[], width=[], dash=[])
+        arrow = dict(x0=[], y0=[], x1=[], y1=[], colour=[], width=[])
+        head = dict(x=[], y=[], angle=[], colour=[])
+
+        def put(x, y, t, colour, size=10.0, bold=True, box=True):
+            for k, v in zip(("x", "y", "text", "colour", "size", "style", "fill"),
+                            (x, y, t, colour, f"{1.2 * size:.0f}px", "bold" if bold else
+                             "normal", "white" if box else None)):
+                text[k].append(v)
+
         for a in self.state.annotations:
             if getattr(a, "space", "map") != "map":
                 continue
             if isinstance(a, ALabel):
-                tx.append(a.lon), ty.append(a.lat), tt.append(a.text), tc.append(a.colour)
+                put(a.lon, a.lat, a.text, a.colour, a.size, a.weight == "bold", a.box)
             elif isinstance(a, Arrow):
-                a0x.append(a.start_lon), a0y.append(a.start_lat)
-                a1x.append(a.end_lon), a1y.append(a.end_lat), ac.append(a.colour)
+                for k, v in zip(("x0", "y0", "x1", "y1", "colour", "width"),
+                                (a.start_lon, a.start_lat, a.end_lon, a.end_lat, a.colour,
+                                 a.width)):
+                    arrow[k].append(v)
+                ang = math.atan2(a.end_lat - a.start_lat,
+                                 (a.end_lon - a.start_lon) * self.coslat0) - math.pi / 2
+                for k, v in zip(("x", "y", "angle", "colour"),
+                                (a.end_lon, a.end_lat, ang, a.colour)):
+                    head[k].append(v)
                 if a.text:
-                    tx.append(a.start_lon), ty.append(a.start_lat), tt.append(a.text)
-                    tc.append(a.colour)
+                    put(a.start_lon, a.start_lat, a.text, a.colour, a.size)
             elif isinstance(a, Region):
                 arr = np.asarray(a.polygon, float)
-                px.append(arr[:, 0].tolist()), py.append(arr[:, 1].tolist()), pc.append(a.colour)
+                poly["xs"].append(arr[:, 0].tolist())
+                poly["ys"].append(arr[:, 1].tolist())
+                poly["colour"].append(a.colour)
+                poly["fill"].append(a.fill or a.colour)
+                poly["alpha"].append(float(a.alpha) if a.fill else 0.0)
+                poly["width"].append(float(a.width))
+                poly["dash"].append(a.linestyle)
                 if a.label:
                     cx, cy = a.centroid()
-                    tx.append(cx), ty.append(cy), tt.append(a.label), tc.append(a.colour)
-        self.src["ann_text"].data = dict(x=tx, y=ty, text=tt, colour=tc)
-        self.src["ann_poly"].data = dict(xs=px, ys=py, colour=pc)
-        self.src["ann_arrow"].data = dict(x0=a0x, y0=a0y, x1=a1x, y1=a1y, colour=ac)
+                    put(cx, cy, a.label, a.colour)
+        self.src["ann_text"].data = text
+        self.src["ann_poly"].data = poly
+        self.src["ann_arrow"].data = arrow
+        self.src["ann_head"].data = head
 
 
 # --------------------------------------------------------------------------- the section
