@@ -43,6 +43,11 @@ def main(argv=None) -> int:
         print(f"pvwb {__version__}")
         return 0
     cmd, rest = argv[0], argv[1:]
+    import warnings
+
+    # the package's own warnings (e.g. a domain where |f| varies a lot) as one "note:" line each
+    warnings.simplefilter("once", UserWarning)
+    warnings.formatwarning = lambda msg, cat, *a, **k: f"note: {msg}\n"
     table = {"info": "analysis", "invert": "analysis", "brief": "brief", "serve": "app", "batch": "batch",
              "sample": "sample", "bench": "bench"}
     if cmd not in table:
