@@ -46,8 +46,14 @@ def main(argv=None) -> int:
     import warnings
 
     # the package's own warnings (e.g. a domain where |f| varies a lot) as one "note:" line each
-    warnings.simplefilter("once", UserWarning)
-    warnings.formatwarning = lambda msg, cat, *a, **k: f"note: {msg}\n"
+    seen = set()
+
+    def show(message, category, *args, **kwargs):
+        if str(message) not in seen:
+            seen.add(str(message))
+            print(f"note: {message}", file=sys.stderr)
+
+    warnings.showwarning = show
     table = {"info": "analysis", "invert": "analysis", "brief": "brief", "serve": "app", "batch": "batch",
              "sample": "sample", "bench": "bench"}
     if cmd not in table:
