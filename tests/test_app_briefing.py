@@ -290,8 +290,10 @@ def test_nothing_is_written_or_read_outside_the_folders(bench, folders, tmp_path
         resolve_output_path("a.png", [out], (".json",))
     with pytest.raises(AccessError, match="no output folder"):
         resolve_output_path("a.json", [])
-    with pytest.raises(InputError, match="folder"):
-        resolve_output_path("link", [out])
+    (out / "sub").mkdir()
+    with pytest.raises(InputError, match="is a folder"):
+        resolve_output_path("sub", [out])
+    assert resolve_output_path("sub/a.json", [out]).parent == (out / "sub").resolve()
 
 
 def test_a_bad_session_file_shows_its_message_and_the_page_stays(bench, folders, tmp_path):

@@ -718,17 +718,17 @@ class Workbench:
 
         st = self.state
         self.label_text = pn.widgets.TextInput(
-            name="Label text (also the region's label)", width=410,
+            label="Label text (also the region's label)", width=410,
             placeholder="e.g. L, jet streak, dry intrusion", css_classes=["pvwb-label-text"])
-        self.ann_colour = pn.widgets.Select(name="Colour", width=130, value="black",
+        self.ann_colour = pn.widgets.Select(label="Colour", width=130, value="black",
                                             options=[c for c in PALETTE if c != "white"])
-        self.label_click_button = pn.widgets.Button(name="Label the last clicked point",
+        self.label_click_button = pn.widgets.Button(label="Label the last clicked point",
                                                     width=260, margin=(23, 5, 5, 10),
                                                     css_classes=["pvwb-label-click"])
-        self.undo_ann_button = pn.widgets.Button(name="Delete the last one", width=200,
+        self.undo_ann_button = pn.widgets.Button(label="Delete the last one", width=200,
                                                  css_classes=["pvwb-ann-undo"])
-        self.clear_ann_button = pn.widgets.Button(name="Delete all annotations", width=200,
-                                                  button_type="danger", button_style="outline",
+        self.clear_ann_button = pn.widgets.Button(label="Delete all annotations", width=200,
+                                                  color="danger", variant="outline",
                                                   css_classes=["pvwb-ann-clear"])
         self.label_click_button.on_click(lambda e: self._guard(self.label_last_click))
         self.undo_ann_button.on_click(lambda e: self._guard(self.delete_last_annotation))
@@ -834,42 +834,42 @@ class Workbench:
         st = self.state
         fs = st.figure_settings
         where = self.output_dir or "(none: start with --output-dir)"
-        self.overwrite = pn.widgets.Checkbox(name="Overwrite an existing file", value=False,
+        self.overwrite = pn.widgets.Checkbox(label="Overwrite an existing file", value=False,
                                              css_classes=["pvwb-overwrite"])
         self.session_name = pn.widgets.TextInput(
-            name="Session file", width=290, css_classes=["pvwb-session-name"],
+            label="Session file", width=290, css_classes=["pvwb-session-name"],
             placeholder=f"blank: {_case_stem(st.case)}_session.json")
-        self.save_session_button = pn.widgets.Button(name="Save session", button_type="primary",
+        self.save_session_button = pn.widgets.Button(label="Save session", color="primary",
                                                      width=110, margin=(23, 5, 5, 5),
                                                      css_classes=["pvwb-save-session"])
-        self.session_select = pn.widgets.Select(name="Saved sessions (data and output folders)",
+        self.session_select = pn.widgets.Select(label="Saved sessions (data and output folders)",
                                                 options={}, width=290,
                                                 css_classes=["pvwb-session-list"])
-        self.load_session_button = pn.widgets.Button(name="Load session", width=110,
+        self.load_session_button = pn.widgets.Button(label="Load session", width=110,
                                                      margin=(23, 5, 5, 5),
                                                      css_classes=["pvwb-load-session"])
         self.export_name = pn.widgets.TextInput(
-            name="Name for exported files", width=410, css_classes=["pvwb-export-name"],
+            label="Name for exported files", width=410, css_classes=["pvwb-export-name"],
             placeholder=f"blank: {_case_stem(st.case)} (then _map_<time>.png and so on)")
-        self.export_format = pn.widgets.RadioButtonGroup(name="Figure format",
+        self.export_format = pn.widgets.RadioButtonGroup(label="Figure format",
                                                          options=["PNG", "SVG", "PDF"],
                                                          value="PNG", width=200,
                                                          margin=(23, 5, 5, 10))
-        self.export_dpi = pn.widgets.IntInput(name="dpi", value=int(fs["dpi"]), start=30,
+        self.export_dpi = pn.widgets.IntInput(label="dpi", value=int(fs["dpi"]), start=30,
                                               end=1200, step=10, width=80)
         self.projection = pn.widgets.Select(
-            name="Map projection", width=180, value=fs["projection"],
+            label="Map projection", width=180, value=fs["projection"],
             options={p.replace("_", " "): p for p in PROJECTIONS})
-        self.map_fig_button = pn.widgets.Button(name="Map figure", width=200,
+        self.map_fig_button = pn.widgets.Button(label="Map figure", width=200,
                                                 css_classes=["pvwb-export-map"])
-        self.section_fig_button = pn.widgets.Button(name="Section figure", width=200,
+        self.section_fig_button = pn.widgets.Button(label="Section figure", width=200,
                                                     css_classes=["pvwb-export-section"])
-        self.brief_button = pn.widgets.Button(name="Briefing PDF", width=200,
+        self.brief_button = pn.widgets.Button(label="Briefing PDF", width=200,
                                               css_classes=["pvwb-export-brief"])
-        self.netcdf_button = pn.widgets.Button(name="Balanced fields (netCDF)", width=200,
+        self.netcdf_button = pn.widgets.Button(label="Balanced fields (netCDF)", width=200,
                                                css_classes=["pvwb-export-netcdf"])
         self.download = pn.widgets.FileDownload(file=None, filename="", visible=False,
-                                                button_type="success", width=410,
+                                                color="success", width=410,
                                                 css_classes=["pvwb-download"])
         self.save_session_button.on_click(lambda e: self._guard(self.save_session_file))
         self.load_session_button.on_click(lambda e: self._guard(self.load_session_file))

@@ -42,7 +42,8 @@ def standard_state(case, time=None):
     """The state a briefing uses when no session is given: the time of the deepest low (the
     minimum of mean sea-level pressure, or of the lowest level's geopotential) unless ``time``
     is given, the standard pieces (:func:`workbench.analysis.standard_pieces`), the attribution
-    target at the storm centre on the overlay level, and a west-east section through it."""
+    target at the storm centre on the overlay level, and a west-east section through it. The
+    upper, lower and surface pieces are drawn; the others are in the attribution table only."""
     import numpy as np
 
     from workbench.analysis import standard_pieces, storm_centre
@@ -56,6 +57,9 @@ def standard_state(case, time=None):
         ti = case.time_index(time)
     st = State(case, time_index=ti)
     for piece in standard_pieces(moist=case.relative_humidity(ti) is not None):
+        # the lid, lateral and remainder pieces count in the table but are not drawn, so that
+        # maps and sections show the three pieces a forecaster reads first
+        piece.visible = piece.kind in ("interior", "bottom")
         st.add_piece(piece)
     lon, lat = storm_centre(case, ti)
     st.set_target(lon, lat)
