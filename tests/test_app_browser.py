@@ -211,7 +211,17 @@ def test_section_line_drawn_with_the_mouse_shows_the_section(page, anomaly_centr
     lon, lat, rx, ry = anomaly_centre
     page.get_by_role("button", name="Draw a section").click()
     page.wait_for_timeout(300)
-    a, b = (lon - 2.5 * rx, lat - 1.5 * ry), (lon + 2.5 * rx, lat + 1.5 * ry)
+    # the line through the anomaly, kept inside the map (the anomaly may lie near an edge)
+    x0, x1, y0, y1 = page.evaluate("""() => {
+      const f = Bokeh.documents[0].get_model_by_name('pvwb-map');
+      return [f.x_range.start, f.x_range.end, f.y_range.start, f.y_range.end]; }""")
+    mx, my = 0.03 * (x1 - x0), 0.03 * (y1 - y0)
+
+    def inside(pt):
+        return (min(max(pt[0], x0 + mx), x1 - mx), min(max(pt[1], y0 + my), y1 - my))
+
+    a = inside((lon - 2.5 * rx, lat - 1.5 * ry))
+    b = inside((lon + 2.5 * rx, lat + 1.5 * ry))
     line = [(a[0] + (b[0] - a[0]) * k / 24, a[1] + (b[1] - a[1]) * k / 24) for k in range(25)]
     _drag(page, line)
     page.wait_for_function("() => Bokeh.documents[0].get_model_by_name("
@@ -251,3 +261,40 @@ def test_bad_file_shows_its_message_and_the_page_still_works(page):
     page.wait_for_function("() => Bokeh.documents[0].get_model_by_name('pvwb-colorbar')"
                            ".title.startsWith('wind speed')", timeout=30000)
     assert [p for p in page.problems if "notes.txt" not in p] == []
+
+
+def test_label_and_save_session_from_the_page(page, case_file, anomaly_centre):
+    """Place a label with the mouse, then save the session with the page's button: the file
+    appears in the output folder (here the data folder) and the status says where."""
+    import json
+
+    lon, lat, rx, ry = anomaly_centre
+    page.get_by_text("Annotate", exact=True).click()
+    page.locator(".pvwb-label-text input").fill("L")
+    page.get_by_role("button", name="Place a label").click()
+    page.wait_for_timeout(300)
+    x, y = page.evaluate(JS_TO_SCREEN, [(lon, lat + 2 * ry)])[0]
+    page.mouse.click(x, y)
+    page.wait_for_function("() => Bokeh.documents[0].get_model_by_name('pvwb-ann-text')"
+                           ".data.text.includes('L')", timeout=30000)
+    page.get_by_text("Save & export", exact=True).click()
+    name = "browser-session.json"
+    target = case_file.parent / name
+    assert not target.exists()
+    page.locator(".pvwb-session-name input").fill(name)
+    page.locator(".pvwb-save-session").get_by_role("button").click()
+    deadline = time.time() + 30
+    while "saved" not in _status(page) and time.time() < deadline:
+        page.wait_for_timeout(200)
+    text = _status(page)
+    assert "Session saved to" in text and name in text, text
+    assert page.locator(".pvwb-status-text").get_attribute("data-level") == "success"
+    assert target.is_file()
+    doc = json.loads(target.read_text())
+    assert doc["schema"] == "pv-workbench-session"
+    assert [p["name"] for p in doc["pieces"]] == ["piece"] and len(doc["sections"]) == 1
+    assert [a["text"] for a in doc["annotations"] if a["type"] == "label"] == ["L"]
+    assert page.locator(".pvwb-download").count() == 1
+    assert page.problems == []
+    page.mouse.move(5, 5)
+    page.screenshot(path=str(ARTIFACTS / "app_saved_session.png"), full_page=True)

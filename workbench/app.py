@@ -535,22 +535,25 @@ class Workbench:
         if self.state.case is None or not hasattr(self, "time"):
             self.sidebar[:] = [files]
             return
-        hr = pn.layout.Divider(margin=(4, 5))
+
+        def hr():  # a new divider each time: one Bokeh model may sit in one place only
+            return pn.layout.Divider(margin=(4, 5))
         self.sidebar[:] = [
             pn.pane.Markdown("**Map**", margin=(0, 5)),
             pn.Row(self.time, self.prev_t, self.next_t),
             self.surface, self.field,
             pn.Row(self.threshold, self.reference),
-            hr,
+            hr(),
             pn.pane.Markdown("**Mouse on the map**", margin=(0, 5)), self.mode,
-            hr,
-            pn.pane.Markdown("**Next lassoed piece**", margin=(0, 5)),
+            hr(),
+            pn.pane.Markdown("**Next lasso** (a piece, or a highlighted region)",
+                             margin=(0, 5)),
             self.p_kind, self.p_coord, self.p_layer, self.p_sign,
             pn.Row(self.p_threshold, self.level),
             pn.Row(self.p_moist, self.p_rh), self.p_name,
             pn.pane.Markdown("**Boundary pieces**", margin=(0, 5)),
             pn.GridBox(*self.boundary_buttons, ncols=2),
-            hr, files,
+            hr(), files,
         ]
 
     # ---------------------------------------------------------------- pieces and tables
@@ -720,10 +723,10 @@ class Workbench:
         self.label_text = pn.widgets.TextInput(
             label="Label text (also the region's label)", width=410,
             placeholder="e.g. L, jet streak, dry intrusion", css_classes=["pvwb-label-text"])
-        self.ann_colour = pn.widgets.Select(label="Colour", width=130, value="black",
+        self.ann_colour = pn.widgets.Select(label="Colour", width=120, value="black",
                                             options=[c for c in PALETTE if c != "white"])
         self.label_click_button = pn.widgets.Button(label="Label the last clicked point",
-                                                    width=260, margin=(23, 5, 5, 10),
+                                                    width=260, margin=(23, 5, 5, 5),
                                                     css_classes=["pvwb-label-click"])
         self.undo_ann_button = pn.widgets.Button(label="Delete the last one", width=200,
                                                  css_classes=["pvwb-ann-undo"])
@@ -837,13 +840,13 @@ class Workbench:
         self.overwrite = pn.widgets.Checkbox(label="Overwrite an existing file", value=False,
                                              css_classes=["pvwb-overwrite"])
         self.session_name = pn.widgets.TextInput(
-            label="Session file", width=290, css_classes=["pvwb-session-name"],
+            label="Session file", width=285, css_classes=["pvwb-session-name"],
             placeholder=f"blank: {_case_stem(st.case)}_session.json")
         self.save_session_button = pn.widgets.Button(label="Save session", color="primary",
                                                      width=110, margin=(23, 5, 5, 5),
                                                      css_classes=["pvwb-save-session"])
         self.session_select = pn.widgets.Select(label="Saved sessions (data and output folders)",
-                                                options={}, width=290,
+                                                options={}, width=285,
                                                 css_classes=["pvwb-session-list"])
         self.load_session_button = pn.widgets.Button(label="Load session", width=110,
                                                      margin=(23, 5, 5, 5),
@@ -853,12 +856,12 @@ class Workbench:
             placeholder=f"blank: {_case_stem(st.case)} (then _map_<time>.png and so on)")
         self.export_format = pn.widgets.RadioButtonGroup(label="Figure format",
                                                          options=["PNG", "SVG", "PDF"],
-                                                         value="PNG", width=200,
-                                                         margin=(23, 5, 5, 10))
+                                                         value="PNG", width=165,
+                                                         margin=(23, 5, 5, 5))
         self.export_dpi = pn.widgets.IntInput(label="dpi", value=int(fs["dpi"]), start=30,
-                                              end=1200, step=10, width=80)
+                                              end=1200, step=10, width=75)
         self.projection = pn.widgets.Select(
-            label="Map projection", width=180, value=fs["projection"],
+            label="Map projection", width=150, value=fs["projection"],
             options={p.replace("_", " "): p for p in PROJECTIONS})
         self.map_fig_button = pn.widgets.Button(label="Map figure", width=200,
                                                 css_classes=["pvwb-export-map"])
