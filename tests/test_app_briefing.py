@@ -10,7 +10,6 @@ of bookkeeping and file contents, not physics.
 """
 from __future__ import annotations
 
-import io
 import json
 import os
 import shutil

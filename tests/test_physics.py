@@ -180,9 +180,8 @@ def test_relative_humidity_from_specific_humidity_metpy():
     rh = case.relative_humidity(0)
     t = case.at(0)["temperature"].values
     p = case.at(0)["pressure"].values[:, None, None]
-    e = 0.004 * p / (0.622 + 0.378 * 0.004)  # vapour pressure from q (from memory: Wallace & Hobbs 3.63)
     es = 611.2 * np.exp(17.67 * (t - 273.15) / (t - 29.65))  # Bolton (1980) saturation vapour pressure
-    ws, w = 0.622 * es / (p - es), 0.004 / (1 - 0.004)
+    ws, w = 0.622 * es / (p - es), 0.004 / (1 - 0.004)  # mixing ratios (Wallace & Hobbs, from memory)
     # MetPy's saturation vapour pressure formula differs slightly from Bolton's; they agree to a
     # few per cent above -30 C (from memory), which is where this check looks.
     warm = t > 243.15

@@ -7,7 +7,6 @@ analytic results. The storm itself is invented: its values are never used as che
 from __future__ import annotations
 
 import json
-import os
 import warnings
 from pathlib import Path
 

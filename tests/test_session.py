@@ -186,7 +186,8 @@ def test_invalid_entries_are_refused_with_a_session_error(small_case, tmp_path):
     path.write_text(json.dumps(doc))
     with pytest.raises(SessionError, match="lat"):
         ses.load_session(path, case=small_case)
-    doc = json.loads((tmp_path / "s.json").read_text())
+    path = ses.save_session(make_state(small_case), tmp_path / "s.json", overwrite=True)
+    doc = json.loads(path.read_text())
     doc["figure_settings"] = {"projection": "gnomonic-ish"}
     path.write_text(json.dumps(doc))
     with pytest.raises(SessionError, match="projection"):

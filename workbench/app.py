@@ -40,7 +40,7 @@ import panel as pn
 import param
 
 from .errors import AccessError, ExportError, InputError, SessionError, WorkbenchError
-from .state import BOUNDARY_PIECES, State, surface_label
+from .state import BOUNDARY_PIECES, State
 
 __all__ = ["Workbench", "serve", "main", "resolve_data_path", "resolve_output_path",
            "list_data_files", "list_session_files", "LOOPBACK"]

@@ -124,7 +124,7 @@ def bench_grid(name, shape, repeat=9, with_references=False, log=None):
     _, peak = tracemalloc.get_traced_memory()
     tracemalloc.stop()
     del s2
-    fast = rec("fast_solver", t_fast, t_fft, setup_s=setup, max_rel_error=err, repeats=repeat,
+    rec("fast_solver", t_fast, t_fft, setup_s=setup, max_rel_error=err, repeats=repeat,
                peak_mem_mb=peak / 1e6, mem_ratio=peak / 1e6 / field_mb, field_mb=field_mb)
 
     if with_references:

@@ -345,7 +345,6 @@ def normalise(ds: xr.Dataset, *, variables=None, coords=None, units_override=Non
         da = ds[v]
         if target == "geopotential":
             ustr = units_override.get(v, da.attrs.get("units"))
-            stdn = da.attrs.get("standard_name")
             if ustr is None or str(ustr).strip() == "":
                 raise UnitsError(
                     f"Variable {v!r} (used as geopotential) has no units attribute, so geopotential "
@@ -360,7 +359,6 @@ def normalise(ds: xr.Dataset, *, variables=None, coords=None, units_override=Non
                 raise UnitsError(
                     f"Variable {v!r} (used as geopotential) has units {ustr!r}: expected m2 s-2 "
                     "(geopotential) or m / gpm (geopotential height). Fix the units attribute.")
-            del stdn
         elif target == "relative_humidity":
             ustr = units_override.get(v, da.attrs.get("units"))
             u = _parse_units(ustr, v) if ustr else None

@@ -197,10 +197,6 @@ def session_dict(state, path=None) -> dict[str, Any]:
         if key in _ENVELOPE:
             continue
         doc[key] = value
-    if "figure_settings" not in doc:  # the State may not hold them itself
-        doc["figure_settings"] = FigureSettings.from_dict(
-            _settings_dict(getattr(state, "figure_settings", None))
-        ).to_dict()
     return doc
 
 
@@ -376,12 +372,7 @@ def load_session(path, case=None):
     from workbench.state import State
 
     try:
-        settings = FigureSettings.from_dict(doc.get("figure_settings"))
-        state = State.from_dict(state_body(doc), case)
-        if not getattr(state, "figure_settings", None):
-            # the State keeps them as a plain dict (param attribute or instance attribute)
-            state.figure_settings = settings.to_dict()
-        return state
+        return State.from_dict(state_body(doc), case)  # validates figure_settings too
     except WorkbenchError as exc:
         if isinstance(exc, SessionError):
             raise
