@@ -34,23 +34,15 @@ from bokeh.models import (BoxZoomTool, ColorBar, ColumnDataSource, FreehandDrawT
 from bokeh.plotting import figure
 
 from ..export import CAUTION, invented_label
+from .fields import FIELDS
 from ..sections import great_circle_path
 from ..state import surface_label
 
 __all__ = ["MapView", "SectionView", "palette", "field_style", "coastline_lines", "FIELD_LABELS",
            "MODES"]
 
-#: field -> (label, display units, colour-map key, diverging)
-FIELD_LABELS = {
-    "ertel_pv": ("PV", "PVU", "pv", False),
-    "ertel_pv_anomaly": ("PV anomaly", "PVU", "anomaly", True),
-    "potential_temperature": ("potential temperature", "K", "theta", False),
-    "pressure": ("pressure", "hPa", "pressure", False),
-    "wind_speed": ("wind speed", "m s-1", "speed", False),
-    "geopotential_height": ("geopotential height", "m", "height", False),
-    "u": ("eastward wind", "m s-1", "anomaly", True),
-    "v": ("northward wind", "m s-1", "anomaly", True),
-}
+#: field -> (short label, display units, colour-map key, diverging), from views.fields
+FIELD_LABELS = {f: (st.short, st.units, st.cmap, st.diverging) for f, st in FIELDS.items()}
 
 #: Mouse modes of the map: label -> tool key.
 MODES = {"Pan / zoom": "pan", "Lasso a piece": "lasso", "Draw a section": "section",

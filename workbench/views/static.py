@@ -45,6 +45,7 @@ import cartopy.crs as ccrs
 import workbench.annotations as ann
 from workbench.errors import ExportError, InputError
 from workbench.export import CAUTION, atomic_target, invented_label, package_version
+from workbench.views.fields import FIELDS
 from workbench.session import PROJECTIONS, FigureSettings
 
 __all__ = [
@@ -175,17 +176,9 @@ def _build_colour_maps() -> dict[str, mcolors.Colormap]:
 
 COLOUR_MAPS: dict[str, mcolors.Colormap] = _build_colour_maps()
 
-#: field -> (colour map key, label, display units, diverging)
+#: field -> (colour map key, label, display units, diverging), from views.fields
 _FIELDS: dict[str, tuple[str, str, str, bool]] = {
-    "ertel_pv": ("pv", "Ertel PV", "PVU", False),
-    "ertel_pv_anomaly": ("anomaly", "Ertel PV anomaly", "PVU", True),
-    "potential_temperature": ("theta", "potential temperature", "K", False),
-    "pressure": ("pressure", "pressure", "hPa", False),
-    "wind_speed": ("speed", "wind speed", "m s-1", False),
-    "geopotential_height": ("height", "geopotential height", "m", False),
-    "u": ("anomaly", "eastward wind", "m s-1", True),
-    "v": ("anomaly", "northward wind", "m s-1", True),
-}
+    f: (st.cmap, st.label, st.units, st.diverging) for f, st in FIELDS.items()}
 
 
 def colour_map(name_or_field: str) -> mcolors.Colormap:
