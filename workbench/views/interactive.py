@@ -730,19 +730,7 @@ class SectionView:
         pal, lo, hi, ctitle, _ = field_style("ertel_pv", pv)
         mapper = LinearColorMapper(palette=list(pal), low=lo, high=hi, nan_color=(0, 0, 0, 0))
         # PV shaded as cells (pressure levels are not evenly spaced)
-        pe = np.sqrt(p[:-1] * p[1:])
-        pb = np.concatenate([[p[0]], pe, [p[-1]]])
-        de = 0.5 * (d[:-1] + d[1:])
-        db = np.concatenate([[d[0]], de, [d[-1]]])
-        L = np.meshgrid(db[:-1], np.arange(len(p)))[0]
-        RR = np.meshgrid(db[1:], np.arange(len(p)))[0]
-        B = np.repeat(pb[:-1, None], len(d), 1)
-        T = np.repeat(pb[1:, None], len(d), 1)
-        cells = ColumnDataSource(dict(left=L.ravel(), right=RR.ravel(), bottom=B.ravel(),
-                                      top=T.ravel(), pv=pv.ravel()))
-        fig.quad(left="left", right="right", bottom="bottom", top="top", source=cells,
-                 fill_color={"field": "pv", "transform": mapper},
-                 line_color={"field": "pv", "transform": mapper}, line_width=0.6)
+        _shade_cells(fig, d, p, pv, mapper)
         fig.add_layout(ColorBar(color_mapper=mapper, title=ctitle, width=12,
                                 title_text_font_size="11px"), "right")
         th = sec["potential_temperature"].transpose("pressure", "distance").values
@@ -772,19 +760,7 @@ class SectionView:
         m = _nice(float(np.nanmax(np.abs(ta))) if np.isfinite(ta).any() else 1.0)
         mapper = LinearColorMapper(palette=list(palette("anomaly")), low=-m, high=m,
                                    nan_color=(0, 0, 0, 0))
-        pe = np.sqrt(p[:-1] * p[1:])
-        pb = np.concatenate([[p[0]], pe, [p[-1]]])
-        de = 0.5 * (d[:-1] + d[1:])
-        db = np.concatenate([[d[0]], de, [d[-1]]])
-        L = np.meshgrid(db[:-1], np.arange(len(p)))[0]
-        RR = np.meshgrid(db[1:], np.arange(len(p)))[0]
-        B = np.repeat(pb[:-1, None], len(d), 1)
-        T = np.repeat(pb[1:, None], len(d), 1)
-        cells = ColumnDataSource(dict(left=L.ravel(), right=RR.ravel(), bottom=B.ravel(),
-                                      top=T.ravel(), t=ta.ravel()))
-        fig.quad(left="left", right="right", bottom="bottom", top="top", source=cells,
-                 fill_color={"field": "t", "transform": mapper},
-                 line_color={"field": "t", "transform": mapper}, line_width=0.6)
+        _shade_cells(fig, d, p, ta, mapper)
         fig.add_layout(ColorBar(color_mapper=mapper, title="balanced T′ (K)", width=12,
                                 title_text_font_size="11px"), "right")
         vn = sec["balanced_normal_wind"].sum("piece").transpose("pressure", "distance").values
@@ -826,3 +802,17 @@ def caution_html(case) -> str:
     inv = invented_label(case)
     extra = f" <b>{inv}</b>" if inv else ""
     return f"<span style='font-size:12px;color:#6b4e00'>⚠ {CAUTION}{extra}</span>"
+
+
+def _shade_cells(fig, d, p, values, mapper):
+    """Shade (pressure, distance) values as cells around each node: edges at the geometric
+    mean of neighbouring pressures and the mid-point of neighbouring distances."""
+    pb = np.concatenate([[p[0]], np.sqrt(p[:-1] * p[1:]), [p[-1]]])
+    db = np.concatenate([[d[0]], 0.5 * (d[:-1] + d[1:]), [d[-1]]])
+    left, bottom = np.meshgrid(db[:-1], pb[:-1])
+    right, top = np.meshgrid(db[1:], pb[1:])
+    cells = ColumnDataSource(dict(left=left.ravel(), right=right.ravel(), bottom=bottom.ravel(),
+                                  top=top.ravel(), value=np.asarray(values).ravel()))
+    fig.quad(left="left", right="right", bottom="bottom", top="top", source=cells,
+             fill_color={"field": "value", "transform": mapper},
+             line_color={"field": "value", "transform": mapper}, line_width=0.6)
