@@ -19,26 +19,12 @@ import argparse
 import json
 import math
 import os
-import socket
 import statistics
-import subprocess
 import sys
-import time
-import urllib.request
 from pathlib import Path
 
-ROOT = Path(__file__).resolve().parents[1]
-CHROMIUM = "/usr/bin/chromium"
-ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
-        "--disable-component-update", "--disable-sync", "--no-first-run"]
-
-JS_TO_SCREEN = """(pts) => {
-  const fig = Bokeh.documents[0].get_model_by_name('pvwb-map');
-  const v = Bokeh.index.find_one(fig);
-  const r = v.canvas_view.el.getBoundingClientRect();
-  const xs = v.frame.x_scale, ys = v.frame.y_scale;
-  return pts.map(([x, y]) => [r.left + xs.compute(x), r.top + ys.compute(y)]);
-}"""
+from workbench.testing import (CHROMIUM, CHROMIUM_ARGS as ARGS, JS_MAP_READY, JS_TO_SCREEN, ROOT,
+                               free_port, start_server, stop_server)
 
 JS_ARM = """() => {
   const doc = Bokeh.documents[0];
@@ -52,31 +38,6 @@ JS_ARM = """() => {
   window._pvwb_changes.length = 0;
   window._pvwb_up = null;
 }"""
-
-
-def free_port():
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
-def start_server(case, port, log):
-    env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
-    proc = subprocess.Popen([sys.executable, "-m", "workbench.app", "serve", str(case),
-                             "--port", str(port)], cwd=str(ROOT), env=env, stdout=log,
-                            stderr=subprocess.STDOUT)
-    url = f"http://127.0.0.1:{port}/"
-    t0 = time.time()
-    while time.time() - t0 < 120:
-        if proc.poll() is not None:
-            raise RuntimeError(f"server exited with {proc.returncode}; see {log.name}")
-        try:
-            urllib.request.urlopen(url, timeout=5).read(100)
-            return proc, url
-        except Exception:
-            time.sleep(0.5)
-    proc.terminate()
-    raise RuntimeError("server did not answer within 120 s")
 
 
 def lasso_rings(case_path, n):
@@ -114,9 +75,7 @@ def run(case, n_lassos=12, quiet=False):
             browser = p.chromium.launch(executable_path=CHROMIUM, args=ARGS)
             page = browser.new_page(viewport={"width": 1500, "height": 1200})
             page.goto(url)
-            page.wait_for_function("() => window.Bokeh && Bokeh.documents.length > 0 && "
-                                   "Bokeh.documents[0].get_model_by_name('pvwb-map') != null",
-                                   timeout=120000)
+            page.wait_for_function(JS_MAP_READY, timeout=120000)
             page.wait_for_timeout(1500)
             for k, ring in enumerate(rings):
                 page.evaluate(JS_ARM)
@@ -139,11 +98,7 @@ def run(case, n_lassos=12, quiet=False):
                     print(f"lasso {k:2d}: {n:2d} pieces, {lat_ms:7.1f} ms{tag}", flush=True)
             browser.close()
     finally:
-        proc.terminate()
-        try:
-            proc.wait(20)
-        except subprocess.TimeoutExpired:
-            proc.kill()
+        stop_server(proc)
         log.close()
     timed = [r["latency_s"] for r in rows if not r["warmup"]]
     return dict(case=str(case), lassos=len(timed), median_s=statistics.median(timed),

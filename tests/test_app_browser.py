@@ -9,13 +9,8 @@ from __future__ import annotations
 
 import io
 import math
-import os
 import shutil
-import socket
-import subprocess
-import sys
 import time
-import urllib.request
 from pathlib import Path
 
 import numpy as np
@@ -25,28 +20,14 @@ pytestmark = pytest.mark.browser
 
 ROOT = Path(__file__).resolve().parents[1]
 ARTIFACTS = Path(__file__).parent / "artifacts"
-CHROMIUM = "/usr/bin/chromium"
-ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
-        "--disable-component-update", "--disable-sync", "--no-first-run"]
+from workbench.testing import (CHROMIUM, CHROMIUM_ARGS as ARGS, JS_MAP_READY, JS_TO_SCREEN,  # noqa: E402
+                               free_port, start_server, stop_server)
 
-JS_TO_SCREEN = """(pts) => {
-  const fig = Bokeh.documents[0].get_model_by_name('pvwb-map');
-  const v = Bokeh.index.find_one(fig);
-  const r = v.canvas_view.el.getBoundingClientRect();
-  const xs = v.frame.x_scale, ys = v.frame.y_scale;
-  return pts.map(([x, y]) => [r.left + xs.compute(x), r.top + ys.compute(y)]);
-}"""
 JS_MAP_RECT = """() => {
   const v = Bokeh.index.find_one(Bokeh.documents[0].get_model_by_name('pvwb-map'));
   const r = v.canvas_view.el.getBoundingClientRect();
   return [r.left, r.top, r.width, r.height];
 }"""
-
-
-def _free_port():
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 @pytest.fixture(scope="module")
@@ -65,32 +46,14 @@ def case_file(tmp_path_factory, small_case_path):
 
 @pytest.fixture(scope="module")
 def server(case_file):
-    port = _free_port()
     log = open(case_file.parent.parent / "server.log", "w")
-    env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
-    proc = subprocess.Popen([sys.executable, "-m", "workbench.cli", "serve", str(case_file),
-                             "--port", str(port), "--data-dir", str(case_file.parent)],
-                            cwd=str(ROOT), env=env, stdout=log, stderr=subprocess.STDOUT)
-    url = f"http://127.0.0.1:{port}/"
-    t0 = time.time()
-    while True:
-        if proc.poll() is not None:
-            log.close()
-            pytest.fail("server exited: " + (case_file.parent.parent / "server.log").read_text()[-2000:])
-        try:
-            urllib.request.urlopen(url, timeout=5).read(100)
-            break
-        except Exception:
-            if time.time() - t0 > 120:
-                proc.kill()
-                pytest.fail("server did not answer within 120 s")
-            time.sleep(0.5)
-    yield url
-    proc.terminate()
     try:
-        proc.wait(20)
-    except subprocess.TimeoutExpired:
-        proc.kill()
+        proc, url = start_server(case_file, free_port(), log, ["--data-dir", case_file.parent])
+    except RuntimeError as exc:
+        log.close()
+        pytest.fail(str(exc))
+    yield url
+    stop_server(proc)
     log.close()
 
 
@@ -108,9 +71,7 @@ def page(server):
         pg.on("pageerror", lambda e: pg.problems.append(str(e)))
         pg.on("requestfailed", lambda r: pg.problems.append(f"request failed: {r.url}"))
         pg.goto(server)
-        pg.wait_for_function("() => window.Bokeh && Bokeh.documents.length > 0 && "
-                             "Bokeh.documents[0].get_model_by_name('pvwb-map') != null",
-                             timeout=120000)
+        pg.wait_for_function(JS_MAP_READY, timeout=120000)
         pg.wait_for_timeout(1500)
         yield pg
         browser.close()

@@ -1,0 +1,74 @@
+"""Driving the served app in headless Chromium: shared by the browser tests and the lasso
+latency benchmark. Uses Debian's /usr/bin/chromium through Playwright (never a downloaded
+browser) and a `pvwb serve` subprocess on 127.0.0.1."""
+from __future__ import annotations
+
+import os
+import socket
+import subprocess
+import sys
+import time
+import urllib.request
+from pathlib import Path
+
+__all__ = ["CHROMIUM", "CHROMIUM_ARGS", "JS_TO_SCREEN", "JS_MAP_READY", "free_port", "start_server",
+           "stop_server"]
+
+ROOT = Path(__file__).resolve().parents[1]
+CHROMIUM = "/usr/bin/chromium"
+CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
+                 "--disable-component-update", "--disable-sync", "--no-first-run"]
+
+#: map (lon, lat) points to page pixels through the map figure's own scales
+JS_TO_SCREEN = """(pts) => {
+  const fig = Bokeh.documents[0].get_model_by_name('pvwb-map');
+  const v = Bokeh.index.find_one(fig);
+  const r = v.canvas_view.el.getBoundingClientRect();
+  const xs = v.frame.x_scale, ys = v.frame.y_scale;
+  return pts.map(([x, y]) => [r.left + xs.compute(x), r.top + ys.compute(y)]);
+}"""
+
+#: true once the page's Bokeh document holds the map
+JS_MAP_READY = ("() => window.Bokeh && Bokeh.documents.length > 0 && "
+                "Bokeh.documents[0].get_model_by_name('pvwb-map') != null")
+
+
+def free_port() -> int:
+    """A free TCP port on 127.0.0.1."""
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def start_server(case, port, log, extra_args=(), timeout=120.0):
+    """Start `pvwb serve CASE --port PORT [extra_args]` writing to the open file ``log``;
+    return (process, url) once the page answers. Raises RuntimeError (with the log's tail when
+    the server exits) if it does not answer within ``timeout`` seconds."""
+    env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    proc = subprocess.Popen([sys.executable, "-m", "workbench.cli", "serve", str(case),
+                             "--port", str(port), *map(str, extra_args)],
+                            cwd=str(ROOT), env=env, stdout=log, stderr=subprocess.STDOUT)
+    url = f"http://127.0.0.1:{port}/"
+    t0 = time.time()
+    while True:
+        if proc.poll() is not None:
+            log.flush()
+            tail = Path(log.name).read_text()[-2000:] if hasattr(log, "name") else ""
+            raise RuntimeError(f"server exited with {proc.returncode}: {tail}")
+        try:
+            urllib.request.urlopen(url, timeout=5).read(100)
+            return proc, url
+        except Exception:
+            if time.time() - t0 > timeout:
+                proc.kill()
+                raise RuntimeError(f"server did not answer within {timeout:g} s") from None
+            time.sleep(0.5)
+
+
+def stop_server(proc, wait=20.0):
+    """Terminate the server, killing it if it does not stop within ``wait`` seconds."""
+    proc.terminate()
+    try:
+        proc.wait(wait)
+    except subprocess.TimeoutExpired:
+        proc.kill()
