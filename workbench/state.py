@@ -412,51 +412,35 @@ class State(param.Parameterized):
         return self.case.anomaly(reference=self.reference, **self._sel())
 
     def _claims(self, c, pieces):
-        """What the pieces claim (first claim wins): masks where their forcing is non-zero."""
-        from .inversion.pieces import piece_forcing
+        """Record what the pieces claim, in list order (first claim wins)."""
+        from .inversion.pieces import Claims
 
-        anom = self._anomaly()
-        cq = cb = ct = None
-        lateral = False
+        claims = Claims(self._anomaly())
         for p in pieces:
-            if p.kind == "remainder":
-                continue
-            f = piece_forcing(p, anom)
-            cq = (f["q"] != 0) if cq is None else cq | (f["q"] != 0)
-            cb = (f["bottom_theta"] != 0) if cb is None else cb | (f["bottom_theta"] != 0)
-            ct = (f["top_theta"] != 0) if ct is None else ct | (f["top_theta"] != 0)
-            lateral = lateral or p.kind == "lateral"
-        c.update(claimed_q=cq, claimed_b=cb, claimed_t=ct, lateral=lateral)
+            if p.kind != "remainder":
+                claims.take(p)
+        c["claims"] = claims
 
     def _append_result(self, c, piece):
         from .inversion.fields import invert_qgpv
-        from .inversion.pieces import piece_forcing
 
         anom = self._anomaly()
-        f = piece_forcing(piece, anom)
-        q, bt, tt = f["q"], f["bottom_theta"], f["top_theta"]
-        if c["claimed_q"] is not None:  # points an earlier piece claimed stay with it
-            q = np.where(c["claimed_q"], 0.0, q)
-            bt = np.where(c["claimed_b"], 0.0, bt)
-            tt = np.where(c["claimed_t"], 0.0, tt)
-        lateral = None
-        if piece.kind == "lateral" and not c["lateral"]:
-            lateral = f["lateral"]
+        f = c["claims"].take(piece)  # points an earlier piece claimed stay with it
+        zero2 = np.zeros_like(c["claims"].bt)
+        q = np.zeros_like(c["claims"].q) if f["q"] is None else f["q"]
+        bt = zero2 if f["bottom_theta"] is None else f["bottom_theta"]
+        tt = zero2 if f["top_theta"] is None else f["top_theta"]
         qda = anom["qgpv_anomaly"].transpose("pressure", "latitude", "longitude")
         res = invert_qgpv(qda.copy(data=q), sigma=anom["static_stability"],
                           f0=anom.attrs.get("f0"), bottom_theta=bt, top_theta=tt,
-                          lateral_geopotential=None if lateral is None else
-                          qda.copy(data=lateral))
+                          lateral_geopotential=None if f["lateral"] is None else
+                          qda.copy(data=f["lateral"]))
         res.attrs = dict(c["total"].attrs, piece=piece.name, kind=piece.kind)
         with xr.set_options(keep_attrs=True):
             rem = c["remainder"] - res
         rem.attrs = dict(c["remainder"].attrs)
         c["remainder"] = rem
         c["by_index"] = list(c["by_index"]) + [res]
-        for k, new in (("claimed_q", f["q"]), ("claimed_b", f["bottom_theta"]),
-                       ("claimed_t", f["top_theta"])):
-            c[k] = (new != 0) if c[k] is None else c[k] | (new != 0)
-        c["lateral"] = c["lateral"] or piece.kind == "lateral"
 
     def _drop_results(self, c, keep):
         dropped = c["by_index"][keep:]

@@ -42,6 +42,7 @@ __all__ = [
     "invert_pieces",
     "attribution",
     "polygon_mask",
+    "Claims",
 ]
 
 KINDS = ("interior", "bottom", "top", "lateral", "remainder")
@@ -301,14 +302,56 @@ def piece_forcing(piece: Piece, anomaly: xr.Dataset) -> dict:
     return out
 
 
+class Claims:
+    """First-claim-wins bookkeeping of a piece list: what has been claimed so far.
+
+    ``take(piece)`` returns the forcing the piece gets (its own forcing minus what earlier
+    pieces claimed) and records its claim; ``remainder()`` is everything not claimed. Used by
+    :func:`invert_pieces` for a whole list and by the app's state to add one piece at a time.
+    """
+
+    def __init__(self, anomaly: xr.Dataset):
+        self.anomaly = anomaly
+        self.q, self.bt, self.tt, self.lat = _arrays(anomaly)
+        self.claimed_q = np.zeros(self.q.shape, dtype=bool)
+        self.claimed_b = np.zeros(self.bt.shape, dtype=bool)
+        self.claimed_t = np.zeros(self.tt.shape, dtype=bool)
+        self.lateral_claimed = False
+
+    def take(self, pc: Piece) -> dict:
+        """Forcing dict (q, bottom_theta, top_theta, lateral; None where the piece has none)."""
+        f = dict(q=None, bottom_theta=None, top_theta=None, lateral=None)
+        if pc.kind == "interior":
+            m = piece_mask(pc, self.anomaly).values & ~self.claimed_q
+            self.claimed_q |= m
+            f["q"] = np.where(m, self.q, 0.0)
+        elif pc.kind == "bottom":
+            m = _boundary_mask(pc, self.anomaly["bottom_theta_anomaly"]) & ~self.claimed_b
+            self.claimed_b |= m
+            f["bottom_theta"] = np.where(m, self.bt, 0.0)
+        elif pc.kind == "top":
+            m = _boundary_mask(pc, self.anomaly["top_theta_anomaly"]) & ~self.claimed_t
+            self.claimed_t |= m
+            f["top_theta"] = np.where(m, self.tt, 0.0)
+        elif pc.kind == "lateral":
+            f["lateral"] = np.zeros_like(self.lat) if self.lateral_claimed else self.lat
+            self.lateral_claimed = True
+        else:
+            raise PieceError(f"piece {pc.name!r}: the remainder claims nothing itself; use remainder().")
+        return f
+
+    def remainder(self) -> dict:
+        return dict(
+            q=np.where(self.claimed_q, 0.0, self.q),
+            bottom_theta=np.where(self.claimed_b, 0.0, self.bt),
+            top_theta=np.where(self.claimed_t, 0.0, self.tt),
+            lateral=None if self.lateral_claimed else self.lat,
+        )
+
+
 def _claims(pieces, anomaly):
     """Forcing per piece with first-claim-wins, and the remainder's forcing."""
-    q, bt, tt, lat = _arrays(anomaly)
-    claimed_q = np.zeros(q.shape, dtype=bool)
-    claimed_b = np.zeros(bt.shape, dtype=bool)
-    claimed_t = np.zeros(tt.shape, dtype=bool)
-    lateral_claimed = False
-    forcings = []
+    claims = Claims(anomaly)
     rems = [p for p in pieces if p.kind == "remainder"]
     if len(rems) > 1:
         raise PieceError(f"piece {rems[1].name!r}: only one remainder piece is allowed; remove the others.")
@@ -316,37 +359,15 @@ def _claims(pieces, anomaly):
     if not rems and any(p.name == "remainder" for p in pieces):
         raise PieceError("piece 'remainder': this name is kept for the remainder; rename the piece.")
     names = set()
+    forcings = []
     for pc in pieces:
         if pc.name in names:
             raise PieceError(f"piece {pc.name!r}: two pieces share this name; give each piece its own name.")
         names.add(pc.name)
-        f = dict(q=None, bottom_theta=None, top_theta=None, lateral=None)
-        if pc.kind == "interior":
-            m = piece_mask(pc, anomaly).values & ~claimed_q
-            claimed_q |= m
-            f["q"] = np.where(m, q, 0.0)
-        elif pc.kind == "bottom":
-            m = _boundary_mask(pc, anomaly["bottom_theta_anomaly"]) & ~claimed_b
-            claimed_b |= m
-            f["bottom_theta"] = np.where(m, bt, 0.0)
-        elif pc.kind == "top":
-            m = _boundary_mask(pc, anomaly["top_theta_anomaly"]) & ~claimed_t
-            claimed_t |= m
-            f["top_theta"] = np.where(m, tt, 0.0)
-        elif pc.kind == "lateral":
-            f["lateral"] = np.zeros_like(lat) if lateral_claimed else lat
-            lateral_claimed = True
-        else:  # the remainder is computed after all claims
-            continue
-        forcings.append((pc.name, f))
-    rem = dict(
-        q=np.where(claimed_q, 0.0, q),
-        bottom_theta=np.where(claimed_b, 0.0, bt),
-        top_theta=np.where(claimed_t, 0.0, tt),
-        lateral=None if lateral_claimed else lat,
-    )
-    forcings.append((remainder_name, rem))
-    return forcings, (q, bt, tt, lat)
+        if pc.kind != "remainder":  # the remainder is computed after all claims
+            forcings.append((pc.name, claims.take(pc)))
+    forcings.append((remainder_name, claims.remainder()))
+    return forcings, (claims.q, claims.bt, claims.tt, claims.lat)
 
 
 def invert_pieces(anomaly: xr.Dataset, pieces) -> dict:
