@@ -72,6 +72,15 @@ class Case:
         self.checksum = checksum
         self._f0 = None if f0 is None else float(f0)
         self._cache = _Cache()
+        # what was done to the data on the way in (regridding, wind rotation, filled points,
+        # default reference ...): one plain sentence each, shown in every summary
+        raw_notes = data.attrs.get("workbench_notes", "")
+        self.notes = [n for n in (raw_notes.split("\n") if isinstance(raw_notes, str) else list(raw_notes)) if n]
+
+    def add_note(self, text: str) -> None:
+        """Record one sentence about how the data were handled (shown in the case summary)."""
+        if text and text not in self.notes:
+            self.notes.append(str(text))
 
     # --- metadata ----------------------------------------------------------------------
     @property
@@ -123,7 +132,7 @@ class Case:
                     levels_hpa=[float(x) for x in self.levels_hpa], domain=d,
                     grid=dict(nz=self.data.sizes["pressure"], ny=self.data.sizes["latitude"],
                               nx=self.data.sizes["longitude"]),
-                    variables=self.variables, invented=self.invented)
+                    variables=self.variables, invented=self.invented, notes=list(self.notes))
 
     def __repr__(self):
         s = self.summary()
@@ -139,6 +148,7 @@ class Case:
                 f"  domain:    {d['lat_min']:g}..{d['lat_max']:g} N, {d['lon_min']:g}..{d['lon_max']:g} E "
                 f"({s['grid']['ny']} x {s['grid']['nx']} points)\n"
                 f"  variables: {', '.join(self.variables)}"
+                + "".join(f"\n  note:      {n}" for n in self.notes)
                 + ("\n  note:      invented demonstration case, not real weather" if self.invented else ""))
 
     def _repr_html_(self):
