@@ -35,8 +35,12 @@ def test_paths_outside_the_data_folders_are_refused(data_dir, tmp_path):
     os.symlink(tmp_path / "secret.nc", data_dir / "link.nc")
     with pytest.raises(AccessError):
         resolve_data_path("link.nc", [data_dir])
-    with pytest.raises(InputError, match="not found"):
+    with pytest.raises(AccessError, match="not found") as missing:
         resolve_data_path("missing.nc", [data_dir])
+    with pytest.raises(AccessError) as outside:  # the same words: no probe for existence
+        resolve_data_path(str(tmp_path / "secret.nc"), [data_dir])
+    assert str(missing.value).replace("missing.nc", "X") == \
+        str(outside.value).replace(str(tmp_path / "secret.nc"), "X")
     with pytest.raises(AccessError, match="no data folders"):
         resolve_data_path("wave.nc", [])
     files = list_data_files([data_dir])

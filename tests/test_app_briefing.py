@@ -22,7 +22,7 @@ from bokeh.events import SelectionGeometry, Tap
 from workbench.app import Workbench, list_session_files, resolve_output_path
 from workbench.errors import AccessError, InputError
 from workbench.export import CAUTION
-from workbench.session import load_session
+from workbench.session import body_checksum, load_session
 
 ARTIFACTS = Path(__file__).parent / "artifacts"
 TROUGH = [(-20.0, 38.0), (5.0, 38.0), (5.0, 55.0), (-20.0, 55.0)]
@@ -141,8 +141,9 @@ def test_session_saved_in_the_app_reloads_in_python_to_the_same_state(bench, fol
     assert path.is_file() and str(path.resolve()) in st.status
     assert bench.download.visible and bench.download.filename == "tuesday.json"
     assert str(path.resolve()) in bench.session_select.options.values()
-    # plain Python, as in a notebook: the case is reopened from the recorded path
-    back = load_session(path)
+    # plain Python, as in a notebook: the case is reopened from the recorded path (its
+    # folder is not the session's, so it is named as allowed)
+    back = load_session(path, data_dirs=[data])
     assert back.to_dict() == st.to_dict()
     assert back.time_index == 1 and back.figure_settings["dpi"] == 70
     assert back.figure_settings["projection"] == "lambert_conformal"
@@ -305,6 +306,8 @@ def test_a_bad_session_file_shows_its_message_and_the_page_stays(bench, folders,
     before = st.to_dict()
 
     def write(name, d):
+        if isinstance(d, dict):  # sealed, so that the entry itself is what is refused
+            d = dict(d, body_sha256=body_checksum(d))
         (out / name).write_text(json.dumps(d) if not isinstance(d, str) else d)
         bench._refresh_session_list()
         bench.session_select.value = str((out / name).resolve())

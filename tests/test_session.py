@@ -38,7 +38,7 @@ def make_state(case):
 
 
 def _body(d):
-    return {k: v for k, v in d.items() if k != "saved_at"}
+    return {k: v for k, v in d.items() if k not in ("saved_at", "body_sha256")}
 
 
 def test_save_and_load_restore_the_same_state(small_case, tmp_path):
@@ -174,7 +174,7 @@ def test_non_json_content_is_refused_and_never_run(small_case, tmp_path):
     doc = json.loads(path.read_text())
     doc["annotations"][0]["text"] = f"__import__('pathlib').Path('{marker}').touch()"
     path.write_text(json.dumps(doc))
-    back = ses.load_session(path, case=small_case)
+    back = ses.load_session(path, case=small_case, accept_modified=True)  # edited by hand
     assert back.annotations[0].text.startswith("__import__")
     assert not marker.exists()
 
@@ -183,12 +183,14 @@ def test_invalid_entries_are_refused_with_a_session_error(small_case, tmp_path):
     path = ses.save_session(make_state(small_case), tmp_path / "s.json")
     doc = json.loads(path.read_text())
     doc["annotations"][0]["lat"] = 123.0
+    doc["body_sha256"] = ses.body_checksum(doc)  # sealed: the entry itself must be refused
     path.write_text(json.dumps(doc))
     with pytest.raises(SessionError, match="lat"):
         ses.load_session(path, case=small_case)
     path = ses.save_session(make_state(small_case), tmp_path / "s.json", overwrite=True)
     doc = json.loads(path.read_text())
     doc["figure_settings"] = {"projection": "gnomonic-ish"}
+    doc["body_sha256"] = ses.body_checksum(doc)
     path.write_text(json.dumps(doc))
     with pytest.raises(SessionError, match="projection"):
         ses.load_session(path, case=small_case)
@@ -224,7 +226,7 @@ def test_reloaded_session_reproduces_the_same_figures(small_case, tmp_path):
     st = make_state(small_case)
     st.figure_settings = ses.FigureSettings(dpi=50, width_in=6).to_dict()
     path = ses.save_session(st, tmp_path / "s.json")
-    back = ses.load_session(path)
+    back = ses.load_session(path, data_dirs=[small_case_path_of(small_case).parent])
 
     def content(state):
         view = static.state_view(state)

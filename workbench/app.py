@@ -28,6 +28,7 @@ and the output folder, and the case a session names must lie in the data folders
 from __future__ import annotations
 
 import argparse
+import math
 import os
 import secrets
 import socket
@@ -39,8 +40,10 @@ import numpy as np
 import panel as pn
 import param
 
+from .access import folders, resolve_data_path, resolve_output_path
 from .errors import AccessError, ExportError, InputError, SessionError, WorkbenchError
 from .state import BOUNDARY_PIECES, State
+from .textsafe import escape
 
 __all__ = ["Workbench", "serve", "main", "resolve_data_path", "resolve_output_path",
            "list_data_files", "list_session_files", "LOOPBACK"]
@@ -59,41 +62,8 @@ _CSS = """
 # --------------------------------------------------------------------------- data folders
 
 
-def _folders(data_dirs):
-    out = []
-    for d in data_dirs or []:
-        p = Path(os.fspath(d)).expanduser().resolve()
-        if p.is_dir():
-            out.append(p)
-    return out
-
-
-def resolve_data_path(path, data_dirs) -> Path:
-    """The real path of ``path`` if it lies inside one of ``data_dirs``; else AccessError.
-
-    A relative ``path`` is taken relative to each data folder in turn. The check is made on
-    the fully resolved path (``..`` and symbolic links resolved), so nothing outside the
-    folders can be reached.
-    """
-    folders = _folders(data_dirs)
-    if not folders:
-        raise AccessError("no data folders are configured, so no file can be opened from the "
-                          "page; start the server with --data-dir FOLDER")
-    text = os.fspath(path).strip() if path is not None else ""
-    if not text or "\x00" in text:
-        raise AccessError("give the name of a file inside the data folders")
-    cand = Path(text).expanduser()
-    tries = [cand] if cand.is_absolute() else [f / cand for f in folders]
-    for c in tries:
-        real = c.resolve()
-        for f in folders:
-            if real == f or f in real.parents:
-                if not real.exists():
-                    raise InputError(f"file {text!r} was not found in the data folder {f}; "
-                                     "pick one from the list")
-                return real
-    raise AccessError(f"{text!r} is outside the configured data folders "
-                      f"({', '.join(str(f) for f in folders)}); only files inside them can be opened")
+# The folder checks live in workbench.access (shared with session files).
+_folders = folders
 
 
 def list_data_files(data_dirs, limit=500):
@@ -110,39 +80,6 @@ def list_data_files(data_dirs, limit=500):
                     continue  # inside a zarr store
                 out[f"{f.name}/{p.relative_to(f)}"] = str(p)
     return out
-
-
-def resolve_output_path(name, folders, suffixes=None) -> Path:
-    """The real path a file called ``name`` would have inside the output ``folders``.
-
-    A relative ``name`` is taken inside the first folder (subfolders that exist are fine);
-    an absolute one must lie inside one of the folders. The check is made on the resolved
-    path, so ``..`` and symbolic links leading out raise :class:`AccessError`. ``suffixes``
-    (e.g. ``(".json",)``) limits the file types; a folder name is refused (InputError).
-    The file need not exist (whether it may be replaced is the caller's business).
-    """
-    folders = _folders(folders)
-    if not folders:
-        raise AccessError("no output folder is configured, so nothing can be saved from the "
-                          "page; start the server with --output-dir FOLDER (or --data-dir)")
-    text = os.fspath(name).strip() if name is not None else ""
-    if not text:
-        raise InputError("give a file name to save to")
-    if "\x00" in text:
-        raise AccessError("file names cannot contain NUL characters")
-    cand = Path(text).expanduser()
-    if not cand.is_absolute():
-        cand = folders[0] / cand
-    real = cand.resolve()
-    if not any(f in real.parents for f in folders):
-        raise AccessError(f"{text!r} is outside the output folder "
-                          f"({', '.join(str(f) for f in folders)}); give a plain file name "
-                          "(no '..' and no links leading out)")
-    if real.is_dir():
-        raise InputError(f"{text!r} is a folder; give a file name")
-    if suffixes and real.suffix.lower() not in suffixes:
-        raise InputError(f"{real.name} must end in {' or '.join(suffixes)}")
-    return real
 
 
 def list_session_files(folders, limit=200):
@@ -290,14 +227,12 @@ class Workbench:
                                                     css_classes=["pvwb-busy"], margin=(8, 4))
 
         def show_status(*_):
-            import html
-
             bg, fg = _STATUS_COLOURS.get(st.status_level, _STATUS_COLOURS["info"])
             icon = {"error": "✖ ", "warning": "⚠ ", "success": "✔ "}.get(st.status_level, "")
             self.status.object = (
                 f"<div class='pvwb-status-text' data-level='{st.status_level}' style='background:"
                 f"{bg};color:{fg};padding:5px 10px;border-radius:4px;font-size:13px'>"
-                f"{icon}{html.escape(st.status or ' ')}</div>")
+                f"{icon}{escape(st.status or ' ')}</div>")
             self.spinner.value = bool(st.busy)
 
         st.param.watch(show_status, ["status", "status_level", "busy"])
@@ -377,7 +312,8 @@ class Workbench:
 
         st = self.state
         case = st.case
-        self.header.object = (f"<h2>PV Workbench · {case.name}</h2>" + caution_html(case))
+        self.header.object = (f"<h2>PV Workbench · {escape(case.name)}</h2>" +
+                              caution_html(case))
         self._build_controls()
         self.map = MapView(st, width=self.width)
         self.map.on_lasso = lambda poly: self._guard(self.lasso_piece, poly)
@@ -736,8 +672,8 @@ class Workbench:
         self.label_click_button.on_click(lambda e: self._guard(self.label_last_click))
         self.undo_ann_button.on_click(lambda e: self._guard(self.delete_last_annotation))
         self.clear_ann_button.on_click(lambda e: self._guard(self.delete_all_annotations))
-        self.ann_list = pn.pane.Markdown("", margin=(0, 8), css_classes=["pvwb-ann-list"],
-                                         styles={"font-size": "13px"})
+        self.ann_list = pn.pane.HTML("", margin=(0, 8), css_classes=["pvwb-ann-list"],
+                                     styles={"font-size": "13px"})
         help_md = pn.pane.Markdown(
             "**Label:** choose *Place a label* under *Mouse on the map*, type the text here and "
             "click the map.  \n**Highlighted region:** set *A lasso makes* to *highlighted "
@@ -761,17 +697,18 @@ class Workbench:
         for k, a in enumerate(self.state.annotations, 1):
             where = "" if a.space == "map" else f" (on {a.space.replace(':', ' ')})"
             if isinstance(a, Label):
-                rows.append(f"{k}. label “{a.text}” at {a.lon:.1f}°E {a.lat:.1f}°N{where}")
+                row = f"{k}. label “{a.text}” at {a.lon:.1f}°E {a.lat:.1f}°N{where}"
             elif isinstance(a, Region):
                 lab = f" “{a.label}”" if a.label else ""
-                rows.append(f"{k}. region{lab}, {len(a.polygon)} points, "
-                            f"{names.get(a.colour, a.colour)}{where}")
+                row = (f"{k}. region{lab}, {len(a.polygon)} points, "
+                       f"{names.get(a.colour, a.colour)}{where}")
             elif isinstance(a, Arrow):
-                rows.append(f"{k}. arrow{' “' + a.text + '”' if a.text else ''}{where}")
+                row = f"{k}. arrow{' “' + a.text + '”' if a.text else ''}{where}"
             else:
-                rows.append(f"{k}. {a.kind}{where}")
-        self.ann_list.object = ("**Annotations**  \n" + "  \n".join(rows)) if rows else \
-            "*No annotations yet.*"
+                row = f"{k}. {a.kind}{where}"
+            rows.append(f"<div class='pvwb-ann-item'>{escape(row)}</div>")
+        self.ann_list.object = ("<b>Annotations</b>" + "".join(rows)) if rows else \
+            "<i>No annotations yet.</i>"
 
     def place_label(self, lon, lat):
         """Put a text label (the Annotate tab's text and colour) at (lon, lat) on the map."""
@@ -876,6 +813,11 @@ class Workbench:
                                                 css_classes=["pvwb-download"])
         self.save_session_button.on_click(lambda e: self._guard(self.save_session_file))
         self.load_session_button.on_click(lambda e: self._guard(self.load_session_file))
+        self.load_anyway_button = pn.widgets.Button(
+            label="Load it anyway (I changed it)", width=285, visible=False,
+            color="warning", css_classes=["pvwb-load-anyway"])
+        self.load_anyway_button.on_click(lambda e: self._guard(self.load_modified_session))
+        self._pending_session = None
         self.map_fig_button.on_click(lambda e: self._guard(self.export_map))
         self.section_fig_button.on_click(lambda e: self._guard(self.export_section))
         self.brief_button.on_click(lambda e: self._guard(self.export_briefing))
@@ -895,13 +837,14 @@ class Workbench:
         self._watch(st, fs_to_widgets, ["figure_settings"])
         small = {"font-size": "13px"}
         self.export_box = pn.Column(
-            pn.pane.Markdown(f"Files are written to **{where}**.", margin=(0, 8), styles=small,
-                             css_classes=["pvwb-output-folder"]),
+            pn.pane.HTML(f"Files are written to <b>{escape(where)}</b>.", margin=(0, 8),
+                         styles=small, css_classes=["pvwb-output-folder"]),
             self.overwrite,
             pn.pane.Markdown("**Session** (pieces, sections, annotations, settings)",
                              margin=(4, 8, 0, 8)),
             pn.Row(self.session_name, self.save_session_button),
             pn.Row(self.session_select, self.load_session_button),
+            self.load_anyway_button,
             pn.pane.Markdown("**Figures and exports**", margin=(4, 8, 0, 8)),
             self.export_name,
             pn.Row(self.projection, self.export_dpi, self.export_format),
@@ -966,7 +909,7 @@ class Workbench:
     def _session_case(self, doc, path):
         """The case a session document names: the open case when the checksum matches (or
         when it is the very file recorded), else the recorded file if it is in the data
-        folders (AccessError otherwise)."""
+        folders (one AccessError for "not in the data folders" and "not found")."""
         from .io import open_case
 
         block = doc["case"]
@@ -986,37 +929,58 @@ class Workbench:
                     Path(str(cur.source)).resolve() == real:
                 return cur  # the same file: load_session names both checksums
             return open_case(real)
-        raise AccessError(f"the session's case {block['path']} is not in the data folders "
-                          f"({', '.join(self.data_dirs) or 'none'}); copy it there or start the "
-                          "server with --data-dir on its folder")
+        raise AccessError(f"the session's case {block['path']!r} is not in the data folders "
+                          f"or not found there ({', '.join(self.data_dirs) or 'none'}); copy "
+                          "it there or start the server with --data-dir on its folder")
 
-    def load_session_file(self, name=None):
+    def load_session_file(self, name=None, accept_modified=False):
         """Load a session file from the data or output folders into the page (the case it
         names must be in the data folders). A bad file leaves the page as it was and its
-        SessionError message in the status area."""
-        from .session import load_session, read_session_file
+        SessionError message in the status area. A session changed after it was saved (or
+        without a body checksum) is refused and the "Load it anyway" button appears; it
+        loads it with ``accept_modified=True``."""
+        from .session import (SessionModifiedError, check_body, check_caps,
+                              read_session_file, state_from_session)
 
         text = name if name is not None else self.session_select.value
         if not text:
             raise InputError("pick a saved session in the list first")
-        path = resolve_data_path(text, self._read_folders())
-        holder = {}
+        path = resolve_data_path(text, self._read_folders(), what="session file")
+        self.load_anyway_button.visible = False
+        self._pending_session = None
 
         def job():
             doc = read_session_file(path)
-            new = load_session(path, case=self._session_case(doc, path))
+            check_caps(doc, path)  # before anything is opened or computed
+            try:
+                check_body(doc, path, accept_modified)
+            except SessionModifiedError:
+                self._pending_session = str(path)
+                self.load_anyway_button.visible = True
+                raise
+            new = state_from_session(doc, self._session_case(doc, path), path,
+                                     data_dirs=self.data_dirs, accept_modified=accept_modified)
             if new.case is not self.state.case:
                 self._switch_case(new.case)
             self._apply_state(new)
-            holder["state"] = new
 
         def done():
             st = self.state
-            return (f"Loaded session {path.name}: {len(st.pieces)} piece(s), "
-                    f"{len(st.sections)} section(s), {len(st.annotations)} annotation(s)")
+            return (f"Loaded session {path.name}" + (" (changed after saving; loaded as "
+                                                     "confirmed)" if accept_modified else "")
+                    + f": {len(st.pieces)} piece(s), {len(st.sections)} section(s), "
+                    f"{len(st.annotations)} annotation(s)")
 
         self._work(f"Loading session {path.name}", job, done)
         return path
+
+    def load_modified_session(self):
+        """The confirm step: load the session just refused as changed, accepting the change."""
+        pending = getattr(self, "_pending_session", None)
+        if not pending:
+            raise InputError("there is no refused session to load; pick one and press "
+                             "“Load session” first")
+        return self.load_session_file(pending, accept_modified=True)
 
     def _apply_state(self, new):
         st = self.state
@@ -1117,13 +1081,122 @@ def _free_port(address):
         return s.getsockname()[1]
 
 
+# --------------------------------------------------------------------------- token login
+
+#: environment variable holding the served page's token (never the command line)
+TOKEN_ENV = "PVWB_TOKEN"
+#: shortest token accepted from the command line's sources
+MIN_TOKEN_LENGTH = 8
+
+
+class LoginThrottle:
+    """Failed-login bookkeeping per client: after ``free`` failures in a row, each further failure
+    locks the client out for ``base_s * 2**(n - free)`` seconds (at most ``max_s``); a request
+    during a lockout is refused without checking the token; a success clears the record."""
+
+    def __init__(self, free=5, base_s=1.0, max_s=300.0, clock=time.monotonic):
+        self.free, self.base_s, self.max_s, self.clock = int(free), float(base_s), float(max_s), clock
+        self._records = {}  # client -> [failures, locked_until, last_seen]
+
+    def wait_s(self, client) -> float:
+        """Seconds ``client`` must still wait before its next attempt (0 when it may try now)."""
+        rec = self._records.get(client)
+        return 0.0 if rec is None else max(0.0, rec[1] - self.clock())
+
+    def failed(self, client) -> float:
+        """Record a failure; returns the lockout now in force (s)."""
+        now = self.clock()
+        if len(self._records) > 10000:  # forget clients idle for an hour
+            for key in [k for k, r in self._records.items() if now - r[2] > 3600]:
+                del self._records[key]
+        rec = self._records.setdefault(client, [0, 0.0, now])
+        rec[0] += 1
+        rec[2] = now
+        if rec[0] >= self.free:
+            rec[1] = now + min(self.max_s, self.base_s * 2.0 ** (rec[0] - self.free))
+        return self.wait_s(client)
+
+    def succeeded(self, client) -> None:
+        self._records.pop(client, None)
+
+
+def _token_auth_provider(token, throttle=None):
+    """A Panel login page (``/login``) that accepts ``token`` as the password (any user name),
+    compares in constant time and slows repeated failures down (:class:`LoginThrottle`, per
+    client address; HTTP 429 with ``Retry-After`` while locked out)."""
+    import hmac
+
+    import tornado.escape
+    from panel.auth import BasicAuthProvider, BasicLoginHandler
+
+    secret = str(token).encode("utf-8")
+    throttle = throttle or LoginThrottle()
+
+    class TokenLoginHandler(BasicLoginHandler):
+        def _validate(self, username, password):
+            return hmac.compare_digest(str(password).encode("utf-8"), secret)
+
+        def post(self):
+            client = self.request.remote_ip or "?"
+            wait = throttle.wait_s(client)
+            if wait > 0:
+                self.set_status(429)
+                self.set_header("Retry-After", str(int(math.ceil(wait))))
+                self.write(f"Too many failed logins from this address; try again in {math.ceil(wait):.0f} s.")
+                return
+            if self._validate(self.get_argument("username", ""), self.get_argument("password", "")):
+                throttle.succeeded(client)
+                return super().post()
+            wait = throttle.failed(client)
+            msg = "Invalid token." + (f" Too many failures: wait {math.ceil(wait):.0f} s." if wait else "")
+            self.redirect(self.request.path + "?error=" + tornado.escape.url_escape(msg))
+
+    class TokenAuthProvider(BasicAuthProvider):
+        @property
+        def login_handler(self):
+            TokenLoginHandler._login_endpoint = self._login_endpoint
+            TokenLoginHandler._login_template = self._login_template
+            return TokenLoginHandler
+
+    provider = TokenAuthProvider()
+    provider.throttle = throttle
+    return provider
+
+
+def read_token(token_file=None, environ=None):
+    """The served page's token: from ``token_file`` (first line, surrounding spaces dropped) if
+    given, else from the environment variable PVWB_TOKEN, else None. InputError for an unreadable
+    or empty file or a token shorter than MIN_TOKEN_LENGTH characters."""
+    environ = os.environ if environ is None else environ
+    if token_file is not None:
+        path = Path(token_file).expanduser()
+        try:
+            text = path.read_text(encoding="utf-8")
+        except (OSError, UnicodeError) as exc:
+            raise InputError(f"--token-file {str(token_file)!r} cannot be read "
+                             f"({getattr(exc, 'strerror', None) or type(exc).__name__})") from None
+        lines = text.strip().splitlines()
+        token, where = (lines[0].strip() if lines else ""), f"--token-file {str(token_file)!r}"
+    else:
+        token, where = environ.get(TOKEN_ENV), TOKEN_ENV
+        if token is None:
+            return None
+        token = token.strip()
+    if not token:
+        raise InputError(f"{where} holds no token; put a secret of at least {MIN_TOKEN_LENGTH} characters in it")
+    if len(token) < MIN_TOKEN_LENGTH:
+        raise InputError(f"the token in {where} is too short ({len(token)} characters); "
+                         f"use at least {MIN_TOKEN_LENGTH}")
+    return token
+
+
 def check_binding(address, token):
     """Refuse a non-loopback address without a token (AccessError)."""
     if address not in LOOPBACK and not token:
         raise AccessError(
             f"refusing to serve on {address!r} without a token: anyone who can reach that "
-            "address could use the workbench. Give --token SECRET (or --password), or bind "
-            "127.0.0.1 (the default)")
+            f"address could use the workbench. Put a secret in the environment variable {TOKEN_ENV} "
+            "or in a file given with --token-file, or bind 127.0.0.1 (the default)")
 
 
 def serve(case=None, address="127.0.0.1", port=0, data_dirs=None, token=None, show=False,
@@ -1144,18 +1217,31 @@ def serve(case=None, address="127.0.0.1", port=0, data_dirs=None, token=None, sh
         data_dirs = [str(Path(case.source).resolve().parent)]
     if output_dir is not None and not Path(output_dir).expanduser().is_dir():
         raise InputError(f"output folder {output_dir!r} does not exist; create it first")
-    port = int(port) or _free_port(address)
+    port = int(port)
+    if not 0 <= port <= 65535:
+        raise InputError(f"port {port} is out of range; give 1..65535 (or 0 for any free port)")
+    try:
+        port = port or _free_port(address)
+    except OSError as exc:
+        from .cli import os_error_message
+
+        raise InputError(f"cannot listen on {address}: {os_error_message(exc)}") from None
     origins = [f"{address}:{port}"] + ([f"localhost:{port}", f"127.0.0.1:{port}"]
                                        if address in LOOPBACK else [])
     kw = {}
     if token:
-        kw.update(basic_auth=str(token), cookie_secret=secrets.token_hex(32))
+        kw.update(auth_provider=_token_auth_provider(token), cookie_secret=secrets.token_hex(32))
 
     def page():
         return Workbench(case, data_dirs=data_dirs, output_dir=output_dir).layout
 
-    server = pn.serve({"/": page}, port=port, address=address, websocket_origin=origins,
-                      show=show, start=False, title="PV Workbench", verbose=False, **kw)
+    try:
+        server = pn.serve({"/": page}, port=port, address=address, websocket_origin=origins,
+                          show=show, start=False, title="PV Workbench", verbose=False, **kw)
+    except OSError as exc:  # port in use, address not on this machine
+        from .cli import os_error_message
+
+        raise InputError(f"cannot listen on {address} port {port}: {os_error_message(exc)}") from None
     host = f"[{address}]" if ":" in address else address
     if verbose:
         print(f"PV Workbench at http://{host}:{server.port}/", flush=True)
@@ -1174,20 +1260,28 @@ def serve(case=None, address="127.0.0.1", port=0, data_dirs=None, token=None, sh
 
 
 def main(argv=None):
-    """``pvwb serve [CASE] [--port N] [--address A --token T] [--data-dir D ...]
-    [--output-dir O]``."""
+    """``pvwb serve [CASE] [--port N] [--address A] [--token-file F] [--data-dir D ...]
+    [--output-dir O] [--region W,E,S,N] [--times SPEC]``.
+
+    The token (needed off loopback, optional on it) comes from the environment variable
+    PVWB_TOKEN or from ``--token-file``, never from the command line, where every user of the
+    machine could read it in the process list; ``--token`` is refused with that explanation.
+    """
+    from . import cli
+
     argv = list(sys.argv[1:] if argv is None else argv)
     if argv and argv[0] == "serve":
         argv = argv[1:]
-    ap = argparse.ArgumentParser(prog="pvwb serve",
-                                 description="Serve the PV Workbench page in a browser.")
+    ap = cli.build_parser("pvwb serve", "Serve the PV Workbench page in a browser.")
     ap.add_argument("case", nargs="?", help="case file (netCDF, GRIB2 or Zarr)")
-    ap.add_argument("--port", type=int, default=0, help="port (default: a free one)")
-    ap.add_argument("--address", default="127.0.0.1",
-                    help="address to bind (default 127.0.0.1; others need --token)")
-    ap.add_argument("--token", "--password", dest="token",
-                    default=os.environ.get("PVWB_TOKEN"),
-                    help="secret the page asks for (or env PVWB_TOKEN); required off loopback")
+    cli.add_selection_options(ap)
+    ap.add_argument("--port", type=cli.port_number, default=0,
+                    help="port 1..65535 (default 0: any free port)")
+    ap.add_argument("--address", type=cli.host_address, default="127.0.0.1",
+                    help=f"address to bind (default 127.0.0.1; others need a token: {TOKEN_ENV} or --token-file)")
+    ap.add_argument("--token-file", dest="token_file", metavar="FILE",
+                    help=f"file whose first line is the secret the page asks for (default: env {TOKEN_ENV})")
+    ap.add_argument("--token", "--password", dest="cmdline_token", metavar="SECRET", help=argparse.SUPPRESS)
     ap.add_argument("--data-dir", action="append", dest="data_dirs",
                     help="folder the page may open files from (repeatable; default: the "
                          "case's folder)")
@@ -1197,15 +1291,28 @@ def main(argv=None):
     ap.add_argument("--show", action="store_true", help="open a browser tab")
     args = ap.parse_args(argv)
     try:
-        check_binding(args.address, args.token)
+        if args.cmdline_token is not None:
+            raise InputError(f"a token on the command line is visible to every user in the process list; put it "
+                             f"in the environment variable {TOKEN_ENV} or in a file given with --token-file")
+        token = read_token(args.token_file)
+        os.environ.pop(TOKEN_ENV, None)  # not inherited by child processes
+        check_binding(args.address, token)
         if args.data_dirs:
             for d in args.data_dirs:
                 if not Path(d).expanduser().is_dir():
                     raise InputError(f"data folder {d!r} does not exist; give an existing folder")
-        serve(args.case, address=args.address, port=args.port, data_dirs=args.data_dirs,
-              token=args.token, show=args.show, output_dir=args.output_dir)
+        if args.output_dir is not None and not Path(args.output_dir).expanduser().is_dir():
+            raise InputError(f"output folder {args.output_dir!r} does not exist; create it first")
+        case = args.case
+        sel = cli.selection_options(args)
+        if case is not None and sel:
+            from .io import open_case
+
+            case = open_case(case, **sel)
+        serve(case, address=args.address, port=args.port, data_dirs=args.data_dirs,
+              token=token, show=args.show, output_dir=args.output_dir)
     except WorkbenchError as exc:
-        print(f"pvwb serve: {exc}", file=sys.stderr)
+        print(f"pvwb serve: error: {cli.one_line(exc)}", file=sys.stderr)
         return 2
     return 0
 

@@ -21,7 +21,6 @@ Command line (wired to ``pvwb brief``)::
 """
 from __future__ import annotations
 
-import argparse
 import dataclasses
 import math
 import sys
@@ -347,8 +346,10 @@ def _notes(caught) -> list[str]:
     return out
 
 
-def briefing_figures(case, state) -> list:
+def briefing_figures(case, state, progress=None) -> list:
     """The briefing's pages as matplotlib Figures (title, maps, sections, attribution).
+
+    ``progress``: optional callable, called once per page made (the command line's bar).
 
     Warnings the package raises while computing (e.g. a domain where constant-f0 QG is
     rough) are listed on the title page under "Notes from the computation"."""
@@ -365,6 +366,8 @@ def briefing_figures(case, state) -> list:
         md_kwargs = {k: v for k, v in view.items() if k not in ("case", "sections")}
         pages.append(static.draw_map(static.map_data(case, **md_kwargs), settings,
                                      page_size=PAGE))
+        tick = progress or (lambda: None)
+        tick()
         if view["surface"] != "tropopause":
             trop = dict(md_kwargs, field="potential_temperature", surface="tropopause")
             trop_settings = dataclasses.replace(settings, contour_field=None, levels=None,
@@ -372,19 +375,23 @@ def briefing_figures(case, state) -> list:
             trop["settings"] = trop_settings
             pages.append(static.draw_map(static.map_data(case, **trop), trop_settings,
                                          page_size=PAGE))
+            tick()
         for k in range(len(state.sections)):
             pages.append(static.draw_section(static.state_section_data(state, k), settings,
                                              page_size=PAGE))
+            tick()
         fig, _ = _table_page(case, state)
         pages.append(fig)
     return [_title_page(case, state, utc_now_iso(), _notes(caught))] + pages
 
 
-def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: bool = False) -> Path:
+def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: bool = False,
+                  progress=None) -> Path:
     """Write the briefing PDF of ``case`` with a State (or a session file/dict) to ``path``.
 
     Refuses (ExportError) an existing ``path`` unless ``overwrite=True``; the file
-    appears only when complete. Returns the path.
+    appears only when complete. Returns the path. ``progress``: optional callable, called
+    once per page made and once per page written.
     """
     from matplotlib.backends.backend_pdf import PdfPages
     import matplotlib
@@ -399,7 +406,7 @@ def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: b
             "it, or choose another name"
         )
     with matplotlib.rc_context({"pdf.fonttype": 42}):
-        pages = briefing_figures(case, state)
+        pages = briefing_figures(case, state, progress=progress)
         with atomic_target(path, overwrite=overwrite, error=ExportError, what="briefing") as tmp:
             meta = {
                 "Title": f"PV diagnosis briefing: {case.name}",
@@ -411,34 +418,57 @@ def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: b
             with PdfPages(tmp, metadata=meta) as pdf:
                 for fig in pages:
                     pdf.savefig(fig)
+                    if progress is not None:
+                        progress()
     return path
 
 
 def main(argv=None) -> int:
-    """``pvwb brief CASE --session FILE -o brief.pdf [--overwrite]``; returns an exit code."""
+    """``pvwb brief [CASE] [--region W,E,S,N] [--times SPEC] [--session FILE] -o brief.pdf
+    [--overwrite] [--quiet]``; returns an exit code (2 with a one-line message on errors)."""
+    from workbench import cli
+
     argv = list(sys.argv[1:] if argv is None else argv)
     if argv and argv[0] == "brief":
         argv = argv[1:]
-    ap = argparse.ArgumentParser(
-        prog="pvwb brief",
-        description="Make a multi-page briefing PDF (maps, sections, attribution) from a case "
-                    "and a saved session. " + CAUTION,
+    ap = cli.build_parser(
+        "pvwb brief",
+        "Make a multi-page briefing PDF (maps, sections, attribution) from a case "
+        "and a saved session. " + CAUTION,
     )
     ap.add_argument("case", nargs="?", help="case file (netCDF, GRIB2 or Zarr; default: the invented "
                     "sample storm)")
+    cli.add_selection_options(ap)
     ap.add_argument("--session", "-s", help="session file (JSON) saved from the workbench (default: the "
                     "standard pieces at the time of the deepest low, target at the storm centre)")
     ap.add_argument("-o", "--output", default="briefing.pdf", help="output PDF (default briefing.pdf)")
     ap.add_argument("--overwrite", action="store_true", help="replace the output if it exists")
+    ap.add_argument("--accept-modified-session", action="store_true",
+                    help="use a session file that was changed after it was saved (or has no "
+                         "body checksum); without this it is refused")
+    ap.add_argument("--quiet", action="store_true", help="no progress bar")
     args = ap.parse_args(argv)
     try:
         from workbench.analysis import default_case_path
         from workbench.io import open_case
 
-        case = open_case(args.case or default_case_path())
-        out = make_briefing(case, args.session, args.output, overwrite=args.overwrite)
+        cli.check_output(args.output, args.overwrite, suffixes=(".pdf",), what="briefing")
+        if args.session is not None and not Path(args.session).expanduser().is_file():
+            raise ExportError(f"--session {args.session!r} is not a file; give a session saved from the workbench")
+        case = open_case(args.case or default_case_path(), **cli.selection_options(args))
+        session = args.session
+        if session and args.accept_modified_session:
+            from workbench.session import load_session
+
+            session = load_session(session, case=case, accept_modified=True)
+        bar = cli.progress(desc="briefing", unit="page", enabled=False if args.quiet else None)
+        try:
+            out = make_briefing(case, session, args.output, overwrite=args.overwrite,
+                                progress=lambda: bar.update(1))
+        finally:
+            bar.close()
     except WorkbenchError as exc:
-        print(f"pvwb brief: error: {exc}", file=sys.stderr)
+        print(f"pvwb brief: error: {cli.one_line(exc)}", file=sys.stderr)
         return 2
     print(f"briefing written to {out}")
     return 0

@@ -638,6 +638,9 @@ class State(param.Parameterized):
 
         if not isinstance(d, dict):
             raise InputError("a workbench state must be a JSON object (dict)")
+        from .session import check_caps
+
+        check_caps(d)  # counts and sizes first: nothing expensive on an oversized state
         api = _piece_api()
         st = cls(case=case)
         ti = int(d.get("time_index", 0))

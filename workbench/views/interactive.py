@@ -37,6 +37,7 @@ from ..export import CAUTION, invented_label
 from .fields import FIELDS
 from ..sections import great_circle_path
 from ..state import surface_label
+from ..textsafe import escape
 
 __all__ = ["MapView", "SectionView", "palette", "field_style", "coastline_lines", "FIELD_LABELS",
            "MODES"]
@@ -800,8 +801,8 @@ def _legend_below(fig):
 def caution_html(case) -> str:
     """The caution line (and the invented-case label) for the page header."""
     inv = invented_label(case)
-    extra = f" <b>{inv}</b>" if inv else ""
-    return f"<span style='font-size:12px;color:#6b4e00'>⚠ {CAUTION}{extra}</span>"
+    extra = f" <b>{escape(inv)}</b>" if inv else ""
+    return f"<span style='font-size:12px;color:#6b4e00'>⚠ {escape(CAUTION)}{extra}</span>"
 
 
 def _shade_cells(fig, d, p, values, mapper):
