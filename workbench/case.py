@@ -23,6 +23,11 @@ __all__ = ["Case", "MAP_FIELDS", "REFERENCE_KINDS"]
 MAP_FIELDS = ("ertel_pv", "ertel_pv_anomaly", "potential_temperature", "pressure", "wind_speed",
               "geopotential_height", "u", "v")
 REFERENCE_KINDS = ("time_mean", "area_mean", "zonal_mean")
+#: A one-time case's default reference is the zonal mean when the domain is at least this wide
+#: (km along the central latitude: about one synoptic wavelength), else the area mean.
+ZONAL_MEAN_MIN_WIDTH_KM = 4000.0
+#: Eager missing-value census at open time only below this many bytes of 3-D fields.
+CENSUS_MAX_BYTES = 256e6
 
 
 class _Cache:
@@ -33,12 +38,14 @@ class _Cache:
         self._lock = threading.RLock()
         self.maxsize = maxsize
 
-    def get(self, key, make):
+    def get(self, key, make, store=True):
         with self._lock:
             if key in self._d:
                 self._d.move_to_end(key)
                 return self._d[key]
         value = make()
+        if not store:
+            return value
         with self._lock:
             self._d[key] = value
             while len(self._d) > self.maxsize:
@@ -76,11 +83,126 @@ class Case:
         # default reference ...): one plain sentence each, shown in every summary
         raw_notes = data.attrs.get("workbench_notes", "")
         self.notes = [n for n in (raw_notes.split("\n") if isinstance(raw_notes, str) else list(raw_notes)) if n]
+        self._note_slots = {}
+        self._census = {}
+        self._census_complete = False
+        if self.times.size == 1:
+            self.add_note(f"One time in the file: the default reference state is the "
+                          f"{self.default_reference.replace('_', ' ')} of that time "
+                          f"(domain {self.width_km:.0f} km wide); 'time_mean' needs several times.")
+        self._missing_census()
 
     def add_note(self, text: str) -> None:
         """Record one sentence about how the data were handled (shown in the case summary)."""
         if text and text not in self.notes:
             self.notes.append(str(text))
+
+    def _set_note(self, slot, text):
+        """Replace this case's own note for ``slot`` (e.g. the running missing-value count)."""
+        old = self._note_slots.get(slot)
+        if old in self.notes:
+            self.notes[self.notes.index(old)] = text
+        else:
+            self.notes.append(text)
+        self._note_slots[slot] = text
+
+    # --- terrain and missing values -----------------------------------------------------
+    def _missing_census(self):
+        """Count below-ground, filled and unfilled points (notes). Every time is examined at
+        open when the 3-D fields are small (CENSUS_MAX_BYTES); otherwise times are counted as
+        they are loaded and the note says so."""
+        names = [n for n in self.data.data_vars if "pressure" in self.data[n].dims]
+        if not names:
+            return
+        check = self.data[names].isnull().any(("pressure", "latitude", "longitude"))
+        has_nan = check.to_array().any()
+        if "surface_pressure" in self.data:
+            under = (self.data["pressure"] > self.data["surface_pressure"]).any()
+            has_nan = has_nan | under
+        nbytes = sum(self.data[n].size * 8 for n in names)
+        if nbytes > CENSUS_MAX_BYTES:
+            self._set_note("missing", "Missing values and terrain are handled by the terrain rule as "
+                           "times are loaded (counts appear here as they are).")
+            return
+        if not bool(has_nan):
+            self._census_complete = True
+            return
+        members = [None] if self.members is None else range(len(self.members))
+        for ti in range(self.times.size):
+            for mi in members:
+                self._complete(ti, mi, store=False)
+        self._census_complete = True
+        self._update_missing_notes()
+
+    def _record(self, ti, mi, info):
+        self._census[(ti, mi)] = {k: info[k] for k in ("n_below_ground", "n_filled", "n_gap_points",
+                                                       "largest_gap")}
+        self._update_missing_notes()
+
+    def _update_missing_notes(self):
+        c = self._census
+        if not c:
+            return
+        nsel = self.times.size * (1 if self.members is None else len(self.members))
+        scope = (f"{{k}} of {nsel} fields" if self.members is not None else f"{{k}} of {nsel} times")
+        so_far = "" if len(c) >= nsel else f" (counted over the {len(c)} loaded so far)"
+        below = {k: v["n_below_ground"] for k, v in c.items() if v["n_below_ground"]}
+        filled = {k: v["n_filled"] for k, v in c.items() if v["n_filled"]}
+        gaps = {k: v["n_gap_points"] for k, v in c.items() if v["n_gap_points"]}
+        if below:
+            self._set_note("terrain", (
+                f"Terrain: {sum(below.values())} grid values lie below the ground at "
+                f"{scope.format(k=len(below))}{so_far} (missing from the lowest level up"
+                + (", or under the surface pressure" if "surface_pressure" in self.data else "")
+                + "); the physics uses them extrapolated (temperature with the standard lapse rate "
+                "6.5 K/km, geopotential by the hypsometric equation, winds and humidity held at the "
+                "lowest level above the ground) and maps and sections mask them."))
+        if filled:
+            self._set_note("filled", (
+                f"Missing values: {sum(filled.values())} scattered points (gaps of at most "
+                f"{physics.MAX_GAP_POINTS} points on a level) at {scope.format(k=len(filled))}{so_far} "
+                "were filled from their neighbours on the same level; Case.filled_points flags them."))
+        if gaps:
+            big = max(v["largest_gap"] for v in c.values())
+            self._set_note("gaps", (
+                f"Missing values: {sum(gaps.values())} points in gaps larger than "
+                f"{physics.MAX_GAP_POINTS} points (largest {big}) at {scope.format(k=len(gaps))}{so_far} "
+                "stay missing; the inversion refuses those times."))
+
+    def _complete(self, ti, mi, store=True):
+        """(fields, info) of one time and member after the terrain and missing-value rule."""
+        def make():
+            sel = self.data.isel(time=ti)
+            if mi is not None:
+                sel = sel.isel(member=mi)
+            out, info = physics.complete_fields(sel.astype("float64").load())
+            self._record(ti, mi, info)
+            return out, info
+
+        return self._cache.get(("at", ti, mi), make, store)
+
+    def raw(self, time=None, member=None) -> xr.Dataset:
+        """The file's own values at one time (and member), float64, NaN where missing."""
+        ti, mi = self._key(time, member)
+        sel = self.data.isel(time=ti)
+        if mi is not None:
+            sel = sel.isel(member=mi)
+        return sel.astype("float64").load()
+
+    def below_ground(self, time=None, member=None) -> xr.DataArray:
+        """Boolean mask (pressure, latitude, longitude): True below the ground (the terrain rule,
+        :func:`workbench.physics.below_ground`). Views mask these points."""
+        return self._complete(*self._key(time, member))[1]["below_ground"]
+
+    def filled_points(self, time=None, member=None) -> xr.DataArray:
+        """Boolean mask (pressure, latitude, longitude): True where a scattered missing value
+        was filled from its neighbours (any variable)."""
+        return self._complete(*self._key(time, member))[1]["filled"]
+
+    def missing_info(self, time=None, member=None) -> dict:
+        """Masks and counts of the terrain and missing-value rule for one time (see
+        :func:`workbench.physics.complete_fields`)."""
+        return dict(self._complete(*self._key(time, member))[1])
 
     # --- metadata ----------------------------------------------------------------------
     @property
@@ -105,6 +227,34 @@ class Case:
     def central_latitude(self):
         d = self.domain
         return 0.5 * (d["lat_min"] + d["lat_max"])
+
+    @property
+    def width_km(self):
+        """East-west extent of the domain along its central latitude (km)."""
+        from .units import EARTH_RADIUS
+
+        d = self.domain
+        return float(EARTH_RADIUS * np.cos(np.deg2rad(self.central_latitude))
+                     * np.deg2rad(d["lon_max"] - d["lon_min"]) / 1000.0)
+
+    @property
+    def default_reference(self) -> str:
+        """The reference used when none is given: "time_mean" for several times; for one time
+        "zonal_mean" when the domain is at least ZONAL_MEAN_MIN_WIDTH_KM wide, else "area_mean"."""
+        if self.times.size > 1:
+            return "time_mean"
+        return "zonal_mean" if self.width_km >= ZONAL_MEAN_MIN_WIDTH_KM else "area_mean"
+
+    def resolve_reference(self, reference=None):
+        """``reference`` as used: None -> :attr:`default_reference`; "time_mean" on a one-time
+        case is refused (every anomaly would be zero)."""
+        if reference is None:
+            return self.default_reference
+        if isinstance(reference, str) and reference == "time_mean" and self.times.size < 2:
+            raise InputError(
+                "This case has one time, so reference 'time_mean' would make every anomaly zero: "
+                "use 'zonal_mean' or 'area_mean' (of this time) or the path of a climatology file.")
+        return reference
 
     @property
     def f0(self):
@@ -132,7 +282,8 @@ class Case:
                     levels_hpa=[float(x) for x in self.levels_hpa], domain=d,
                     grid=dict(nz=self.data.sizes["pressure"], ny=self.data.sizes["latitude"],
                               nx=self.data.sizes["longitude"]),
-                    variables=self.variables, invented=self.invented, notes=list(self.notes))
+                    variables=self.variables, invented=self.invented,
+                    default_reference=self.default_reference, notes=list(self.notes))
 
     def __repr__(self):
         s = self.summary()
@@ -198,16 +349,11 @@ class Case:
         return self.time_index(time), self.member_index(member)
 
     def at(self, time=None, member=None) -> xr.Dataset:
-        """The case's fields at one time (and member), loaded, float64."""
-        ti, mi = self._key(time, member)
-
-        def make():
-            sel = self.data.isel(time=ti)
-            if mi is not None:
-                sel = sel.isel(member=mi)
-            return sel.astype("float64").load()
-
-        return self._cache.get(("at", ti, mi), make)
+        """The case's fields at one time (and member), loaded, float64, complete: scattered
+        gaps filled and below-ground values extrapolated by the terrain rule (DEVELOPERS.md,
+        "Terrain and missing values"); :meth:`below_ground` gives the mask, :meth:`raw` the
+        file's values. Gaps larger than the fill limit stay NaN."""
+        return self._complete(*self._key(time, member))[0]
 
     # --- derived fields ----------------------------------------------------------------
     def theta(self, time=None, member=None) -> xr.DataArray:
@@ -225,7 +371,10 @@ class Case:
 
         return self._cache.get(("pv", ti, mi), make)
 
-    def _pressure_fields(self, ti, mi):
+    def _pressure_fields(self, ti, mi, masked=False):
+        if masked:
+            bg = self.below_ground(ti, mi)
+            return self._pressure_fields(ti, mi).where(~bg)
         ds = self.at(ti, mi)
         out = xr.Dataset(dict(temperature=ds["temperature"], u=ds["u"], v=ds["v"],
                               geopotential=ds["geopotential"],
@@ -244,28 +393,31 @@ class Case:
         return f["relative_humidity"] if "relative_humidity" in f else None
 
     def isentropic(self, theta_levels, time=None, member=None) -> xr.Dataset:
-        """PV, pressure, winds and height on isentropic surfaces (K)."""
+        """PV, pressure, winds and height on isentropic surfaces (K); NaN where the surface
+        lies below the ground (the inputs are masked by :meth:`below_ground`)."""
         ti, mi = self._key(time, member)
         levels = tuple(float(x) for x in np.atleast_1d(theta_levels))
 
         def make():
-            return physics.isentropic_interpolation(self._pressure_fields(ti, mi), levels)
+            return physics.isentropic_interpolation(self._pressure_fields(ti, mi, masked=True), levels)
 
         return self._cache.get(("isen", ti, mi, levels), make)
 
     def tropopause(self, time=None, member=None, threshold=2.0) -> xr.Dataset:
-        """The dynamic tropopause (|PV| = threshold PVU, searched downward from the top)."""
+        """The dynamic tropopause (|PV| = threshold PVU, searched downward from the top); only
+        level pairs above the ground count (PV masked by :meth:`below_ground`)."""
         ti, mi = self._key(time, member)
         thr = float(threshold)
-        return self._cache.get(("trop", ti, mi, thr),
-                               lambda: physics.dynamic_tropopause(self.at(ti, mi), self.pv(ti, mi), thr))
+        return self._cache.get(("trop", ti, mi, thr), lambda: physics.dynamic_tropopause(
+            self.at(ti, mi), self.pv(ti, mi).where(~self.below_ground(ti, mi)), thr))
 
-    def map_field(self, field, surface, time=None, member=None, *, reference="time_mean",
+    def map_field(self, field, surface, time=None, member=None, *, reference=None,
                   threshold=2.0) -> xr.DataArray:
-        """One 2-D field (latitude, longitude) for a map.
+        """One 2-D field (latitude, longitude) for a map; NaN below the ground.
 
         ``field`` is one of :data:`MAP_FIELDS`; ``surface`` a theta value in K, ``"tropopause"``
-        or a pressure level such as ``"500hPa"``.
+        or a pressure level such as ``"500hPa"``; ``reference`` (for anomalies) None means
+        :attr:`default_reference`.
         """
         if field not in MAP_FIELDS:
             raise InputError(f"Unknown map field {field!r}; choose one of {', '.join(MAP_FIELDS)}.")
@@ -315,28 +467,41 @@ class Case:
                 out.attrs = dict(long_name="Ertel PV anomaly", units="PVU")
             else:
                 out = f[field]
+            out = out.where(~self.below_ground(ti, mi).isel(pressure=k))
             label = f"{value:g} hPa"
         out = out.drop_vars([c for c in out.coords if c not in ("latitude", "longitude")])
         out.attrs = dict(out.attrs, surface=label, field=field)
         return out.rename(field)
 
     # --- reference state and QG ---------------------------------------------------------
-    def reference(self, kind="time_mean") -> xr.Dataset:
+    def reference(self, kind=None) -> xr.Dataset:
         """Reference state for anomalies: temperature, geopotential, u, v on (pressure, lat, lon).
 
-        ``kind``: "time_mean" (mean over the case's times and members), "area_mean" (the
-        area mean of the time mean at each level, horizontally uniform), "zonal_mean" (the zonal
-        mean of the time mean), or a climatology as a Dataset or a path (normalised and
-        interpolated to the case grid; its time mean is used).
+        ``kind``: None (the case's :attr:`default_reference`), "time_mean" (mean over the
+        case's times and members; refused for a one-time case), "area_mean" (the area mean of
+        the time mean at each level, horizontally uniform), "zonal_mean" (the zonal mean of the
+        time mean), or a climatology as a Dataset, Case or path (normalised, its time mean
+        interpolated to the case grid: linear in latitude/longitude, linear in ln p; longitudes
+        are matched across conventions such as 0..360 and -180..180). The means are taken over
+        the complete fields (terrain rule).
         """
+        kind = self.resolve_reference(kind)
         key = ("ref", _ref_key(kind))
 
         def make():
             vars_ = ["temperature", "geopotential", "u", "v"]
             if isinstance(kind, str) and kind in REFERENCE_KINDS:
-                base = self.data[vars_]
-                dims = [d for d in ("time", "member") if d in base.dims]
-                mean = base.mean(dims, keep_attrs=True).astype("float64").load()
+                members = [None] if self.members is None else range(len(self.members))
+                total, n = None, 0
+                for ti in range(self.times.size):
+                    for mi in members:
+                        ds = self._complete(ti, mi, store=False)[0][vars_]
+                        total = ds if total is None else total + ds
+                        n += 1
+                mean = (total / n)
+                mean = mean.drop_vars([c for c in mean.coords if c not in ("pressure", "latitude", "longitude")])
+                for v in vars_:
+                    mean[v].attrs = dict(self.data[v].attrs)
                 if kind == "area_mean":
                     mean = xr.Dataset({v: physics.area_mean(mean[v]).broadcast_like(mean[v]).assign_attrs(
                         mean[v].attrs) for v in vars_})
@@ -350,24 +515,50 @@ class Case:
                 if not os.path.exists(kind):
                     raise InputError(f"Unknown reference {kind!r}: use one of {', '.join(REFERENCE_KINDS)} "
                                      "or the path of a climatology file.")
-            from .io import open_case
-
-            clim = open_case(kind).data if not isinstance(kind, Case) else kind.data
-            dims = [d for d in ("time", "member") if d in clim.dims]
-            clim = clim[vars_].mean(dims, keep_attrs=True)
-            try:
-                clim = clim.interp(pressure=self.data["pressure"], latitude=self.data["latitude"],
-                                   longitude=self.data["longitude"])
-            except Exception as exc:
-                raise GridError(f"The climatology cannot be interpolated to the case grid: {exc}") from exc
-            if bool(clim["temperature"].isnull().all()):
-                raise GridError("The climatology does not cover the case's domain and levels.")
-            return clim.astype("float64").load().transpose("pressure", "latitude", "longitude").drop_vars(
-                [c for c in clim.coords if c not in ("pressure", "latitude", "longitude")])
+            return self._climatology(kind, vars_)
 
         return self._cache.get(key, make)
 
+    def _climatology(self, kind, vars_):
+        from .io import open_case
+
+        label = kind if isinstance(kind, str) else "the climatology"
+        clim = open_case(kind).data if not isinstance(kind, Case) else kind.data
+        missing = [v for v in vars_ if v not in clim]
+        if missing:
+            raise InputError(f"The climatology {label} lacks {', '.join(missing)}; it needs temperature, "
+                             "geopotential, u and v on pressure levels.")
+        dims = [d for d in ("time", "member") if d in clim.dims]
+        clim = clim[vars_].mean(dims, keep_attrs=True).astype("float64").load()
+        clim = _match_longitudes(clim, self.data["longitude"].values)
+        lat, lon, p = (self.data[c].values for c in ("latitude", "longitude", "pressure"))
+        clat, clon, cp = (clim[c].values for c in ("latitude", "longitude", "pressure"))
+        tol = 1e-6
+        if (lat.min() < clat.min() - tol or lat.max() > clat.max() + tol or lon.min() < clon.min() - tol
+                or lon.max() > clon.max() + tol or p.max() > cp.max() + tol or p.min() < cp.min() - tol):
+            raise GridError(
+                f"The climatology {label} covers {clat.min():g}..{clat.max():g} N, {clon.min():g}.."
+                f"{clon.max():g} E, {cp.max() / 100:g}..{cp.min() / 100:g} hPa but the case needs "
+                f"{lat.min():g}..{lat.max():g} N, {lon.min():g}..{lon.max():g} E, {p.max() / 100:g}.."
+                f"{p.min() / 100:g} hPa; make a climatology that covers the case's domain and levels.")
+        try:
+            # linear in ln p vertically, linear in latitude/longitude
+            clim = clim.assign_coords(pressure=np.log(clim["pressure"].values)).interp(
+                pressure=np.log(p), latitude=lat, longitude=lon).assign_coords(pressure=p)
+        except Exception as exc:
+            raise GridError(f"The climatology {label} cannot be interpolated to the case grid: {exc}") from exc
+        clim["pressure"].attrs = dict(self.data["pressure"].attrs)
+        clim = clim.transpose("pressure", "latitude", "longitude")
+        clim = clim.drop_vars([c for c in clim.coords if c not in ("pressure", "latitude", "longitude")])
+        clim, info = physics.complete_fields(clim)
+        if info["n_gap_points"]:
+            raise GridError(f"The climatology {label} has {info['n_gap_points']} missing values over the "
+                            "case's domain that are neither below the ground nor small gaps; fill them.")
+        return clim
+
     def _reference_pv(self, reference):
+        reference = self.resolve_reference(reference)
+
         def make():
             ref = self.reference(reference)
             return physics.ertel_pv(physics.potential_temperature(ref["temperature"]), ref["u"], ref["v"])
@@ -375,6 +566,8 @@ class Case:
         return self._cache.get(("refpv", _ref_key(reference)), make)
 
     def _reference_isentropic(self, theta, reference, ti, mi):
+        reference = self.resolve_reference(reference)
+
         def make():
             ref = self.reference(reference)
             fields = xr.Dataset(dict(temperature=ref["temperature"], ertel_pv=self._reference_pv(reference)))
@@ -383,12 +576,13 @@ class Case:
 
         return self._cache.get(("refisen", _ref_key(reference), float(theta)), make)
 
-    def sigma(self, reference="time_mean") -> xr.DataArray:
+    def sigma(self, reference=None) -> xr.DataArray:
         """Reference static stability sigma(p) from the area mean of the reference temperature."""
+        reference = self.resolve_reference(reference)
         return self._cache.get(("sigma", _ref_key(reference)),
                                lambda: physics.static_stability(self.reference(reference)["temperature"]))
 
-    def qg_grid(self, reference="time_mean"):
+    def qg_grid(self, reference=None):
         """The inversion grid (latitude, longitude, pressure, sigma, f0) for this case."""
         from .inversion.operator import QGGrid
 
@@ -397,45 +591,58 @@ class Case:
         return QGGrid(self.data["latitude"].values, self.data["longitude"].values,
                       self.data["pressure"].values, np.asarray(sig.values, dtype=float), self.f0)
 
-    def qgpv(self, time=None, member=None, reference="time_mean") -> xr.DataArray:
-        """Full QG PV q = f + (1/f0) lap(Phi) + d/dp[(f0/sigma) dPhi/dp] (s-1)."""
+    def qgpv(self, time=None, member=None, reference=None) -> xr.DataArray:
+        """Full QG PV q = f + (1/f0) lap(Phi) + d/dp[(f0/sigma) dPhi/dp] (s-1) of the complete
+        fields (terrain rule); the bottom flux takes theta of the lowest level above the ground."""
         ti, mi = self._key(time, member)
+        reference = self.resolve_reference(reference)
 
         def make():
             ds = self.at(ti, mi)
-            return physics.qg_pv(ds["geopotential"].fillna(0.0), ds["temperature"].fillna(0.0),
-                                 self.sigma(reference), self.f0)
+            self._refuse_gaps(ti, mi, "QG PV")
+            theta = physics.potential_temperature(ds["temperature"])
+            return physics.qg_pv(ds["geopotential"], ds["temperature"], self.sigma(reference), self.f0,
+                                 bottom_theta=_ground_value(theta, self.below_ground(ti, mi)))
 
         return self._cache.get(("qgpv", ti, mi, _ref_key(reference)), make)
 
-    def anomaly(self, time=None, member=None, reference="time_mean") -> xr.Dataset:
+    def anomaly(self, time=None, member=None, reference=None) -> xr.Dataset:
         """The anomaly dataset that piecewise inversion takes (see DEVELOPERS.md).
 
         Variables: ``qgpv_anomaly`` (s-1, NaN on the lateral boundary), ``bottom_theta_anomaly``
         and ``top_theta_anomaly`` (K), ``geopotential_anomaly`` (m2 s-2, data minus reference),
         ``temperature_anomaly`` (K), ``ertel_pv_anomaly`` (PVU), ``potential_temperature`` (K),
-        ``relative_humidity`` (% if available) and ``static_stability``; attrs ``f0``.
-        Missing values (below ground) in the anomalies are set to zero, and counted in the
-        attribute ``filled_points``.
+        ``relative_humidity`` (% if available), ``static_stability`` and ``below_ground``;
+        attrs ``f0``, ``reference``, ``below_ground_points``, ``filled_points``.
+
+        The anomalies are those of the complete fields (terrain rule: below-ground values
+        extrapolated, scattered gaps filled). The lower-boundary theta' of each column is the
+        theta' of its lowest level above the ground (the ground's theta' carried down to the
+        flat lower boundary); q' is computed with that same boundary value, so inverting the
+        full forcing returns the data's Phi'. Gaps too large to fill are refused (InputError).
         """
         ti, mi = self._key(time, member)
+        reference = self.resolve_reference(reference)
 
         def make():
             physics.check_qg_domain(self.data["latitude"].values)
             ds = self.at(ti, mi)
+            self._refuse_gaps(ti, mi, "The inversion")
             ref = self.reference(reference)
             sig = self.sigma(reference)
+            info = self.missing_info(ti, mi)
+            bg = info["below_ground"]
             dphi = ds["geopotential"] - ref["geopotential"]
             dt = ds["temperature"] - ref["temperature"]
-            nfill = int(dphi.isnull().sum() + dt.isnull().sum())
-            dphi, dt = dphi.fillna(0.0), dt.fillna(0.0)
-            q = physics.qg_pv(dphi, dt, sig, self.f0, include_f=False)
             pi = physics.exner(ds["pressure"])
             dth = dt / pi
+            bottom = _ground_value(dth, bg)
+            q = physics.qg_pv(dphi, dt, sig, self.f0, include_f=False, bottom_theta=bottom)
             out = xr.Dataset(dict(
                 qgpv_anomaly=q,
-                bottom_theta_anomaly=dth.isel(pressure=0, drop=True).assign_attrs(
-                    long_name="potential temperature anomaly on the lower boundary", units="K"),
+                bottom_theta_anomaly=bottom.assign_attrs(
+                    long_name="potential temperature anomaly on the lower boundary (lowest level "
+                              "above the ground)", units="K"),
                 top_theta_anomaly=dth.isel(pressure=-1, drop=True).assign_attrs(
                     long_name="potential temperature anomaly on the upper boundary", units="K"),
                 geopotential_anomaly=dphi.assign_attrs(long_name="geopotential anomaly", units="m2 s-2"),
@@ -444,28 +651,71 @@ class Case:
                     long_name="Ertel PV anomaly", units="PVU"),
                 potential_temperature=self.theta(ti, mi),
                 static_stability=sig,
+                below_ground=bg,
             ))
             rh = self.relative_humidity(ti, mi)
             if rh is not None:
                 out["relative_humidity"] = rh
             out.attrs.update(f0=self.f0, reference=str(_ref_key(reference)), time=str(self.times[ti])[:19],
-                             filled_points=nfill)
+                             below_ground_points=info["n_below_ground"], filled_points=info["n_filled"])
             return out
 
         return self._cache.get(("anom", ti, mi, _ref_key(reference)), make)
 
-    def inversion(self, pieces, time=None, member=None, reference="time_mean") -> dict:
+    def inversion(self, pieces, time=None, member=None, reference=None) -> dict:
         """Piecewise QG inversion: dict piece name -> balanced Dataset (and "total")."""
         from .inversion.pieces import Piece, invert_pieces
 
         ti, mi = self._key(time, member)
+        reference = self.resolve_reference(reference)
         plist = [p if isinstance(p, Piece) else Piece.from_dict(p) for p in pieces]
         key = ("inv", ti, mi, _ref_key(reference),
                json.dumps([p.to_dict() for p in plist], sort_keys=True, default=str))
         return self._cache.get(key, lambda: invert_pieces(self.anomaly(ti, mi, reference), plist))
 
+    def _refuse_gaps(self, ti, mi, what):
+        info = self.missing_info(ti, mi)
+        if info["n_gap_points"]:
+            gaps = info["gaps"]
+            k = int(np.argmax(gaps.sum(("latitude", "longitude")).values))
+            j, i = np.argwhere(gaps.isel(pressure=k).values)[0]
+            raise InputError(
+                f"{what} needs complete fields, but {str(self.times[ti])[:16]} has "
+                f"{info['n_gap_points']} missing values in gaps larger than {physics.MAX_GAP_POINTS} points "
+                f"(largest {info['largest_gap']}, e.g. at {float(gaps['longitude'][i]):g} E, "
+                f"{float(gaps['latitude'][j]):g} N, {float(gaps['pressure'][k]) / 100:g} hPa); "
+                "choose a region without them or fill the data.")
+
     def clear_cache(self):
         self._cache.clear()
+
+
+def _ground_value(da, below):
+    """``da`` (pressure, latitude, longitude) at each column's lowest level above the ground."""
+    k0 = np.minimum(below.sum("pressure").values, da.sizes["pressure"] - 1)
+    vals = np.asarray(da.transpose("pressure", "latitude", "longitude").values, dtype=float)
+    out = np.take_along_axis(vals, k0[None], axis=0)[0]
+    return xr.DataArray(out, dims=("latitude", "longitude"),
+                        coords={"latitude": da["latitude"], "longitude": da["longitude"]})
+
+
+def _match_longitudes(clim, lon):
+    """Put the climatology's longitudes in the case's convention (0..360 vs -180..180): a global
+    (periodic) climatology is rolled and padded one column on each side; a regional one is
+    shifted by the multiple of 360 degrees that brings it nearest the case."""
+    clon = np.asarray(clim["longitude"].values, dtype=float)
+    if clon.size > 1:
+        dlon = float(np.median(np.diff(clon)))
+        if clon[-1] - clon[0] + dlon >= 360.0 - 1e-6:
+            lo = float(np.min(lon))
+            new = lo + np.mod(clon - lo, 360.0)
+            order = np.argsort(new)
+            clim = clim.isel(longitude=order).assign_coords(longitude=new[order])
+            first, last = clim.isel(longitude=[0]), clim.isel(longitude=[-1])
+            return xr.concat([last.assign_coords(longitude=last["longitude"] - 360.0), clim,
+                              first.assign_coords(longitude=first["longitude"] + 360.0)], "longitude")
+    shift = 360.0 * np.round((0.5 * (np.min(lon) + np.max(lon)) - 0.5 * (clon.min() + clon.max())) / 360.0)
+    return clim.assign_coords(longitude=clon + shift)
 
 
 def _ref_key(kind):

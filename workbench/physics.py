@@ -23,7 +23,8 @@ from .units import EARTH_RADIUS, G, KAPPA, P0, PVU, RD, coriolis
 __all__ = [
     "potential_temperature", "exner", "ertel_pv", "isentropic_interpolation", "dynamic_tropopause",
     "static_stability", "area_mean", "qg_pv", "relative_humidity", "geopotential_height",
-    "wind_speed", "horizontal_gradient",
+    "wind_speed", "horizontal_gradient", "below_ground", "complete_fields", "standard_lapse_extrapolation",
+    "LAPSE_RATE", "MAX_GAP_POINTS",
 ]
 
 
@@ -89,7 +90,7 @@ def ertel_pv(theta: xr.DataArray, u: xr.DataArray, v: xr.DataArray) -> xr.DataAr
     with zeta_p = dv/dx - du/dy + u tan(phi)/a on the sphere and f from the latitude.
     Vertical derivatives are taken in ln p, horizontal ones on the sphere, all centred
     (second-order, second-order one-sided at the edges). Works on numpy- or dask-backed arrays
-    with any leading dimensions.
+    with any leading dimensions. PV is missing (NaN) on a pole row (|latitude| = 90).
     """
     # vertical derivatives in ln p (d/dp = (1/p) d/dlnp): second-order accurate and far less
     # sensitive to coarse level spacing aloft, where theta ~ p^-kappa
@@ -106,8 +107,11 @@ def ertel_pv(theta: xr.DataArray, u: xr.DataArray, v: xr.DataArray) -> xr.DataAr
     zeta = (dv_dx - du_dy + u * tanlat / EARTH_RADIUS).transpose(*u.dims)
     f = xr.DataArray(coriolis(lat.values), dims="latitude", coords={"latitude": lat})
     pv = (-G * ((zeta + f) * dth_dp - dv_dp * dth_dx + du_dp * dth_dy) / PVU).transpose(*theta.dims)
+    # the latitude-longitude grid is singular at the pole (tan and 1/cos blow up): PV is set
+    # missing on a pole row rather than reported as ~1e12 PVU
+    pv = pv.where(np.abs(lat) < 90.0 - 1e-6)
     pv.attrs = dict(standard_name="ertel_potential_vorticity", long_name="Ertel potential vorticity",
-                    units="PVU")
+                    units="PVU", pole_rule="missing on |latitude| = 90")
     return pv.rename("ertel_pv")
 
 
@@ -283,14 +287,16 @@ def check_qg_domain(latitude) -> None:
 
 
 def qg_pv(geopotential: xr.DataArray, temperature: xr.DataArray, sigma: xr.DataArray, f0: float,
-          *, include_f: bool = True) -> xr.DataArray:
+          *, include_f: bool = True, bottom_theta=None) -> xr.DataArray:
     """QG PV q = f + (1/f0) lap(Phi) + d/dp[(f0/sigma) dPhi/dp] (s-1), Holton & Hakim ch. 6.
 
     Discretised with the inversion's own operator (DEVELOPERS.md, "QG discretisation"): the
     bottom and top half cells take their outer flux from the hydrostatic relation
     dPhi/dp = -(R_d/p) Pi theta with theta from ``temperature`` at those levels. With anomalies
     (Phi', T') and ``include_f=False`` this is exactly the right-hand side whose inversion returns
-    Phi'. Lateral boundary nodes are NaN.
+    Phi'. Lateral boundary nodes are NaN. ``bottom_theta`` (K, dims latitude, longitude and any
+    leading dims) replaces the lowest level's theta in the bottom flux (the Case passes the
+    theta of the lowest level above the ground, see "Terrain and missing values").
     """
     from .inversion.operator import QGGrid, apply_qg_operator
 
@@ -300,10 +306,205 @@ def qg_pv(geopotential: xr.DataArray, temperature: xr.DataArray, sigma: xr.DataA
     theta = potential_temperature(temperature)
     th = np.asarray(theta.values, dtype=float)
     phi = np.asarray(geopotential.values, dtype=float)
-    q = apply_qg_operator(grid, phi, bottom_theta=th[..., 0, :, :], top_theta=th[..., -1, :, :])
+    bt = th[..., 0, :, :] if bottom_theta is None else np.asarray(bottom_theta, dtype=float)
+    q = apply_qg_operator(grid, phi, bottom_theta=bt, top_theta=th[..., -1, :, :])
     if include_f:
         q = q + coriolis(geopotential["latitude"].values)[:, None]
     out = geopotential.copy(data=q)
     out.attrs = dict(long_name="quasi-geostrophic potential vorticity" + ("" if include_f else " anomaly"),
                      units="s-1", f0=float(f0))
     return out.rename("qgpv" if include_f else "qgpv_anomaly")
+
+
+# --- terrain and missing values ----------------------------------------------------------
+#
+# One rule, used by the Case for every time it loads (DEVELOPERS.md, "Terrain and missing
+# values"):
+#
+# * below ground: a point whose core value (temperature, geopotential, u or v) is missing
+#   there and at every level beneath it in its column (GRIB bitmaps, CF _FillValue), or whose
+#   pressure exceeds the surface pressure when ``surface_pressure`` is present. A column with
+#   no valid level at all is a gap, not terrain.
+# * scattered gaps: missing points above the ground that form clusters of at most
+#   MAX_GAP_POINTS points on one level (8-connected) are filled from valid neighbours on the
+#   same level: the mean of the linear interpolants along longitude and along latitude
+#   (xarray ``interpolate_na``, runs of at most MAX_GAP_RUN points), where neither exists the
+#   nearest valid value (``scipy.ndimage.distance_transform_edt``). Larger gaps stay missing.
+# * below-ground values are extrapolated from the lowest level above ground: temperature with
+#   the standard-atmosphere lapse rate, geopotential by the hypsometric equation with that
+#   temperature profile (closed form for a constant lapse rate), every other variable
+#   (winds, humidity) held at its lowest above-ground value.
+
+#: Standard-atmosphere lapse rate (K m-1): ICAO Standard Atmosphere / U.S. Standard Atmosphere 1976.
+LAPSE_RATE = 0.0065
+#: Largest cluster of scattered missing points (on one level, 8-connected) that is filled.
+MAX_GAP_POINTS = 9
+#: Longest run along longitude or latitude bridged by linear interpolation when filling.
+MAX_GAP_RUN = 3
+#: Variables whose missing values define the ground.
+CORE_VARIABLES = ("temperature", "geopotential", "u", "v")
+
+
+def _pressure_axis(da):
+    return da.get_axis_num("pressure")
+
+
+def below_ground(ds: xr.Dataset) -> xr.DataArray:
+    """Boolean mask of points below the ground (dims of ``temperature``), by the terrain rule.
+
+    True where a core variable (temperature, geopotential, u, v) is missing at that level and
+    at every level beneath it, or where the level's pressure exceeds ``surface_pressure``
+    (Pa) when the dataset has it. Columns with no valid level are not counted as terrain.
+    """
+    ref = ds["temperature"]
+    ax = _pressure_axis(ref)
+    missing = np.zeros(ref.shape, dtype=bool)
+    for name in CORE_VARIABLES:
+        if name in ds:
+            missing |= ~np.isfinite(np.asarray(ds[name].transpose(*ref.dims).values, dtype=float))
+    from_bottom = np.cumprod(missing, axis=ax).astype(bool)
+    column_empty = missing.all(axis=ax, keepdims=True)
+    mask = from_bottom & ~column_empty
+    if "surface_pressure" in ds:
+        ps = ds["surface_pressure"]
+        if "time" in ps.dims and "time" not in ref.dims:
+            raise GridError("surface_pressure has a time dimension but the fields do not; select one time.")
+        p = ref["pressure"]
+        mask |= np.asarray((p > ps).broadcast_like(ref).transpose(*ref.dims).values, dtype=bool)
+    return xr.DataArray(mask, dims=ref.dims, coords={d: ref[d] for d in ref.dims if d in ref.coords},
+                        name="below_ground", attrs=dict(long_name="below the ground (terrain rule)"))
+
+
+def standard_lapse_extrapolation(t0, phi0, p0, p):
+    """Temperature (K) and geopotential (m2 s-2) at pressure ``p`` below a level (p0, t0, phi0).
+
+    Constant lapse rate LAPSE_RATE (ICAO / U.S. Standard Atmosphere 1976) with the hypsometric
+    equation in closed form: T = T0 (p/p0)^(R_d G/g), Phi = Phi0 + (g T0/G)(1 - (p/p0)^(R_d G/g)).
+    """
+    ratio = (np.asarray(p, dtype=float) / np.asarray(p0, dtype=float)) ** (RD * LAPSE_RATE / G)
+    t = np.asarray(t0, dtype=float) * ratio
+    phi = np.asarray(phi0, dtype=float) + G * np.asarray(t0, dtype=float) / LAPSE_RATE * (1.0 - ratio)
+    return t, phi
+
+
+def _fill_small_gaps(da: xr.DataArray, hole: np.ndarray, valid: np.ndarray):
+    """Fill ``hole`` points of ``da`` (small gaps) from ``valid`` neighbours on the same level.
+
+    Returns the filled numpy array. Mean of the linear interpolants along longitude and
+    latitude (runs up to MAX_GAP_RUN points), else the nearest valid point on the level."""
+    from scipy import ndimage
+
+    vals = np.asarray(da.values, dtype=float)
+    work = da.copy(data=np.where(valid, vals, np.nan))
+    ests = []
+    for dim in ("longitude", "latitude"):
+        est = work.interpolate_na(dim, method="linear", use_coordinate=False).values
+        # runs of missing points along ``dim`` longer than MAX_GAP_RUN are not bridged
+        line = np.zeros((3,) * vals.ndim, dtype=bool)
+        centre = [1] * vals.ndim
+        centre[da.get_axis_num(dim)] = slice(None)
+        line[tuple(centre)] = True
+        runs, _ = ndimage.label(~valid, structure=line)
+        run_len = np.bincount(runs.ravel())
+        run_len[0] = 0
+        short = run_len[runs] <= MAX_GAP_RUN
+        ests.append(np.where(hole & short, est, np.nan))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", category=RuntimeWarning)
+        est = np.nanmean(np.stack(ests), axis=0)
+    out = np.where(hole, est, vals)
+    left = hole & ~np.isfinite(out)
+    if left.any():
+        flat_v = np.where(valid, vals, np.nan).reshape((-1,) + vals.shape[-2:])
+        flat_o = out.reshape(flat_v.shape)
+        flat_l = left.reshape(flat_v.shape)
+        for n in np.nonzero(flat_l.any(axis=(1, 2)))[0]:
+            good = np.isfinite(flat_v[n])
+            if not good.any():
+                continue
+            _, (jj, ii) = ndimage.distance_transform_edt(~good, return_indices=True)
+            flat_o[n][flat_l[n]] = flat_v[n][jj[flat_l[n]], ii[flat_l[n]]]
+        out = flat_o.reshape(vals.shape)
+    return out
+
+
+def complete_fields(ds: xr.Dataset):
+    """Apply the terrain and missing-value rule to one time (dims (..., pressure, lat, lon)).
+
+    Returns ``(complete, info)``: the Dataset with scattered gaps filled and below-ground values
+    extrapolated (float64), and a dict with ``below_ground`` and ``filled`` (boolean DataArrays
+    like ``temperature``; ``filled`` is True where any variable was filled horizontally),
+    ``gaps`` (boolean: still missing, in gaps larger than MAX_GAP_POINTS), and the counts
+    ``n_below_ground``, ``n_filled``, ``n_gap_points``, ``largest_gap``.
+    """
+    from scipy import ndimage
+
+    ref = ds["temperature"]
+    dims = ref.dims
+    ax = _pressure_axis(ref)
+    mask = below_ground(ds)
+    bg = mask.values
+    out = ds.copy()
+    filled_any = np.zeros(ref.shape, dtype=bool)
+    gaps_any = np.zeros(ref.shape, dtype=bool)
+    largest = 0
+    # 8-connected on each level only (no connection across levels or leading dims)
+    structure = np.zeros((3,) * ref.ndim, dtype=bool)
+    structure[(1,) * (ref.ndim - 2)] = True
+    fields3d = [n for n in ds.data_vars if "pressure" in ds[n].dims and ds[n].ndim == ref.ndim]
+    for name in fields3d:
+        da = ds[name].transpose(*dims).astype("float64")
+        vals = np.asarray(da.values)
+        nan = ~np.isfinite(vals) & ~bg
+        if not nan.any():
+            out[name] = da
+            continue
+        labels, n = ndimage.label(nan, structure=structure)
+        sizes = np.bincount(labels.ravel())
+        sizes[0] = 0
+        small = (sizes <= MAX_GAP_POINTS)[labels] & nan
+        big = nan & ~small
+        if big.any():
+            largest = max(largest, int(sizes.max()))
+        valid = np.isfinite(vals) & ~bg
+        if small.any():
+            vals = _fill_small_gaps(da, small, valid)
+        filled_any |= small
+        gaps_any |= big
+        out[name] = da.copy(data=vals)
+    # below ground: extrapolate from the lowest level above ground (index k0 in each column)
+    if bg.any():
+        nz = ref.shape[ax]
+        k0 = bg.sum(axis=ax, keepdims=True)
+        has_anchor = k0 < nz
+        k0c = np.minimum(k0, nz - 1)
+        shape = [1] * ref.ndim
+        shape[ax] = nz
+        p = ref["pressure"].values.astype(float).reshape(shape)
+        p_anchor = np.take_along_axis(np.broadcast_to(p, ref.shape), k0c, axis=ax)
+        replace = bg & np.broadcast_to(has_anchor, ref.shape)
+        t = np.asarray(out["temperature"].values, dtype=float)
+        t_anchor = np.take_along_axis(t, k0c, axis=ax)
+        if "geopotential" in out:
+            phi = np.asarray(out["geopotential"].values, dtype=float)
+            phi_anchor = np.take_along_axis(phi, k0c, axis=ax)
+        else:
+            phi_anchor = np.zeros_like(t_anchor)
+        t_ext, phi_ext = standard_lapse_extrapolation(t_anchor, phi_anchor, p_anchor, p)
+        for name in fields3d:
+            vals = np.asarray(out[name].transpose(*dims).values, dtype=float)
+            if name == "temperature":
+                new = t_ext
+            elif name == "geopotential":
+                new = phi_ext
+            else:
+                new = np.take_along_axis(vals, k0c, axis=ax)
+            vals = np.where(replace, np.broadcast_to(new, vals.shape), np.where(bg & ~replace, np.nan, vals))
+            out[name] = out[name].transpose(*dims).copy(data=vals)
+    filled = xr.DataArray(filled_any, dims=dims, coords=mask.coords, name="filled",
+                          attrs=dict(long_name="scattered missing value filled horizontally"))
+    gaps = xr.DataArray(gaps_any, dims=dims, coords=mask.coords, name="gap",
+                        attrs=dict(long_name="missing (gap larger than the fill limit)"))
+    info = dict(below_ground=mask, filled=filled, gaps=gaps, n_below_ground=int(bg.sum()),
+                n_filled=int(filled_any.sum()), n_gap_points=int(gaps_any.sum()), largest_gap=largest)
+    return out, info
