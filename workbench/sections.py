@@ -6,6 +6,11 @@ on a sphere of the package's Earth radius (so the geodesic is a great circle) an
 fields are interpolated linearly onto it with :meth:`xarray.Dataset.interp`, the
 same construction as MetPy's ``cross_section`` (which the tests compare against).
 
+Points below the ground (the case's terrain rule, :meth:`workbench.Case.below_ground`) are
+NaN in every section variable: the below-ground mask is interpolated like the fields and a
+section point counts as below the ground where that interpolated fraction exceeds one half
+(the mask is returned as ``below_ground``).
+
 The section-normal wind is positive to the LEFT of the start -> end direction
 (looking along the section from its start): for a section drawn from west to
 east the normal wind is the northward wind.
@@ -166,6 +171,8 @@ def cross_section(case, start, end, time=None, member=None, npoints=100, results
     (distance, Pa). With ``results``: ``balanced_normal_wind`` and
     ``balanced_temperature_anomaly`` (piece, pressure, distance); with ``omega``:
     ``qg_omega`` (pressure, distance) and/or ``piece_qg_omega`` (piece, pressure, distance).
+    Every (pressure, distance) variable is NaN below the ground; ``below_ground`` (pressure,
+    distance) is the mask.
     """
     lon, lat, dist, az = great_circle_path(start, end, npoints)
     ds = case.at(time=time, member=member)
@@ -201,6 +208,7 @@ def cross_section(case, start, end, time=None, member=None, npoints=100, results
                 "azimuth": ("distance", az, {"units": "degree",
                                              "long_name": "path direction clockwise from north"})},
     )
+    below = _interp(case.below_ground(time=time, member=member).astype(float), idx) > 0.5
     out["ertel_pv"].attrs.update(units="PVU", long_name="Ertel potential vorticity")
     out["potential_temperature"].attrs.update(units="K", long_name="potential temperature")
     trop = case.tropopause(time=time, member=member, threshold=threshold)
@@ -237,6 +245,10 @@ def cross_section(case, start, end, time=None, member=None, npoints=100, results
                 compat="override").assign_attrs(
                 units="Pa s-1", long_name="quasi-geostrophic omega attributable to each piece",
                 positive="omega > 0 is descent")
+    for name in list(out.data_vars):
+        if "pressure" in out[name].dims:
+            out[name] = out[name].where(~below)
+    out["below_ground"] = below.assign_attrs(long_name="below the ground (terrain rule)")
     out = out.transpose(*[d for d in ("piece", "pressure", "distance") if d in out.dims])
     out.attrs.update(
         path="great circle (pyproj.Geod on a sphere of the mean Earth radius)",

@@ -43,7 +43,26 @@ __all__ = [
     "attribution",
     "polygon_mask",
     "Claims",
+    "SHARE_FLOORS",
+    "SHARE_RELATIVE_FLOOR",
+    "format_share",
 ]
+
+#: A share is not given (NaN) when |full-inversion value| is below this absolute floor ...
+SHARE_FLOORS = {"height_anomaly": 1.0, "relative_vorticity": 1e-6}  # m, s-1
+#: ... or below this fraction of the largest piece's magnitude (the pieces cancel).
+SHARE_RELATIVE_FLOOR = 0.05
+#: What tables show for a share that is not given.
+NO_SHARE = "\u2014"
+
+
+def format_share(value, fmt=".1f") -> str:
+    """A share (%) for a table: formatted with ``fmt``, or an em dash when it is not given (NaN)."""
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        return NO_SHARE
+    return format(v, fmt) if math.isfinite(v) else NO_SHARE
 
 KINDS = ("interior", "bottom", "top", "lateral", "remainder")
 LAYER_COORDS = ("pressure", "theta")
@@ -61,7 +80,11 @@ class Piece:
     layer : (lo, hi) or None for all levels; hPa if ``layer_coord`` is
         "pressure", K if "theta" (order of lo/hi does not matter)
     layer_coord : "pressure" or "theta"
-    sign : +1 (positive anomalies), -1 (negative), 0 (both)
+    sign : +1 (positive anomalies), -1 (negative), 0 (both): the sign of the Ertel PV
+        anomaly (interior) or of theta' (bottom/top, +1 warm) in the data, whatever the
+        hemisphere. Cyclonic (trough) PV anomalies are positive in the northern hemisphere and
+        negative in the southern, so an upper-trough piece there has sign -1
+        (``workbench.analysis.cyclonic_sign``); a warm surface anomaly is cyclonic in both.
     threshold : PVU, minimum |Ertel PV anomaly| of the sign (interior only)
     rh_min : % or None; a moist piece keeps points with RH >= rh_min
         (70-90 % is common practice)
@@ -434,6 +457,12 @@ def attribution(results: dict, lon: float, lat: float, pressure_hpa: float):
     not add), ``relative_vorticity`` (s-1), ``height_share_pct`` and
     ``vorticity_share_pct`` (% of the full inversion).  Relative vorticity is
     NaN within one grid length of the lateral boundary.
+
+    A share whose denominator is near zero is NaN (shown as an em dash by
+    :func:`format_share`): when |full-inversion value| is below ``SHARE_FLOORS`` (1 m for the
+    height anomaly, 1e-6 s-1 for vorticity) or below ``SHARE_RELATIVE_FLOOR`` (5 %) of the
+    largest piece's magnitude. ``table.attrs["share_notes"]`` says why, one sentence per column;
+    ``table.attrs["notes"]`` is a list for any caller's sentences (e.g. a moved target).
     """
     import pandas as pd
 
@@ -460,9 +489,26 @@ def attribution(results: dict, lon: float, lat: float, pressure_hpa: float):
     rows["full inversion"] = full
     df = pd.DataFrame.from_dict(rows, orient="index")
     df["wind_speed"] = np.hypot(df["u"], df["v"])
-    with np.errstate(divide="ignore", invalid="ignore"):
-        df["height_share_pct"] = 100.0 * df["height_anomaly"] / full["height_anomaly"]
-        df["vorticity_share_pct"] = 100.0 * df["relative_vorticity"] / full["relative_vorticity"]
+    share_notes = []
+    pieces_only = df.drop(index=["sum of pieces", "full inversion"])
+    for col, share, what, unit in (("height_anomaly", "height_share_pct", "height anomaly", "m"),
+                                   ("relative_vorticity", "vorticity_share_pct", "relative vorticity", "s-1")):
+        denom = full[col]
+        largest = float(np.nanmax(np.abs(pieces_only[col].values))) if len(pieces_only) else 0.0
+        floor = max(SHARE_FLOORS[col], SHARE_RELATIVE_FLOOR * largest)
+        if not math.isfinite(denom):
+            df[share] = np.nan
+            share_notes.append(f"No {what} shares: the full inversion's {what} is not available at the "
+                               "target (e.g. next to the lateral boundary).")
+        elif abs(denom) < floor:
+            df[share] = np.nan
+            share_notes.append(
+                f"No {what} shares: the full inversion's {what} at the target ({denom:+.3g} {unit}) is "
+                f"below {floor:.3g} {unit} (the larger of {SHARE_FLOORS[col]:g} {unit} and "
+                f"{100 * SHARE_RELATIVE_FLOOR:g} % of the largest piece, {largest:.3g} {unit}), so shares "
+                "would be meaningless.")
+        else:
+            df[share] = 100.0 * df[col] / denom
     df = df[["height_anomaly", "u", "v", "wind_speed", "relative_vorticity", "height_share_pct", "vorticity_share_pct"]]
     df.index.name = "piece"
     df.attrs.update(
@@ -470,6 +516,8 @@ def attribution(results: dict, lon: float, lat: float, pressure_hpa: float):
         latitude=float(lat),
         pressure_hpa=float(pressure_hpa),
         interpolation="bilinear in longitude/latitude, linear in pressure",
+        share_notes=share_notes,
+        notes=[],
         units=dict(height_anomaly="m", u="m s-1", v="m s-1", wind_speed="m s-1", relative_vorticity="s-1"),
     )
     return df
