@@ -27,7 +27,6 @@ ratios within one run.
 """
 from __future__ import annotations
 
-import argparse
 import json
 import statistics
 import sys
@@ -223,11 +222,14 @@ def run(json_output=False, grids=None, references=True, repeat=9, stream=None):
 
 def main(argv=None):
     """``pvwb bench [--json] [--grid NAME ...] [--no-references]``."""
-    ap = argparse.ArgumentParser(prog="pvwb bench", description="QG inversion benchmarks (solver vs FFT, spsolve, PyAMG).")
+    from workbench.cli import build_parser, count
+
+    ap = build_parser("pvwb bench", "QG inversion benchmarks (solver vs FFT, spsolve, PyAMG).")
     ap.add_argument("--json", action="store_true", help="print one JSON list of records")
     ap.add_argument("--grid", action="append", choices=list(GRIDS), help="grid(s) to run (default all)")
     ap.add_argument("--no-references", action="store_true", help="skip spsolve and PyAMG (the slow part)")
-    ap.add_argument("--repeat", type=int, default=9, help="repeats for the medians (default 9)")
+    ap.add_argument("--repeat", type=count(1, 1000, "--repeat"), default=9,
+                    help="repeats for the medians, 1..1000 (default 9)")
     args = ap.parse_args(argv)
     run(json_output=args.json, grids=args.grid, references=not args.no_references, repeat=args.repeat)
     return 0

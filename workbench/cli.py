@@ -1,16 +1,34 @@
 """The ``pvwb`` command line: serve | invert | brief | batch | sample | bench | info.
 
-Each sub-command delegates to the module that owns the work; errors from
-:mod:`workbench.errors` are printed as one clear line (exit status 2), never a traceback.
+Each sub-command delegates to the module that owns the work (its ``main(argv)``). Whatever
+goes wrong because of the user's input or the machine is reported as ONE line on stderr with
+exit status 2, never a traceback:
+
+* the package's own errors (:mod:`workbench.errors`),
+* argument errors (argparse usage errors go through :class:`Parser`, one line + a hint),
+* operating-system errors (read-only folder, no space left, a folder given as ``-o``, a port in
+  use, a scheduler that does not answer): :func:`os_error_message`.
+
+``pvwb --debug COMMAND ...`` (or ``PVWB_DEBUG=1``) shows the traceback instead. An error that
+is none of these (a bug) is also one line, exit status 1, with a pointer to ``--debug``.
+``pvwb --quiet COMMAND ...`` switches off progress bars (they are also off when stderr is not
+a terminal); :func:`progress` is the one way commands draw them (tqdm, shown only for steps
+that last more than about two seconds).
+
+The argument types shared by the sub-commands live here too: :func:`port_number`,
+:func:`host_address`, :func:`count`, :func:`parse_region`, :func:`parse_times`.
 """
 from __future__ import annotations
 
 import argparse
+import errno
+import math
+import os
 import sys
 
-from .errors import WorkbenchError
+from .errors import InputError, WorkbenchError
 
-USAGE = """pvwb <command> [options]
+USAGE = """pvwb [--debug] [--quiet] <command> [options]
 
 commands:
   info CASE                 describe a case file (times, levels, domain, variables)
@@ -21,19 +39,381 @@ commands:
   sample [-o PATH]          rebuild the invented sample storm
   bench [--json]            inversion benchmarks (solver vs FFT, spsolve, PyAMG)
 
+global options (before the command):
+  --debug                   show the full traceback of an error (also PVWB_DEBUG=1)
+  --quiet                   no progress bars
+
 Run `pvwb <command> --help` for a command's options. CASE defaults to the bundled
 invented sample storm where a command accepts it."""
 
+COMMANDS = {"info": "analysis", "invert": "analysis", "brief": "brief", "serve": "app", "batch": "batch",
+            "sample": "sample", "bench": "bench"}
 
-def _delegate(module, argv):
-    import importlib
+#: set by ``pvwb --quiet`` (or a command's own ``--quiet``): no progress bars
+QUIET = False
 
-    mod = importlib.import_module(f"workbench.{module}")
-    return mod.main(argv)
+
+# --------------------------------------------------------------------------- argument parsing
+
+
+class Parser(argparse.ArgumentParser):
+    """ArgumentParser whose usage errors are one line (plus a pointer to ``--help``), exit 2."""
+
+    def error(self, message):
+        message = " ".join(str(message).split())
+        self.exit(2, f"{self.prog}: error: {message} (see `{self.prog} --help`)\n")
+
+
+def build_parser(prog, description=None, **kwargs) -> Parser:
+    return Parser(prog=prog, description=description, **kwargs)
+
+
+def _number(text, kind):
+    try:
+        value = float(text)
+    except (TypeError, ValueError):
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number; give {kind}") from None
+    if not math.isfinite(value):
+        raise argparse.ArgumentTypeError(f"{text!r} is not a finite number; give {kind}")
+    return value
+
+
+def port_number(text) -> int:
+    """A TCP port 1..65535, or 0 meaning "any free port"."""
+    try:
+        value = int(str(text).strip())
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"port {text!r} is not a whole number; give 1..65535 (or 0 for any free port)") from None
+    if not 0 <= value <= 65535:
+        raise argparse.ArgumentTypeError(f"port {value} is out of range; give 1..65535 (or 0 for any free port)")
+    return value
+
+
+def host_address(text) -> str:
+    """An IPv4/IPv6 address or a host name this machine can resolve; brackets around IPv6 are dropped."""
+    import ipaddress
+    import socket
+
+    value = str(text).strip()
+    if value.startswith("[") and value.endswith("]"):
+        value = value[1:-1]
+    if not value:
+        raise argparse.ArgumentTypeError("empty address; give e.g. 127.0.0.1, ::1 or a host name")
+    try:
+        return str(ipaddress.ip_address(value))
+    except ValueError:
+        pass
+    if any(c.isspace() for c in value) or "/" in value or len(value) > 253:
+        raise argparse.ArgumentTypeError(f"{value!r} is not an IP address or a host name")
+    try:
+        socket.getaddrinfo(value, None)
+    except (OSError, UnicodeError):
+        raise argparse.ArgumentTypeError(
+            f"{value!r} is not an IP address and does not resolve as a host name on this machine") from None
+    return value
+
+
+def count(minimum=1, maximum=None, what="count"):
+    """An argparse type: a whole number within [minimum, maximum]."""
+
+    def parse(text):
+        try:
+            value = int(str(text).strip())
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+        if value < minimum or (maximum is not None and value > maximum):
+            upper = f"..{maximum}" if maximum is not None else " or more"
+            raise argparse.ArgumentTypeError(f"{value} is out of range; give {minimum}{upper}")
+        return value
+
+    parse.__name__ = what
+    return parse
+
+
+def positive_number(what="value"):
+    def parse(text):
+        value = _number(text, "a positive number")
+        if value <= 0:
+            raise argparse.ArgumentTypeError(f"{text!r} must be positive")
+        return value
+
+    parse.__name__ = what
+    return parse
+
+
+def parse_region(text):
+    """``W,E,S,N`` in degrees -> (west, east, south, north) floats.
+
+    The region runs east from W to E: W > E means across the date line (170,-170 is 20 degrees
+    wide, as is 170,190); -90 <= south < north <= 90; longitudes within -360..360.
+    """
+    parts = [p.strip() for p in str(text).split(",")]
+    if len(parts) != 4 or not all(parts):
+        raise argparse.ArgumentTypeError(f"region {text!r} must be four numbers W,E,S,N (e.g. -80,20,20,75)")
+    w, e, s, n = (_number(p, "W,E,S,N in degrees") for p in parts)
+    if not (-90 <= s <= 90 and -90 <= n <= 90):
+        raise argparse.ArgumentTypeError(f"region {text!r}: latitudes must be within -90..90")
+    if s >= n:
+        raise argparse.ArgumentTypeError(f"region {text!r}: south ({s:g}) must be less than north ({n:g})")
+    if not (-360 <= w <= 360 and -360 <= e <= 360):
+        raise argparse.ArgumentTypeError(f"region {text!r}: longitudes must be within -360..360")
+    if w == e:
+        raise argparse.ArgumentTypeError(f"region {text!r}: west and east are equal; give a region of "
+                                         "some width (W < E, or W > E across the date line)")
+    if e - w > 360:
+        raise argparse.ArgumentTypeError(f"region {text!r} is wider than 360 degrees of longitude")
+    return (w, e, s, n)
+
+
+def _time_item(text):
+    text = text.strip()
+    if text.lstrip("-").isdigit():
+        return int(text)
+    import numpy as np
+
+    try:
+        np.datetime64(text, "ns")
+    except Exception:
+        raise argparse.ArgumentTypeError(
+            f"time {text!r} is neither an index nor an ISO time (e.g. 2051-02-10T00)") from None
+    return text
+
+
+def parse_times(text):
+    """Time selection: ``A..B`` (inclusive range of indices or of ISO times) or ``A,B,C`` (a list).
+
+    Returns a ``slice`` (ISO times: ``slice("A", "B")``, label based and inclusive; indices:
+    ``slice(a, b + 1)``) or a list of indices / ISO strings, as ``open_case(times=...)`` takes.
+    """
+    text = str(text).strip()
+    if not text:
+        raise argparse.ArgumentTypeError("empty time selection; give A..B or A,B,C (indices or ISO times)")
+    if ".." in text:
+        a, _, b = text.partition("..")
+        a, b = _time_item(a), _time_item(b)
+        if type(a) is not type(b):
+            raise argparse.ArgumentTypeError(f"times {text!r}: both ends must be indices or both ISO times")
+        if isinstance(a, int):
+            if a < 0 or b < a:
+                raise argparse.ArgumentTypeError(f"times {text!r}: give 0 <= first <= last")
+            return slice(a, b + 1)
+        import numpy as np
+
+        if np.datetime64(b, "ns") < np.datetime64(a, "ns"):
+            raise argparse.ArgumentTypeError(f"times {text!r}: the first time is after the last")
+        return slice(a, b)
+    items = [_time_item(x) for x in text.split(",")]
+    if any(isinstance(x, int) and x < 0 for x in items):
+        raise argparse.ArgumentTypeError(f"times {text!r}: indices must be >= 0")
+    return items
+
+
+def add_selection_options(parser):
+    """``--region W,E,S,N`` and ``--times SPEC``: what ``open_case`` reads before anything is computed."""
+    parser.add_argument("--region", type=parse_region, metavar="W,E,S,N", default=None,
+                        help="read only this region, in degrees (e.g. -80,20,20,75)")
+    parser.add_argument("--times", type=parse_times, metavar="SPEC", default=None,
+                        help="read only these times: A..B (inclusive) or A,B,C; indices or ISO times")
+
+
+def selection_options(args) -> dict:
+    """The ``open_case`` keywords of :func:`add_selection_options` that were given."""
+    out = {}
+    if getattr(args, "region", None) is not None:
+        out["region"] = args.region
+    if getattr(args, "times", None) is not None:
+        out["times"] = args.times
+    return out
+
+
+def check_target(case, target):
+    """Refuse (InputError) a target (lon, lat, hPa) outside the case's domain or levels."""
+    if target is None:
+        return target
+    lon, lat, p = target
+    d = case.domain
+    if not all(math.isfinite(x) for x in target):
+        raise InputError(f"--target {lon:g},{lat:g},{p:g} has a non-finite value")
+    lon_in = d["lon_min"] <= lon <= d["lon_max"] or d["lon_min"] <= lon + 360 <= d["lon_max"] \
+        or d["lon_min"] <= lon - 360 <= d["lon_max"]
+    if not (lon_in and d["lat_min"] <= lat <= d["lat_max"]):
+        raise InputError(
+            f"--target {lon:g},{lat:g} lies outside the domain ({d['lon_min']:g}..{d['lon_max']:g} E, "
+            f"{d['lat_min']:g}..{d['lat_max']:g} N); give a point inside it")
+    lev = case.levels_hpa
+    if not float(lev.min()) <= p <= float(lev.max()):
+        raise InputError(f"--target pressure {p:g} hPa is outside the levels of the case "
+                         f"({float(lev.max()):g}..{float(lev.min()):g} hPa)")
+    return target
+
+
+def check_pieces(case, pieces):
+    """Refuse (InputError) an interior piece whose polygon encloses no grid point of the case."""
+    if not pieces:
+        return pieces
+    from .inversion.pieces import polygon_mask
+
+    lon, lat = case.data["longitude"].values, case.data["latitude"].values
+    d = case.domain
+    for piece in pieces:
+        if getattr(piece, "polygon", None) is None:
+            continue
+        if not polygon_mask(piece.polygon, lon, lat).any():
+            xs = [x for x, _ in piece.polygon]
+            ys = [y for _, y in piece.polygon]
+            raise InputError(
+                f"piece {piece.name!r}: its polygon ({min(xs):g}..{max(xs):g} E, {min(ys):g}..{max(ys):g} N) "
+                f"encloses no grid point of the domain ({d['lon_min']:g}..{d['lon_max']:g} E, "
+                f"{d['lat_min']:g}..{d['lat_max']:g} N); draw it inside the domain")
+    return pieces
+
+
+def check_output(path, overwrite, suffixes=None, what="output"):
+    """Refuse (InputError) an output path that cannot be written, before any work is done."""
+    from pathlib import Path
+
+    p = Path(path).expanduser()
+    if p.is_dir():
+        raise InputError(f"-o {path!r} is a folder; give a file name inside it")
+    parent = p.parent if str(p.parent) else Path(".")
+    if not parent.is_dir():
+        raise InputError(f"-o {path!r}: folder {str(parent)!r} does not exist; create it first")
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise InputError(f"-o {path!r}: folder {str(parent)!r} is not writable")
+    if suffixes and p.suffix.lower() not in suffixes:
+        raise InputError(f"-o {path!r}: the {what} must end in {' or '.join(suffixes)}")
+    if p.exists() and not overwrite:
+        raise InputError(f"-o {path!r} already exists; pass --overwrite to replace it, or choose another name")
+    return p
+
+
+# --------------------------------------------------------------------------- progress
+
+
+def progress_enabled(quiet=False, stream=None) -> bool:
+    """Bars only on a terminal, and not with ``--quiet``."""
+    stream = sys.stderr if stream is None else stream
+    if quiet or QUIET:
+        return False
+    try:
+        return bool(stream.isatty())
+    except (AttributeError, ValueError):
+        return False
+
+
+def progress(iterable=None, total=None, desc=None, enabled=None, unit="step"):
+    """A tqdm bar on stderr over ``iterable`` that appears only once the step has lasted about two
+    seconds; a plain pass-through when disabled (``enabled=None``: :func:`progress_enabled`)."""
+    enabled = progress_enabled() if enabled is None else bool(enabled)
+    from tqdm.auto import tqdm
+
+    return tqdm(iterable, total=total, desc=desc, unit=unit, disable=not enabled, delay=2.0,
+                file=sys.stderr, leave=False, dynamic_ncols=True)
+
+
+# --------------------------------------------------------------------------- errors
+
+
+_ERRNO_HINTS = {
+    errno.EACCES: "permission denied (is the folder read-only or owned by someone else?)",
+    errno.EPERM: "operation not permitted",
+    errno.EROFS: "the file system is read-only; choose another folder",
+    errno.ENOSPC: "no space left on the device; free some space or choose another folder",
+    errno.EDQUOT: "disk quota exceeded; free some space or choose another folder",
+    errno.EISDIR: "it is a folder; give a file name",
+    errno.ENOTDIR: "a part of the path is not a folder",
+    errno.ENOENT: "no such file or folder",
+    errno.EADDRINUSE: "the address/port is in use; choose another --port (or 0 for any free port)",
+    errno.EADDRNOTAVAIL: "this machine has no such address; give one of its own addresses (e.g. 127.0.0.1)",
+    errno.ECONNREFUSED: "connection refused (nothing listens there)",
+    errno.EHOSTUNREACH: "host unreachable",
+    errno.ENETUNREACH: "network unreachable",
+    errno.ETIMEDOUT: "timed out",
+    errno.ENAMETOOLONG: "the file name is too long",
+    errno.EMFILE: "too many open files",
+}
+
+
+def os_error_message(exc: BaseException) -> str:
+    """One line for an OSError: what failed on which path, and what to do."""
+    if isinstance(exc, TimeoutError) and not getattr(exc, "errno", None):
+        return f"timed out: {exc}" if str(exc) else "timed out"
+    err = getattr(exc, "errno", None)
+    hint = _ERRNO_HINTS.get(err) or getattr(exc, "strerror", None) or str(exc) or type(exc).__name__
+    where = [repr(str(x)) for x in (getattr(exc, "filename", None), getattr(exc, "filename2", None)) if x]
+    return f"{hint}: {' -> '.join(where)}" if where else hint
+
+
+def one_line(text) -> str:
+    return " ".join(str(text).split())
+
+
+def _split_global(argv):
+    """Pull --debug/--quiet out of the arguments (before the command, or anywhere after it)."""
+    debug = os.environ.get("PVWB_DEBUG", "").strip().lower() in ("1", "yes", "true")
+    quiet = False
+    rest = []
+    for i, a in enumerate(argv):
+        if a == "--":
+            rest.extend(argv[i:])
+            break
+        if a == "--debug":
+            debug = True
+        elif a == "--quiet" and not rest:
+            quiet = True
+        else:
+            rest.append(a)
+    return debug, quiet, rest
+
+
+def _finish(code: int, grace_s: float = 3.0) -> int:
+    """End of a ``pvwb`` process: remove temporary files, give non-daemon threads (thread-pool
+    workers) ``grace_s`` seconds to finish, then leave at once if one still runs, so an interrupt
+    always ends the process instead of hanging in the interpreter's shutdown."""
+    import threading
+    import time
+
+    from .export import remove_live_temps
+
+    remove_live_temps()
+    deadline = time.monotonic() + grace_s
+    for t in threading.enumerate():
+        if t is threading.main_thread() or t.daemon:
+            continue
+        t.join(max(0.0, deadline - time.monotonic()))
+    if any(t.is_alive() and not t.daemon for t in threading.enumerate() if t is not threading.main_thread()):
+        for stream in (sys.stdout, sys.stderr):
+            try:
+                stream.flush()
+            except Exception:
+                pass
+        os._exit(code)
+    return code
 
 
 def main(argv=None) -> int:
-    argv = list(sys.argv[1:] if argv is None else argv)
+    """Run ``pvwb``; returns the exit status. Called without ``argv`` (the ``pvwb`` script,
+    ``python -m workbench.cli``) it owns the process and makes sure the process can end
+    (:func:`_finish`); called with ``argv`` (tests, other programs) it only returns."""
+    if argv is None:
+        try:
+            code = _main(sys.argv[1:])
+        except KeyboardInterrupt:  # a second Ctrl-C during clean-up
+            code = 130
+        except SystemExit as exc:  # SIGTERM during clean-up; --debug re-raises
+            if exc.code not in (0, None) and not isinstance(exc.code, int):
+                raise
+            code = exc.code or 0
+        return _finish(code)
+    return _main(list(argv))
+
+
+def _main(argv) -> int:
+    global QUIET
+    argv = list(argv)
+    debug, quiet, argv = _split_global(argv)
+    QUIET = quiet
     if not argv or argv[0] in ("-h", "--help", "help"):
         print(USAGE)
         return 0
@@ -43,6 +423,10 @@ def main(argv=None) -> int:
         print(f"pvwb {__version__}")
         return 0
     cmd, rest = argv[0], argv[1:]
+    if cmd not in COMMANDS:
+        print(f"pvwb: error: unknown command {cmd!r}; choose from {', '.join(COMMANDS)} (see `pvwb --help`)",
+              file=sys.stderr)
+        return 2
     import warnings
 
     # the package's own warnings (e.g. a domain where |f| varies a lot) as one "note:" line each
@@ -51,29 +435,46 @@ def main(argv=None) -> int:
     def show(message, category, *args, **kwargs):
         if str(message) not in seen:
             seen.add(str(message))
-            print(f"note: {message}", file=sys.stderr)
+            print(f"note: {one_line(message)}", file=sys.stderr)
 
     warnings.showwarning = show
-    table = {"info": "analysis", "invert": "analysis", "brief": "brief", "serve": "app", "batch": "batch",
-             "sample": "sample", "bench": "bench"}
-    if cmd not in table:
-        print(f"pvwb: unknown command {cmd!r}.\n\n{USAGE}", file=sys.stderr)
-        return 2
+    from .export import install_exit_handlers
+
+    install_exit_handlers()
     try:
-        if cmd in ("info", "invert"):
-            from . import analysis
+        import importlib
 
-            return int(analysis.main([cmd] + rest) or 0)
-        return int(_delegate(table[cmd], rest) or 0)
-    except WorkbenchError as exc:
-        print(f"pvwb {cmd}: {exc}", file=sys.stderr)
-        return 2
+        mod = importlib.import_module(f"workbench.{COMMANDS[cmd]}")
+        return int(mod.main(([cmd] if cmd in ("info", "invert") else []) + rest) or 0)
+    except SystemExit as exc:  # argparse (usage errors: 2, --help: 0) and SIGTERM (143)
+        if debug and exc.code not in (0, None):
+            raise
+        return exc.code if isinstance(exc.code, int) else (0 if exc.code is None else 2)
     except KeyboardInterrupt:
+        if debug:
+            raise
+        print(f"pvwb {cmd}: interrupted", file=sys.stderr)
         return 130
-
-
-def build_parser(prog, description):
-    return argparse.ArgumentParser(prog=prog, description=description)
+    except WorkbenchError as exc:
+        if debug:
+            raise
+        print(f"pvwb {cmd}: error: {one_line(exc)}", file=sys.stderr)
+        return 2
+    except (OSError, MemoryError) as exc:
+        if debug:
+            raise
+        if isinstance(exc, MemoryError):
+            msg = "not enough memory; select fewer times or a smaller region (--times, --region)"
+        else:
+            msg = os_error_message(exc)
+        print(f"pvwb {cmd}: error: {one_line(msg)}", file=sys.stderr)
+        return 2
+    except Exception as exc:  # a bug: still one line unless --debug
+        if debug:
+            raise
+        print(f"pvwb {cmd}: internal error: {type(exc).__name__}: {one_line(exc)[:300]} "
+              "(run `pvwb --debug ...` for the traceback and report it)", file=sys.stderr)
+        return 1
 
 
 if __name__ == "__main__":

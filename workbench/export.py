@@ -12,11 +12,18 @@ CF-1.8 netCDF file with provenance attributes.
 """
 from __future__ import annotations
 
+import atexit
 import contextlib
 import datetime as _dt
 import json
 import os
-import tempfile
+import re
+import secrets
+import signal
+import socket
+import stat
+import threading
+import time
 from pathlib import Path
 from typing import Any, Iterator
 
@@ -25,7 +32,7 @@ import xarray as xr
 
 from workbench.errors import ExportError, WorkbenchError
 
-__all__ = ["atomic_target", "export_balanced", "BALANCED_CF", "utc_now_iso", "package_version"]
+__all__ = ["atomic_target", "temp_file_next_to", "clean_stale_temps", "install_exit_handlers", "export_balanced", "BALANCED_CF", "utc_now_iso", "package_version"]
 
 #: Caution line carried by every briefing output and export.
 CAUTION = (
@@ -72,6 +79,158 @@ def _fsync_dir(folder: Path) -> None:
         os.close(fd)
 
 
+
+#: marker in the name of every temporary file the package writes: ``.<name>.pvwb-part-<host>-<pid>-<random>``
+TEMP_MARK = ".pvwb-part-"
+#: a temporary file not touched for this long is stale even when its pid is alive (pid reuse)
+STALE_AFTER_S = 6 * 3600.0
+_TEMP_RE = re.compile(r"^\..+\.pvwb-part-(?P<host>[A-Za-z0-9]*)-(?P<pid>\d+)-[a-z0-9_]+$")
+#: names of the older ``mkstemp`` scheme (``.<name>.<8 random>.part``): removed once stale by age
+_LEGACY_RE = re.compile(r"^\..+\.[a-z0-9_]{8}\.part$")
+_LIVE_TEMPS: set[str] = set()
+_LIVE_LOCK = threading.Lock()
+_HANDLERS_INSTALLED = False
+
+
+def _host_tag() -> str:
+    return re.sub(r"[^A-Za-z0-9]", "", socket.gethostname())[:24]
+
+
+def temp_path_for(path: Path) -> Path:
+    """A fresh, recognisable temporary name next to ``path`` (not created)."""
+    return path.parent / f".{path.name}{TEMP_MARK}{_host_tag()}-{os.getpid()}-{secrets.token_hex(4)}"
+
+
+def _pid_alive(pid: int) -> bool:
+    if pid == os.getpid():
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # exists, owned by someone else
+        return True
+    except OSError:
+        return True
+    return True
+
+
+def clean_stale_temps(folder, max_age_s: float = STALE_AFTER_S) -> list[Path]:
+    """Remove temporary files left in ``folder`` by killed runs; returns the removed paths.
+
+    A ``.<name>.pvwb-part-<host>-<pid>-<random>`` file is stale when it was made on this host by
+    a process that no longer exists (or by this process but is no longer being written), or when
+    it has not been modified for ``max_age_s`` seconds (other hosts, reused pids). Files of the
+    older ``.<name>.XXXXXXXX.part`` scheme are removed by age only. Errors are ignored: cleaning
+    never stops a write.
+    """
+    folder = Path(folder)
+    removed = []
+    now = time.time()
+    host = _host_tag()
+    try:
+        entries = list(os.scandir(folder))
+    except OSError:
+        return removed
+    for entry in entries:
+        name = entry.name
+        if not name.startswith("."):
+            continue
+        m = _TEMP_RE.match(name)
+        legacy = m is None and _LEGACY_RE.match(name) is not None
+        if m is None and not legacy:
+            continue
+        try:
+            st = entry.stat(follow_symlinks=False)
+        except OSError:
+            continue
+        if not stat.S_ISREG(st.st_mode):
+            continue
+        stale = now - st.st_mtime > max_age_s
+        if m is not None and not stale and m["host"] == host:
+            pid = int(m["pid"])
+            with _LIVE_LOCK:
+                mine = entry.path in _LIVE_TEMPS or str(Path(entry.path).resolve()) in _LIVE_TEMPS
+            stale = (pid == os.getpid() and not mine) or (pid != os.getpid() and not _pid_alive(pid))
+        if stale:
+            with contextlib.suppress(OSError):
+                os.unlink(entry.path)
+                removed.append(Path(entry.path))
+    return removed
+
+
+def _register(tmp: Path) -> None:
+    with _LIVE_LOCK:
+        _LIVE_TEMPS.add(str(tmp.resolve()))
+
+
+def _unregister_and_remove(tmp: Path) -> None:
+    with contextlib.suppress(OSError):
+        tmp.unlink()
+    with _LIVE_LOCK:
+        _LIVE_TEMPS.discard(str(tmp.resolve()))
+
+
+def remove_live_temps() -> None:
+    """Remove every temporary file this process is still writing (atexit and signal exits)."""
+    with _LIVE_LOCK:
+        names = list(_LIVE_TEMPS)
+        _LIVE_TEMPS.clear()
+    for name in names:
+        with contextlib.suppress(OSError):
+            os.unlink(name)
+
+
+def _terminate(signum, frame):  # SIGTERM/SIGHUP -> a normal exit: finally blocks and atexit run
+    raise SystemExit(128 + signum)
+
+
+def install_exit_handlers() -> None:
+    """Make the exits a process can see clean up its temporary files.
+
+    atexit removes registered temporary files; SIGTERM (and SIGHUP) become ``SystemExit(128+n)``
+    so ``finally`` blocks run. Signal handlers are installed only from the main thread and only
+    where the default action is in place (an application's own handlers are kept). SIGINT keeps
+    Python's KeyboardInterrupt, which the writers already clean up after. Idempotent.
+    """
+    global _HANDLERS_INSTALLED
+    if _HANDLERS_INSTALLED:
+        return
+    _HANDLERS_INSTALLED = True
+    atexit.register(remove_live_temps)
+    if threading.current_thread() is not threading.main_thread():
+        return
+    for name in ("SIGTERM", "SIGHUP"):
+        sig = getattr(signal, name, None)
+        if sig is None:
+            continue
+        with contextlib.suppress(ValueError, OSError):
+            if signal.getsignal(sig) is signal.SIG_DFL:
+                signal.signal(sig, _terminate)
+
+
+@contextlib.contextmanager
+def temp_file_next_to(path) -> Iterator[Path]:
+    """Yield a registered temporary path next to ``path`` (stale ones in the folder are cleaned
+    first); it is removed when the block raises, and at exit if still there. The caller moves it
+    into place (``os.replace``) inside the block."""
+    path = Path(path)
+    install_exit_handlers()
+    clean_stale_temps(path.parent if str(path.parent) else Path("."))
+    tmp = temp_path_for(path)
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    os.close(fd)
+    _register(tmp)
+    try:
+        yield tmp
+    finally:
+        if tmp.exists():
+            _unregister_and_remove(tmp)
+        else:
+            with _LIVE_LOCK:
+                _LIVE_TEMPS.discard(str(tmp.resolve()))
+
+
 @contextlib.contextmanager
 def atomic_target(
     path, overwrite: bool = False, error: type[WorkbenchError] = ExportError, what: str = "file"
@@ -80,11 +239,13 @@ def atomic_target(
 
     * Refuses (``error``) when ``path`` exists and ``overwrite`` is false, before
       anything is written, and again at the end if the file appeared meanwhile.
-    * The temporary file is in the destination folder (same filesystem), is
-      fsynced, then renamed with :func:`os.replace` (or hard-linked when not
-      overwriting, which cannot clobber a file that appeared meanwhile).
-    * On any exception inside the block, or in the final rename, the temporary
-      file is removed and the previous file (if any) is untouched.
+    * The temporary file ``.<name>.pvwb-part-<host>-<pid>-<random>`` is in the destination
+      folder (same filesystem), is fsynced, then renamed with :func:`os.replace` (or
+      hard-linked when not overwriting, which cannot clobber a file that appeared meanwhile).
+    * On any exception inside the block (KeyboardInterrupt, and SIGTERM turned into SystemExit
+      by :func:`install_exit_handlers`), or in the final rename, the temporary file is removed
+      and the previous file (if any) is untouched; an atexit hook removes any left over.
+    * Temporary files of killed runs in that folder are removed first (:func:`clean_stale_temps`).
     """
     path = Path(path).expanduser()
     if path.is_dir():
@@ -97,10 +258,9 @@ def atomic_target(
             f"{what} {path} already exists; pass overwrite=True (or --overwrite) to replace it, "
             "or choose another name"
         )
-    fd, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=parent)
-    os.close(fd)
-    tmp = Path(tmp_name)
-    try:
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise error(f"folder {parent} is not writable; cannot save {what} {path.name} there")
+    with temp_file_next_to(path) as tmp:
         yield tmp
         if not tmp.exists() or tmp.stat().st_size == 0:
             raise error(f"writing {what} {path} produced no data; nothing was saved")
@@ -123,13 +283,7 @@ def atomic_target(
                 if path.exists():
                     raise error(f"{what} {path} already exists; pass overwrite=True") from None
                 os.replace(tmp, path)
-            else:
-                tmp.unlink()
         _fsync_dir(parent)
-    except BaseException:
-        with contextlib.suppress(OSError):
-            tmp.unlink()
-        raise
 
 
 # --------------------------------------------------------------------------- netCDF export
