@@ -116,26 +116,36 @@ def main(argv=None):
     parser.add_argument("--reference", default="time_mean", help="time_mean | area_mean | zonal_mean | PATH")
     parser.add_argument("-o", "--output", default=None, help="write the attribution table(s) as CSV")
     parser.add_argument("--overwrite", action="store_true", help="replace an existing output file")
+    parser.add_argument("--quiet", action="store_true", help="no progress bar")
     args = parser.parse_args(argv)
+    target = _parse_target(args.target)
+    if args.output:
+        cli.check_output(args.output, args.overwrite)
+    pieces = load_pieces(args.pieces) if args.pieces else None
     path = args.case or default_case_path()
-    case = wb.open_case(path)
+    case = wb.open_case(path, **cli.selection_options(args))
     if args.command == "info":
         print(case)
         return 0
-    pieces = load_pieces(args.pieces) if args.pieces else None
+    cli.check_target(case, target)
+    cli.check_pieces(case, pieces)
+    member = args.member
+    if member is not None and str(member).isdigit():
+        member = int(member)
+    case.member_index(member)
     times = range(case.times.size) if args.time is None else [
         int(args.time) if str(args.time).lstrip("-").isdigit() else args.time]
+    times = [case.time_index(t) for t in times]  # checked before the work
     import pandas as pd
 
     tables = []
     print(case)
     print("\nDiagnostic analysis of model/analysis data, not a forecast or warning. Decisions follow "
           "the official warnings of the responsible meteorological service and local procedures.\n")
-    for t in times:
-        _, table, target = analyse(case, t, args.member, pieces, _parse_target(args.target), args.reference)
-        ti = case.time_index(t)
-        label = str(case.times[ti])[:16]
-        print(f"{label}  target {target[0]:.1f} E, {target[1]:.1f} N, {target[2]:g} hPa")
+    for t in cli.progress(times, desc="invert", unit="time", enabled=None if not args.quiet else False):
+        _, table, target_used = analyse(case, t, member, pieces, target, args.reference)
+        label = str(case.times[t])[:16]
+        print(f"{label}  target {target_used[0]:.1f} E, {target_used[1]:.1f} N, {target_used[2]:g} hPa")
         with pd.option_context("display.width", 160, "display.max_columns", 20, "display.precision", 2):
             print(table[["height_anomaly", "wind_speed", "relative_vorticity", "height_share_pct"]].to_string(
                 formatters={"relative_vorticity": "{:.2e}".format}))
@@ -148,3 +158,4 @@ def main(argv=None):
             tmp.write_text(pd.concat(tables).to_csv(index=False))
         print(f"wrote {args.output}")
     return 0
+

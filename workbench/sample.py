@@ -56,13 +56,11 @@ file is ``sample_cases/skerrywind.nc`` (:data:`DEFAULT_PATH`).
 """
 from __future__ import annotations
 
-import argparse
 import dataclasses
 import json
 import math
 import os
 import sys
-import tempfile
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -822,20 +820,15 @@ def write_case(ds: xr.Dataset, path, *, overwrite=False):
     encoding["time"] = dict(units=f"hours since {base}", calendar="proleptic_gregorian", dtype="float64")
     for c in ("pressure", "latitude", "longitude"):
         encoding[c] = dict(_FillValue=None)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=str(target.parent))
-    os.close(fd)
-    try:
+    from .export import temp_file_next_to
+
+    # registered temporary file next to the target: removed on errors, SIGINT/SIGTERM and at exit
+    with temp_file_next_to(target) as tmp:
         ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
         umask = os.umask(0)
         os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; give the file the usual permissions
+        os.chmod(tmp, 0o666 & ~umask)  # the temporary file is 0600; give the file the usual permissions
         os.replace(tmp, target)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
     return target
 
 
@@ -879,19 +872,22 @@ def track_low(ds: xr.Dataset, *, margin_deg=8.0, search_km=900.0, start=None):
 
 def main(argv=None) -> int:
     """``pvwb sample [-o PATH] [--force] [--hours H] [--no-latent-heating] [--set NAME=VALUE ...]``."""
-    parser = argparse.ArgumentParser(
-        prog="pvwb sample",
-        description=(f"Rebuild the invented sample storm {SCENARIO} (INVENTED, not real weather): a QG "
+    from . import cli
+
+    parser = cli.build_parser(
+        "pvwb sample",
+        (f"Rebuild the invented sample storm {SCENARIO} (INVENTED, not real weather): a QG "
                      "life-cycle simulation written as pressure-level fields."))
     parser.add_argument("-o", "--output", default=str(DEFAULT_PATH),
                         help=f"netCDF file to write (default: {DEFAULT_PATH})")
     parser.add_argument("--force", action="store_true", help="replace the output file if it exists")
-    parser.add_argument("--hours", type=float, default=None, help="length of the run in hours")
+    parser.add_argument("--hours", type=cli.positive_number("--hours"), default=None,
+                        help="length of the run in hours")
     parser.add_argument("--no-latent-heating", action="store_true", help="switch off the demonstration heating")
     parser.add_argument("--set", dest="overrides", action="append", default=[], metavar="NAME=VALUE",
                         help="override any generator setting (repeatable); see --show-settings")
     parser.add_argument("--show-settings", action="store_true", help="print the default settings as JSON and exit")
-    parser.add_argument("--quiet", action="store_true", help="no progress messages")
+    parser.add_argument("--quiet", action="store_true", help="no progress bar or messages")
     args = parser.parse_args(argv)
     if args.show_settings:
         print(json.dumps(dataclasses.asdict(StormSettings()), indent=2, sort_keys=True))
@@ -907,11 +903,17 @@ def main(argv=None) -> int:
     if args.no_latent_heating:
         overrides["latent_heating"] = False
 
-    def progress(n, total):
-        if not args.quiet:
-            print(f"pvwb sample: time {n + 1}/{total}", file=sys.stderr, flush=True)
+    cli.check_output(args.output, True, what="sample case")
+    bar = cli.progress(desc="sample", unit="time", enabled=False if args.quiet else None)
 
-    ds = build_sample(args.output, overwrite=args.force, progress=progress, **overrides)
+    def progress(n, total):
+        bar.total = total
+        bar.update(n + 1 - bar.n)
+
+    try:
+        ds = build_sample(args.output, overwrite=args.force, progress=progress, **overrides)
+    finally:
+        bar.close()
     track = track_low(ds)
     if not args.quiet:
         print(f"pvwb sample: wrote {args.output} ({SCENARIO}, INVENTED demonstration storm, not real weather)")
