@@ -104,11 +104,22 @@ def load_pieces(path):
 
 
 def main(argv=None):
+    """``pvwb info|invert [CASE] [--region W,E,S,N] [--times SPEC] [--time T] [--member M]
+    [--target LON,LAT,HPA] [--pieces FILE] [--reference R] [-o CSV [--overwrite]] [--quiet]``.
+
+    Arguments are checked before the work (one-line errors: :mod:`workbench.cli`); the target
+    and every piece polygon must lie inside the domain. A bar shows progress over the times.
+    """
     import workbench as wb
 
-    parser = argparse.ArgumentParser(prog="pvwb", description="Describe a case or run a piecewise inversion.")
+    from . import cli
+
+    argv = list(argv or [])
+    prog = f"pvwb {argv[0]}" if argv and argv[0] in ("info", "invert") else "pvwb"
+    parser = cli.build_parser(prog, "Describe a case or run a piecewise inversion.")
     parser.add_argument("command", choices=["info", "invert"])
     parser.add_argument("case", nargs="?", help="case file (default: the invented sample storm)")
+    cli.add_selection_options(parser)
     parser.add_argument("--time", default=None, help="time index or ISO time (default: every time for invert)")
     parser.add_argument("--member", default=None)
     parser.add_argument("--target", default=None, help="lon,lat,pressure_hPa (default: storm centre, 2nd level)")
