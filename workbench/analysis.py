@@ -10,9 +10,9 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import InputError
+from .errors import GridError, InputError
 
-__all__ = ["standard_pieces", "storm_centre", "analyse", "default_case_path", "load_pieces", "main"]
+__all__ = ["standard_pieces", "cyclonic_sign", "storm_centre", "analyse", "default_case_path", "load_pieces", "main"]
 
 SAMPLE_DIR = Path(__file__).resolve().parents[1] / "sample_cases"
 
@@ -25,10 +25,26 @@ def default_case_path() -> Path:
     return files[0]
 
 
+def cyclonic_sign(case_or_latitude) -> int:
+    """+1 in the northern hemisphere, -1 in the southern: the sign of f (of ``case.f0`` for a
+    Case, else of the mid-point of the latitudes given), which is the sign of a cyclonic
+    (trough) PV anomaly. A domain centred on the equator counts as northern."""
+    f0 = getattr(case_or_latitude, "f0", None)
+    if f0 is None:
+        lat = np.asarray(case_or_latitude, dtype=float)
+        f0 = 0.5 * (np.nanmin(lat) + np.nanmax(lat))
+    return -1 if float(f0) < 0 else 1
+
+
 def standard_pieces(upper=(550.0, 100.0), lower=(950.0, 600.0), threshold=0.0, rh_min=70.0,
-                    moist=True):
-    """The usual decomposition: upper-level positive PV anomaly, lower-tropospheric (moist)
-    positive anomaly, surface theta', lid theta', lateral boundary, and the remainder.
+                    moist=True, hemisphere=1):
+    """The usual decomposition: upper-level cyclonic PV anomaly, lower-tropospheric (moist)
+    cyclonic anomaly, surface theta', lid theta', lateral boundary, and the remainder.
+
+    ``hemisphere`` is +1 (north) or -1 (south; :func:`cyclonic_sign` of the case): cyclonic PV
+    anomalies are positive in the north and negative in the south, so the two interior pieces
+    take that sign (``Piece.sign`` is the sign of the PV anomaly in the data). The boundary
+    pieces take both signs in either hemisphere.
 
     The lower piece keeps points with relative humidity >= ``rh_min`` when ``moist`` (70-90 %
     is common practice for a diabatically generated PV anomaly); a case without humidity gets a
@@ -36,10 +52,17 @@ def standard_pieces(upper=(550.0, 100.0), lower=(950.0, 600.0), threshold=0.0, r
     """
     from .inversion.pieces import Piece
 
+    if hemisphere in ("north", "n", "N"):
+        hemisphere = 1
+    elif hemisphere in ("south", "s", "S"):
+        hemisphere = -1
+    if hemisphere not in (1, -1):
+        raise InputError(f"hemisphere must be +1 (north) or -1 (south), got {hemisphere!r}.")
+    sign = int(hemisphere)
     return [
-        Piece("upper trough", kind="interior", layer=upper, layer_coord="pressure", sign=1,
+        Piece("upper trough", kind="interior", layer=upper, layer_coord="pressure", sign=sign,
               threshold=threshold, colour="#1f5fa6"),
-        Piece("lower anomaly", kind="interior", layer=lower, layer_coord="pressure", sign=1,
+        Piece("lower anomaly", kind="interior", layer=lower, layer_coord="pressure", sign=sign,
               threshold=threshold, rh_min=rh_min if moist else None, colour="#c8553d"),
         Piece("surface theta", kind="bottom", colour="#2a9d8f"),
         Piece("lid theta", kind="top", colour="#8d6cab"),
@@ -50,14 +73,21 @@ def standard_pieces(upper=(550.0, 100.0), lower=(950.0, 600.0), threshold=0.0, r
 
 def storm_centre(case, time=None, member=None):
     """(lon, lat) of the storm centre: the minimum of mean sea-level pressure when the case has
-    it, else of the lowest level's geopotential; points within two grid lengths of the lateral
-    boundary are skipped."""
+    it, else of the lowest level's geopotential (a low is a minimum in either hemisphere);
+    points within two grid lengths of the lateral boundary are skipped, so the domain needs
+    at least 5 x 5 points."""
     ds = case.at(time, member)
     field = ds["mslp"] if "mslp" in ds else ds["geopotential"].isel(pressure=0)
+    what = "mean sea-level pressure" if "mslp" in ds else "lowest-level geopotential"
+    ny, nx = field.sizes["latitude"], field.sizes["longitude"]
+    if ny < 5 or nx < 5:
+        raise GridError(f"The domain has {ny} x {nx} latitude x longitude points: too small for the "
+                        "storm-centre search, which skips two grid lengths at each edge (at least 5 x 5).")
     inner = field.isel(latitude=slice(2, -2), longitude=slice(2, -2))
     vals = np.asarray(inner.values, dtype=float)
     if not np.isfinite(vals).any():
-        raise InputError("Cannot find a storm centre: mean sea-level pressure / lowest-level geopotential is all missing.")
+        raise InputError(f"Cannot find a storm centre: {what} is missing everywhere inside the "
+                         "two-grid-length edge band; check that variable.")
     j, i = np.unravel_index(np.nanargmin(vals), vals.shape)
     return float(inner["longitude"][i]), float(inner["latitude"][j])
 
@@ -70,7 +100,8 @@ def analyse(case, time=None, member=None, pieces=None, target=None, reference="t
     from .inversion.pieces import attribution
 
     if pieces is None:
-        pieces = standard_pieces(moist=case.relative_humidity(time, member) is not None)
+        pieces = standard_pieces(moist=case.relative_humidity(time, member) is not None,
+                                 hemisphere=cyclonic_sign(case))
     if target is None:
         lon, lat = storm_centre(case, time, member)
         levels = case.levels_hpa

@@ -45,7 +45,7 @@ def standard_state(case, time=None):
     upper, lower and surface pieces are drawn; the others are in the attribution table only."""
     import numpy as np
 
-    from workbench.analysis import standard_pieces, storm_centre
+    from workbench.analysis import cyclonic_sign, standard_pieces, storm_centre
     from workbench.state import State
 
     if time is None:
@@ -55,7 +55,7 @@ def standard_state(case, time=None):
     else:
         ti = case.time_index(time)
     st = State(case, time_index=ti)
-    for piece in standard_pieces(moist=case.relative_humidity(ti) is not None):
+    for piece in standard_pieces(moist=case.relative_humidity(ti) is not None, hemisphere=cyclonic_sign(case)):
         # the lid, lateral and remainder pieces count in the table but are not drawn, so that
         # maps and sections show the three pieces a forecaster reads first
         piece.visible = piece.kind in ("interior", "bottom")

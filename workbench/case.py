@@ -16,6 +16,7 @@ import numpy as np
 import xarray as xr
 
 from . import physics
+from .checks import load_fields
 from .errors import GridError, InputError
 
 __all__ = ["Case", "MAP_FIELDS", "REFERENCE_KINDS"]
@@ -175,7 +176,7 @@ class Case:
             sel = self.data.isel(time=ti)
             if mi is not None:
                 sel = sel.isel(member=mi)
-            out, info = physics.complete_fields(sel.astype("float64").load())
+            out, info = physics.complete_fields(load_fields(sel, self.source))
             self._record(ti, mi, info)
             return out, info
 
@@ -187,7 +188,7 @@ class Case:
         sel = self.data.isel(time=ti)
         if mi is not None:
             sel = sel.isel(member=mi)
-        return sel.astype("float64").load()
+        return load_fields(sel, self.source)
 
     def below_ground(self, time=None, member=None) -> xr.DataArray:
         """Boolean mask (pressure, latitude, longitude): True below the ground (the terrain rule,

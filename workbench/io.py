@@ -473,6 +473,7 @@ def normalise(ds: xr.Dataset, *, variables=None, coords=None, units_override=Non
     drop = [c for c in new.coords if c not in dims]
     new = new.drop_vars(drop)
     new.attrs.setdefault("title", "")
+    from .checks import check_plausible; new = check_plausible(new)  # noqa: E702 (plausibility, workbench.checks)
     return new
 
 
