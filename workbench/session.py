@@ -346,6 +346,14 @@ def read_session_file(path) -> dict[str, Any]:
             "it is probably not a session file"
         )
     raw = path.read_bytes()
+    # every value after the first in a list or object follows a comma: counting them (fast,
+    # in C) refuses a file of millions of numbers before it is parsed
+    commas = raw.count(b",")
+    if commas >= CAPS["values"]:
+        raise SessionError(
+            f"session file {path} holds about {commas} values, over the cap values = "
+            f"{CAPS['values']} (session files hold settings, not data); it is probably not a "
+            "session file, or a polygon in it is far too detailed")
     try:
         doc = json.loads(
             raw.decode("utf-8"), parse_constant=_no_constants, object_pairs_hook=_no_duplicates
