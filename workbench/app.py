@@ -386,7 +386,8 @@ class Workbench:
                                                     "area mean": "area_mean",
                                                     "zonal mean": "zonal_mean"},
                                            value=st.reference if st.reference in
-                                           ("time_mean", "area_mean", "zonal_mean") else "time_mean")
+                                           ("time_mean", "area_mean", "zonal_mean") else
+                                           getattr(st.case, "default_reference", "time_mean"))
         self.threshold = pn.widgets.FloatInput(label="Tropopause (PVU)", value=st.threshold,
                                                step=0.5, start=0.5, end=10, width=120)
         self.mode = pn.widgets.RadioButtonGroup(label="Mouse", options=list(MODES),
@@ -585,13 +586,15 @@ class Workbench:
             self.attr_table.value = pd.DataFrame()
             return
         df = st.attribution()
+        from .inversion.pieces import format_share
+
         lon, lat, p = st.target
         self.attr_title.object = (f"at {lon:.2f}°E {lat:.2f}°N, {p:g} hPa · pieces add up to "
                                   "the full inversion")
         show = pd.DataFrame({
             "piece": df.index,
             "Z′ (m)": df["height_anomaly"].round(1).values,
-            "share (%)": df["height_share_pct"].round(0).values,
+            "share (%)": [format_share(x, ".0f") for x in df["height_share_pct"]],
             "u (m/s)": df["u"].round(1).values,
             "v (m/s)": df["v"].round(1).values,
             "ζ (1e-5/s)": (df["relative_vorticity"] * 1e5).round(2).values,

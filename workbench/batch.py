@@ -30,7 +30,7 @@ def _one(path, ti, mi, pieces, target, reference, options):
     return table
 
 
-def run_batch(path, *, pieces=None, times=None, members=None, target=None, reference="time_mean",
+def run_batch(path, *, pieces=None, times=None, members=None, target=None, reference=None,
               client=None, options=None, progress=False) -> pd.DataFrame:
     """Attribution tables for every (time, member) of the case at ``path``.
 
@@ -39,7 +39,7 @@ def run_batch(path, *, pieces=None, times=None, members=None, target=None, refer
     pieces : list of Piece or dicts (default: :func:`workbench.analysis.standard_pieces`)
     times, members : indices to run (default: all)
     target : (lon, lat, hPa) or None for each time's storm centre
-    reference : as for :meth:`Case.reference`; "time_mean" etc. are computed once here and
+    reference : as for :meth:`Case.reference` (None: the case's default); computed once here and
         shipped to the workers
     client : a ``dask.distributed.Client`` (the run is spread over its workers) or None (serial)
     options : keywords of :func:`workbench.open_case` (e.g. ``region``, ``times``), used by every task
@@ -57,6 +57,8 @@ def run_batch(path, *, pieces=None, times=None, members=None, target=None, refer
         mems = list(range(case.members.size)) if members is None else [case.member_index(m) for m in members]
     if not times:
         raise InputError("run_batch: no times selected.")
+    if reference is None or isinstance(reference, str):
+        reference = case.resolve_reference(reference)
     ref = case.reference(reference) if isinstance(reference, str) else reference
     pieces = None if pieces is None else [p.to_dict() if hasattr(p, "to_dict") else dict(p) for p in pieces]
     jobs = [(ti, mi) for ti in times for mi in mems]
@@ -132,7 +134,8 @@ def main(argv=None):
     cli.add_selection_options(parser)
     parser.add_argument("--pieces", help="JSON file with a list of pieces (default: standard pieces)")
     parser.add_argument("--target", help="lon,lat,hPa (default: each time's storm centre)")
-    parser.add_argument("--reference", default="time_mean")
+    parser.add_argument("--reference", default=None, help="time_mean | area_mean | zonal_mean | PATH "
+                        "(default: time_mean for several times, else the case's default)")
     group = parser.add_mutually_exclusive_group()
     group.add_argument("--scheduler", type=_scheduler_address,
                        help="address of a running Dask scheduler (tcp://127.0.0.1:8786)")

@@ -148,7 +148,7 @@ def piece_summaries(table, target) -> list[str]:
         z = float(table.loc[name, "height_anomaly"])
         share = float(table.loc[name, "height_share_pct"])
         if not math.isfinite(share):
-            out.append(f"{name}: {z:+.1f} m at {where}; the full anomaly there is zero, so no "
+            out.append(f"{name}: {z:+.1f} m at {where}; the full anomaly there is near zero, so no "
                        "share can be given.")
         elif abs(z) < 0.05 * max(abs(full), 1e-9) and abs(share) < 5:
             out.append(f"{name} contributes little at {where}: {z:+.1f} m ({share:.0f} % of the "
@@ -288,7 +288,12 @@ def _table_page(case, state):
                    size=11)
         _caution_band(fig, inv)
         return fig, []
+    from .analysis import above_ground_target
+
+    target, moved = above_ground_target(case, target, state.time_index, state.member)
     table = state.attribution(target)
+    from .inversion.pieces import format_share
+    note = "\n".join(n for n in (note, moved, *table.attrs.get("share_notes", [])) if n) or None
     lon, lat, p = target
     valid = str(np.datetime_as_string(np.datetime64(case.times[state.time_index], "m"))).replace(
         "T", " ") + " UTC"
@@ -305,8 +310,8 @@ def _table_page(case, state):
 
         rows.append([str(name), f(r["height_anomaly"], "+.2f"), f(r["u"], "+.2f"),
                      f(r["v"], "+.2f"), f(r["wind_speed"], ".2f"),
-                     f(r["relative_vorticity"] * 1e5, "+.2f"), f(r["height_share_pct"], ".1f"),
-                     f(r["vorticity_share_pct"], ".1f")])
+                     f(r["relative_vorticity"] * 1e5, "+.2f"), format_share(r["height_share_pct"]),
+                     format_share(r["vorticity_share_pct"])])
     n = len(rows) + 1
     h = min(0.04 * n, 0.40)
     ax = fig.add_axes([0.05, y - 0.02 - h, 0.9, h])

@@ -148,9 +148,9 @@ class State(param.Parameterized):
                            "geopotential_height", "u", "v"], doc="Map field (case.MAP_FIELDS).")
     overlay_level = param.Number(default=850.0, bounds=(1.0, 1100.0),
                                  doc="Pressure level (hPa) of the balanced-flow overlay.")
-    reference = param.String(default="time_mean",
+    reference = param.String(default=None, allow_None=True,
                              doc="Reference state: time_mean, area_mean, zonal_mean or a "
-                                 "climatology file path.")
+                                 "climatology file path; None takes the case's default_reference.")
     threshold = param.Number(default=2.0, bounds=(0.5, 10.0),
                              doc="Dynamic-tropopause PV threshold (PVU).")
     pieces = param.List(default=[], doc="Pieces of the piecewise inversion.")
@@ -184,6 +184,8 @@ class State(param.Parameterized):
             self.member = None
         elif self.member is None:
             self.member = 0
+        if self.reference is None or (self.reference == "time_mean" and len(case.times) < 2):
+            self.reference = getattr(case, "default_reference", "time_mean")
         fields = list(getattr(case, "MAP_FIELDS", self.param.field.objects))
         self.param.field.objects = fields
         levels = [float(x) for x in case.levels_hpa]
