@@ -20,7 +20,7 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from .errors import FileFormatError, GridError, MissingVariableError, UnitsError
+from .errors import FileFormatError, GridError, InputError, MissingVariableError, UnitsError
 from .units import G, units
 
 __all__ = ["open_case", "read_dataset", "normalise", "file_checksum", "detect_format"]
@@ -55,6 +55,9 @@ _VARIABLES = {
     "specific_humidity": (("specific_humidity",), ("specific_humidity", "q", "hus", "shum", "spfh", "qv"), "kg/kg"),
     "mslp": (("air_pressure_at_mean_sea_level", "air_pressure_at_sea_level"),
              ("mslp", "msl", "prmsl", "slp", "psl", "mslet", "pmsl"), "Pa"),
+    "surface_pressure": (("surface_air_pressure",), ("surface_pressure", "sp", "ps", "psfc", "pres_sfc"), "Pa"),
+    "surface_geopotential": (("surface_geopotential", "surface_altitude"),
+                             ("surface_geopotential", "orog", "orography", "phis", "zs", "hgt_sfc"), None),
 }
 REQUIRED = ("temperature", "u", "v", "geopotential")
 
@@ -66,6 +69,9 @@ _ATTRS = {
     "relative_humidity": dict(standard_name="relative_humidity", long_name="relative humidity", units="%"),
     "specific_humidity": dict(standard_name="specific_humidity", long_name="specific humidity", units="kg kg-1"),
     "mslp": dict(standard_name="air_pressure_at_mean_sea_level", long_name="mean sea-level pressure", units="Pa"),
+    "surface_pressure": dict(standard_name="surface_air_pressure", long_name="surface pressure", units="Pa"),
+    "surface_geopotential": dict(standard_name="surface_geopotential", long_name="surface geopotential",
+                                 units="m2 s-2"),
 }
 
 # unit spellings pint does not know, mapped to ones it does
@@ -122,7 +128,24 @@ def file_checksum(path) -> str:
     return h.hexdigest()
 
 
+# GRIB keys read besides cfgrib's defaults: the earth's shape, the wind-component flag and the
+# projection keys of every grid type the workbench places (workbench.grids)
+GRIB_READ_KEYS = ("shapeOfTheEarth", "radius", "uvRelativeToGrid", "resolutionAndComponentFlags",
+                  "LaDInDegrees", "LoVInDegrees", "Latin1InDegrees", "Latin2InDegrees",
+                  "projectionCentreFlag", "orientationOfTheGridInDegrees", "latitudeOfSouthernPoleInDegrees",
+                  "longitudeOfSouthernPoleInDegrees", "angleOfRotationInDegrees")
+_GRIB_PRESSURE_LEVELS = ("isobaricInhPa", "isobaricInPa")
+# hypercubes at other level types kept as single fields: (typeOfLevel, GRIB shortName) -> target
+_GRIB_SURFACE_FIELDS = {("meanSea", "prmsl"): "mslp", ("meanSea", "msl"): "mslp", ("meanSea", "mslet"): "mslp",
+                        ("surface", "sp"): "surface_pressure", ("surface", "orog"): "surface_geopotential",
+                        ("surface", "z"): "surface_geopotential"}
+
+
 def _open_grib(path, **kw):
+    """Open a GRIB2 file as forecast centres write it: every hypercube (cfgrib.open_datasets
+    splits the file by level type), the isobaric ones merged, surface pressure, orography and
+    mean-sea-level pressure kept, other level types (tropopause, maximum wind, ...) left out
+    and listed in the notes. ``filter_by_keys=`` reads one hypercube only."""
     # pyproj (through cartopy or directly) must be loaded before eccodes: newer eccodes
     # wheels clash with pyproj's bundled PROJ when imported first. Importing pyproj here
     # guarantees the order whatever the caller imported before.
@@ -131,22 +154,54 @@ def _open_grib(path, **kw):
     except ImportError:  # pragma: no cover - pyproj comes with cartopy
         pass
     try:
-        import cfgrib  # noqa: F401
+        import cfgrib
     except ImportError as exc:
         raise FileFormatError(
             f"{str(path)!r} is GRIB, which needs the optional reader: pip install 'pv-workbench[grib]'.") from exc
-    filter_by_keys = kw.pop("filter_by_keys", {"typeOfLevel": "isobaricInhPa"})
-    backend_kwargs = {"filter_by_keys": filter_by_keys, "indexpath": ""}
-    ds = xr.open_dataset(path, engine="cfgrib", backend_kwargs=backend_kwargs, **kw)
-    if "mslp" not in ds and filter_by_keys.get("typeOfLevel") == "isobaricInhPa":
-        try:
-            sfc = xr.open_dataset(path, engine="cfgrib", backend_kwargs={
-                "filter_by_keys": {"typeOfLevel": "meanSea"}, "indexpath": ""})
-            if len(sfc.data_vars):
-                sfc = sfc.drop_vars([c for c in ("meanSea",) if c in sfc.coords])
-                ds = xr.merge([ds, sfc], compat="override", join="override")
-        except Exception:  # no mean-sea-level messages: fine
-            pass
+    backend_kwargs = {"indexpath": "", "read_keys": list(GRIB_READ_KEYS)}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        if "filter_by_keys" in kw:
+            backend_kwargs["filter_by_keys"] = kw.pop("filter_by_keys")
+            return xr.open_dataset(path, engine="cfgrib", backend_kwargs=backend_kwargs, **kw)
+        cubes = cfgrib.open_datasets(str(path), backend_kwargs=backend_kwargs, **kw)
+    pressure, aux, skipped = [], {}, []
+    for cube in cubes:
+        levels = [c for c in _GRIB_PRESSURE_LEVELS if c in cube.coords]
+        if levels:
+            if cube[levels[0]].ndim == 0:  # a single isobaric level: make it a dimension
+                cube = cube.expand_dims(levels[0])
+            pressure.append(cube)
+            continue
+        for name in cube.data_vars:
+            lt = cube[name].attrs.get("GRIB_typeOfLevel", "")
+            target = _GRIB_SURFACE_FIELDS.get((lt, cube[name].attrs.get("GRIB_shortName", name)))
+            if target and target not in aux:
+                da = cube[name]
+                da = da.drop_vars([c for c in da.coords if c in (lt,) or (c not in da.dims and da[c].ndim == 0
+                                                                      and c not in ("time", "step", "valid_time"))])
+                aux[target] = da.rename(target)
+            else:
+                skipped.append(f"{name} ({lt or 'unknown level'})")
+    if not pressure:
+        found = sorted({str(c[v].attrs.get("GRIB_typeOfLevel", "?")) for c in cubes for v in c.data_vars})
+        raise MissingVariableError(
+            f"{str(path)!r} holds no fields on isobaric levels (level types found: {', '.join(found) or 'none'}). "
+            "PV needs temperature, winds and geopotential on pressure levels.")
+    names = [c for c in _GRIB_PRESSURE_LEVELS if c in pressure[0].coords]
+    pressure = [p.rename({[c for c in _GRIB_PRESSURE_LEVELS if c in p.coords][0]: names[0]}) for p in pressure]
+    if pressure[0][names[0]].attrs.get("units") is None and names[0] == "isobaricInPa":
+        pressure[0][names[0]].attrs["units"] = "Pa"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ds = xr.merge(pressure, compat="override", join="outer") if len(pressure) > 1 else pressure[0]
+        for target, da in aux.items():
+            da = da.drop_vars([c for c in da.coords if c not in ds.coords and c not in da.dims])
+            ds[target] = da
+    if aux:
+        ds.attrs["workbench_grib_surface"] = ", ".join(sorted(aux))
+    if skipped:
+        ds.attrs["workbench_grib_skipped"] = ", ".join(sorted(set(skipped)))
     return ds
 
 
@@ -285,8 +340,130 @@ def _contiguous_longitudes(lon):
     return order, new
 
 
+def _native_crs(ds):
+    """(crs, how) of a projected dataset, or (None, None) for a latitude-longitude one."""
+    from . import grids
+
+    for v in ds.data_vars:
+        gm = ds[v].attrs.get("grid_mapping") or ds[v].encoding.get("grid_mapping")
+        if gm:
+            gm = str(gm).split(":")[0].strip()
+            if gm not in ds.variables:
+                raise GridError(f"Variable {v!r} names the grid mapping {gm!r}, which is not in the file; "
+                                "the projection cannot be read.")
+            if ds[gm].attrs.get("grid_mapping_name") in ("latitude_longitude",):
+                return None, None
+            return grids.crs_from_cf(ds[gm].attrs), f"CF grid mapping {gm!r}"
+    for v in ds.data_vars:
+        if "GRIB_gridType" in ds[v].attrs:
+            crs = grids.crs_from_grib(ds[v].attrs)
+            return (crs, f"GRIB grid {ds[v].attrs['GRIB_gridType']!r}") if crs is not None else (None, None)
+    return None, None
+
+
+def _two_d(ds, target):
+    for c in list(ds.coords) + list(ds.data_vars):
+        da = ds[c]
+        if da.ndim == 2 and (da.attrs.get("standard_name") == target or _lower(c) in _COORD_NAMES[target]):
+            return c
+    return None
+
+
+def _to_latlon(ds, *, variables, region, grid_step, winds):
+    """Projected data -> the latitude-longitude grid of workbench.grids (winds earth-relative).
+    Returns the dataset unchanged for data already on latitude-longitude."""
+    from . import grids
+
+    crs, how = _native_crs(ds)
+    lat2n, lon2n = _two_d(ds, "latitude"), _two_d(ds, "longitude")
+    if crs is None:
+        if lat2n and lon2n:
+            raise GridError(
+                f"The file has 2-D latitude/longitude ({lat2n!r}, {lon2n!r}) but no projection: add a CF "
+                "grid_mapping variable (and grid_mapping attributes on the fields), or regrid the data to a "
+                "regular latitude-longitude grid first.")
+        return ds
+    # the horizontal dimensions: those of the 2-D latitude, else the last two of the temperature
+    if lat2n and lon2n:
+        ydim, xdim = ds[lat2n].dims
+        lat2d, lon2d = ds[lat2n].values, ds[lon2n].values
+        ya, xa = grids.plane_axes(lat2d, lon2d, crs)
+    else:
+        t = _find_var(ds, "temperature", (variables or {}).get("temperature"), set())
+        if t is None:
+            raise MissingVariableError("No temperature variable found on the projected grid.")
+        ydim, xdim = ds[t].dims[-2:]
+        if xdim not in ds.coords or ydim not in ds.coords:
+            raise GridError(f"The projected grid has neither 2-D latitude/longitude nor {xdim!r}/{ydim!r} "
+                            "coordinates; the points cannot be placed.")
+        scale = {"km": 1000.0, "kilometer": 1000.0, "kilometre": 1000.0}
+        xa = np.asarray(ds[xdim].values, float) * scale.get(str(ds[xdim].attrs.get("units", "m")).lower(), 1.0)
+        ya = np.asarray(ds[ydim].values, float) * scale.get(str(ds[ydim].attrs.get("units", "m")).lower(), 1.0)
+        _, to_geo = grids._transformers(crs)
+        X, Y = np.meshgrid(xa, ya)
+        lon2d, lat2d = (np.asarray(a) for a in to_geo.transform(X, Y))
+    name = grids.projection_name(crs)
+    notes = []
+    drop = [c for c in ds.coords if c not in ds.dims and ds[c].ndim >= 1 and set(ds[c].dims) & {xdim, ydim}]
+    ds = ds.drop_vars(drop)
+    ds = ds.drop_vars([v for v in ds.data_vars if not (set(ds[v].dims) >= {xdim, ydim})])
+    ds = ds.assign_coords({xdim: xa, ydim: ya})
+    # winds: earth- or grid-relative?
+    u = _find_var(ds, "u", (variables or {}).get("u"), set())
+    v = _find_var(ds, "v", (variables or {}).get("v"), {u} if u else set())
+    if u and v:
+        au, av = ds[u].attrs, ds[v].attrs
+        flag = au.get("GRIB_uvRelativeToGrid")
+        rflag = au.get("GRIB_resolutionAndComponentFlags")
+        if winds in ("grid", "earth"):
+            grid_rel, why = winds == "grid", f"as told (winds={winds!r})"
+        elif flag is not None:
+            grid_rel, why = int(flag) == 1, f"GRIB uvRelativeToGrid={int(flag)}"
+        elif rflag is not None:
+            grid_rel, why = bool(int(rflag) & 8), f"GRIB resolution-and-component flags={int(rflag)}"
+        elif au.get("standard_name") in ("x_wind", "grid_eastward_wind") or av.get("standard_name") == "y_wind":
+            grid_rel, why = True, "CF standard names x_wind/y_wind"
+        else:
+            grid_rel, why = False, "no grid-relative flag or x_wind/y_wind standard name"
+        if grid_rel:
+            angle = xr.DataArray(grids.grid_angle(crs, xa, ya), dims=(ydim, xdim))
+            ue, ve = grids.rotate_to_earth(ds[u], ds[v], angle)
+            ds[u] = ue.assign_attrs(au, standard_name="eastward_wind")
+            ds[v] = ve.assign_attrs(av, standard_name="northward_wind")
+            notes.append(f"Winds were grid-relative ({why}) and were rotated to earth-relative.")
+        else:
+            notes.append(f"Winds taken as earth-relative ({why}).")
+    ds = ds.sortby([xdim, ydim])
+    lat, lon, step = grids.latlon_target(lat2d, lon2d, crs, np.sort(xa), np.sort(ya), grid_step=grid_step,
+                                         region=region)
+    dxkm = float(np.abs(np.diff(xa)).mean()) * grids._axis_scale(crs) / 1000.0
+    attrs = dict(ds.attrs)
+    keep_attrs = {v: dict(ds[v].attrs) for v in ds.data_vars}
+    out = grids.regrid_to_latlon(ds, crs, lat, lon, xdim=xdim, ydim=ydim)
+    for v, a in keep_attrs.items():
+        out[v].attrs = a
+    out.attrs = attrs
+    out["latitude"].attrs = dict(standard_name="latitude", units="degrees_north")
+    out["longitude"].attrs = dict(standard_name="longitude", units="degrees_east")
+    notes.insert(0, f"Native grid: {name} ({how}), {len(xa)} x {len(ya)} points at {dxkm:.3g} km; computed on "
+                    f"a {step:g} degree latitude-longitude grid ({lat.size} x {lon.size}, "
+                    f"{lat[0]:g}..{lat[-1]:g} N, {(lon[0] + 180) % 360 - 180:g}..{(lon[-1] + 180) % 360 - 180:g} E) by linear interpolation on the "
+                    "projection plane.")
+    out.attrs.update(native_crs=crs.to_wkt(), native_projection=name,
+                     native_grid=f"{len(xa)} x {len(ya)}, {dxkm:.3g} km", latlon_step=step)
+    _add_notes(out, notes)
+    return out
+
+
+def _add_notes(ds, notes):
+    old = ds.attrs.get("workbench_notes", "")
+    lines = [n for n in (old.split("\n") if isinstance(old, str) else list(old)) if n]
+    lines += [n for n in notes if n and n not in lines]
+    ds.attrs["workbench_notes"] = "\n".join(lines)
+
+
 def normalise(ds: xr.Dataset, *, variables=None, coords=None, units_override=None,
-              keep_attrs=True) -> xr.Dataset:
+              keep_attrs=True, region=None, grid_step=None, winds=None) -> xr.Dataset:
     """Normalise a Dataset to the project's conventions (see the module docstring).
 
     Parameters
@@ -297,6 +474,13 @@ def normalise(ds: xr.Dataset, *, variables=None, coords=None, units_override=Non
         Target coordinate -> name in the data, e.g. ``{"pressure": "lv_ISBL0"}``.
     units_override : dict, optional
         Name in the data -> units string, for files with missing or wrong units.
+    region : (W, E, S, N), optional
+        For projected grids: the latitude-longitude box to compute on (default: the largest box
+        inside the native domain). Regular grids are cut by :func:`open_case`.
+    grid_step : float, optional
+        Latitude-longitude step (degrees) for projected grids (default: workbench.grids' rule).
+    winds : "grid" | "earth", optional
+        Override of what a projected file says about its wind components.
     """
     variables = dict(variables or {})
     coords = dict(coords or {})
@@ -313,6 +497,16 @@ def normalise(ds: xr.Dataset, *, variables=None, coords=None, units_override=Non
         ds = ds.drop_vars("time")
     if "step" in ds.coords and ds["step"].ndim == 0:
         ds = ds.drop_vars("step")
+    # forecast steps of one run: the valid time is the time axis
+    if "step" in ds.dims and "valid_time" in ds.coords and ds["valid_time"].dims == ("step",):
+        ds = ds.swap_dims(step="valid_time").drop_vars(["step"] + (["time"] if "time" in ds.coords
+                                                                   and ds["time"].ndim == 0 else []))
+    elif "time" in ds.dims and "valid_time" in ds.coords and ds["valid_time"].dims == ("time",):
+        ds = ds.assign_coords(time=ds["valid_time"].values).drop_vars("valid_time")
+    notes = []
+    if ds.attrs.get("workbench_grib_skipped"):
+        notes.append(f"GRIB fields on other level types left out: {ds.attrs['workbench_grib_skipped']}.")
+    ds = _to_latlon(ds, variables=variables, region=region, grid_step=grid_step, winds=winds)
 
     found = {}
     for target in ("latitude", "longitude", "pressure", "time", "member"):
@@ -343,11 +537,11 @@ def normalise(ds: xr.Dataset, *, variables=None, coords=None, units_override=Non
     out = {}
     for target, v in picked.items():
         da = ds[v]
-        if target == "geopotential":
+        if target in ("geopotential", "surface_geopotential"):
             ustr = units_override.get(v, da.attrs.get("units"))
             if ustr is None or str(ustr).strip() == "":
                 raise UnitsError(
-                    f"Variable {v!r} (used as geopotential) has no units attribute, so geopotential "
+                    f"Variable {v!r} (used as {target}) has no units attribute, so geopotential "
                     f"(m2 s-2) and geopotential height (m) cannot be told apart. Pass "
                     f"units={{{v!r}: 'm2 s-2'}} or units={{{v!r}: 'm'}} to open_case.")
             u = _parse_units(ustr, v)
@@ -473,19 +667,149 @@ def normalise(ds: xr.Dataset, *, variables=None, coords=None, units_override=Non
     drop = [c for c in new.coords if c not in dims]
     new = new.drop_vars(drop)
     new.attrs.setdefault("title", "")
+    _add_notes(new, notes)
     from .checks import check_plausible; new = check_plausible(new)  # noqa: E702 (plausibility, workbench.checks)
     return new
 
 
 # --- entry point ---------------------------------------------------------------------------
 
+def _resolve_sources(source):
+    """A path, a glob pattern, a folder of files or a list of them -> (paths, label).
+    A Zarr folder is one source."""
+    import glob as _glob
+
+    if isinstance(source, (list, tuple)):
+        paths = [Path(os.fspath(p)).expanduser() for p in source]
+        if not paths:
+            raise FileFormatError("An empty list of files was given; give at least one case file.")
+        return paths, f"{len(paths)} files: {paths[0].name} .. {paths[-1].name}" if len(paths) > 1 else str(paths[0])
+    text = os.fspath(source)
+    p = Path(text).expanduser()
+    if not p.exists() and any(ch in str(text) for ch in "*?["):
+        paths = sorted(Path(x) for x in _glob.glob(os.path.expanduser(str(text))))
+        if not paths:
+            raise FileFormatError(f"No files match {str(text)!r}. Check the pattern.")
+        return paths, str(text)
+    if p.is_dir() and detect_format_safe(p) != "zarr":
+        paths = sorted(q for q in p.iterdir() if q.is_file() and not q.name.startswith(".")
+                       and detect_format_safe(q) in ("netcdf", "grib"))
+        if not paths:
+            raise FileFormatError(f"The folder {str(p)!r} holds no netCDF or GRIB2 files (and is not a Zarr store).")
+        return paths, str(p)
+    return [p], str(p)
+
+
+def detect_format_safe(path):
+    try:
+        return detect_format(path)
+    except FileFormatError:
+        return None
+
+
+def _combine(parts, labels):
+    """Several normalised datasets (one per file) -> one along time; same grid required."""
+    first = parts[0]
+    for d, lab in zip(parts[1:], labels[1:]):
+        for c in ("pressure", "latitude", "longitude"):
+            if d.sizes[c] != first.sizes[c] or not np.allclose(d[c].values, first[c].values, atol=1e-6):
+                raise GridError(f"{lab} is on another grid than {labels[0]} (its {c} differs); a case's files "
+                                "must share one grid.")
+        missing = [v for v in ("temperature", "u", "v", "geopotential") if v not in d]
+        if missing:
+            raise MissingVariableError(f"{lab} lacks {', '.join(missing)}.")
+    common = [v for v in first.data_vars if all(v in d for d in parts)]
+    timeless = [v for v in common if "time" not in first[v].dims]
+    timed = [v for v in common if v not in timeless]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        out = xr.concat([d[timed] for d in parts], dim="time", coords="minimal", compat="override",
+                        join="override", combine_attrs="override")
+    for v in timeless:
+        out[v] = first[v]
+    t = out["time"].values
+    if t.size != np.unique(t).size:
+        vals, counts = np.unique(t, return_counts=True)
+        raise GridError(f"The files repeat the times {[str(x)[:16] for x in vals[counts > 1]][:5]}; give each time once.")
+    out = out.sortby("time")
+    _add_notes(out, [f"Opened {len(parts)} files as one case ({out.sizes['time']} times)."])
+    return out
+
+
+def _select(data, region=None, times=None):
+    """Cut a normalised dataset to a (W, E, S, N) box and a time selection, lazily."""
+    if times is not None:
+        t = data["time"].values
+        if isinstance(times, slice):
+            if isinstance(times.start, (str, np.datetime64)) or isinstance(times.stop, (str, np.datetime64)):
+                data = data.sel(time=times)
+            else:
+                data = data.isel(time=times)
+        else:
+            items = list(times) if isinstance(times, (list, tuple, np.ndarray)) else [times]
+            idx = []
+            for it in items:
+                if isinstance(it, (int, np.integer)):
+                    if not -t.size <= int(it) < t.size:
+                        raise InputError(f"Time index {it} is out of range: the data have {t.size} times.")
+                    idx.append(int(it) % t.size)
+                else:
+                    try:
+                        hit = np.nonzero(t.astype("datetime64[ns]") == np.datetime64(str(it), "ns"))[0]
+                    except ValueError:
+                        raise InputError(f"Cannot read {it!r} as a time; give an index or an ISO time.") from None
+                    if hit.size == 0:
+                        raise InputError(f"Time {it} is not in the data (times {str(t[0])[:16]} .. {str(t[-1])[:16]}).")
+                    idx.append(int(hit[0]))
+            data = data.isel(time=sorted(set(idx)))
+        if data.sizes["time"] == 0:
+            raise InputError("The time selection holds no time of the data.")
+    if region is not None:
+        w, e, s_, n_ = _check_region(region)
+        lat = data["latitude"].values
+        lon = data["longitude"].values
+        jj = np.nonzero((lat >= s_ - 1e-9) & (lat <= n_ + 1e-9))[0]
+        width = np.mod(e - w, 360.0) or 360.0
+        ii = np.nonzero(np.mod(lon - w + 1e-9, 360.0) <= width + 2e-9)[0]
+        if jj.size < 3 or ii.size < 3:
+            d = dict(lat_min=float(lat.min()), lat_max=float(lat.max()), lon_min=float(lon.min()),
+                     lon_max=float(lon.max()))
+            raise InputError(f"The region {w:g},{e:g},{s_:g},{n_:g} (W,E,S,N) holds fewer than 3 x 3 grid points of "
+                             f"the data (domain {d['lon_min']:g}..{d['lon_max']:g} E, {d['lat_min']:g}..{d['lat_max']:g} N).")
+        data = data.isel(latitude=slice(int(jj[0]), int(jj[-1]) + 1), longitude=ii)
+        _add_notes(data, [f"Cut to the region {w:g}..{e:g} E, {s_:g}..{n_:g} N."])
+    return data
+
+
+def _check_region(region):
+    if isinstance(region, str):
+        region = region.split(",")
+    try:
+        w, e, s_, n_ = (float(x) for x in region)
+    except (TypeError, ValueError):
+        raise InputError(f"A region is four numbers W,E,S,N in degrees (e.g. -40,10,35,70), got {region!r}.") from None
+    if not all(np.isfinite([w, e, s_, n_])):
+        raise InputError(f"Region values must be finite, got {region!r}.")
+    if not (-90.0 <= s_ < n_ <= 90.0):
+        raise InputError(f"Region south {s_:g} and north {n_:g} must satisfy -90 <= S < N <= 90.")
+    if not (-360.0 <= w <= 360.0 and -360.0 <= e <= 360.0):
+        raise InputError(f"Region longitudes {w:g}, {e:g} must lie within -360..360 degrees.")
+    return w, e, s_, n_
+
+
 def open_case(source, **options):
-    """Open a case from a path (netCDF, GRIB2, Zarr) or an in-memory ``xarray.Dataset``.
+    """Open a case from a path (netCDF, GRIB2, Zarr), several files, or an ``xarray.Dataset``.
+
+    ``source``: a file, a Zarr store, a folder of netCDF/GRIB2 files, a glob pattern such as
+    ``"run/*.grib2"`` or a list of files (one time or step each, opened as one case along time);
+    or an in-memory Dataset.
 
     Options: ``name``, ``chunks`` (Dask chunks, default one time per chunk for files),
-    ``variables``, ``coords`` and ``units`` (overrides for unusual files, see
-    :func:`normalise`), ``f0`` (Coriolis parameter for QG, default the domain centre's),
-    and reader keywords (``filter_by_keys`` for GRIB).
+    ``region=(W, E, S, N)`` and ``times=`` (index, list, ISO time or slice) chosen before
+    anything is computed, ``grid_step`` (degrees, for projected grids), ``winds="grid"|"earth"``
+    (override for projected files), ``variables``, ``coords`` and ``units`` (overrides for
+    unusual files, see :func:`normalise`), ``f0`` (Coriolis parameter for QG, default the domain
+    centre's), and reader keywords (``filter_by_keys`` for GRIB, to read one hypercube only).
     Returns a :class:`workbench.case.Case`.
     """
     from .case import Case
@@ -496,17 +820,46 @@ def open_case(source, **options):
     coords = options.pop("coords", None)
     units_override = options.pop("units", None)
     chunks = options.pop("chunks", "auto-time")
+    region = options.pop("region", None)
+    times = options.pop("times", None)
+    grid_step = options.pop("grid_step", None)
+    winds = options.pop("winds", None)
+    if winds not in (None, "grid", "earth"):
+        raise InputError(f"winds must be 'grid' or 'earth', got {winds!r}.")
+    if region is not None:
+        region = _check_region(region)
+    norm = dict(variables=variables, coords=coords, units_override=units_override, region=region,
+                grid_step=grid_step, winds=winds)
     if isinstance(source, xr.Dataset):
-        raw, path, checksum = source, None, None
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", category=RuntimeWarning)
+            data = normalise(source, **norm)
+        path_label, checksum, lazy = "<in-memory>", None, False
     else:
-        path = Path(os.fspath(source)).expanduser()
+        paths, path_label = _resolve_sources(source)
         if chunks == "auto-time":
             chunks = {}
-        raw = read_dataset(path, chunks=chunks, **options)
-        checksum = file_checksum(path)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", category=RuntimeWarning)
-        data = normalise(raw, variables=variables, coords=coords, units_override=units_override)
-    if path is not None and chunks == {}:
+        parts = []
+        for p in paths:
+            raw = read_dataset(p, chunks=chunks, **options)
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", category=RuntimeWarning)
+                try:
+                    parts.append(normalise(raw, **norm))
+                except InputError as exc:
+                    if len(paths) > 1:
+                        raise type(exc)(f"{p.name}: {exc}") from None
+                    raise
+        data = parts[0] if len(parts) == 1 else _combine(parts, [p.name for p in paths])
+        if len(paths) == 1:
+            checksum = file_checksum(paths[0])
+        else:
+            h = hashlib.sha256()
+            for p in sorted(paths):  # the same files in any order are the same case
+                h.update(file_checksum(p).encode())
+            checksum = h.hexdigest()
+        lazy = chunks == {}
+    data = _select(data, region=None if data.attrs.get("native_crs") else region, times=times)
+    if lazy:
         data = data.chunk({"time": 1})
-    return Case(data, source=str(path) if path else "<in-memory>", name=name, checksum=checksum, f0=f0)
+    return Case(data, source=path_label, name=name, checksum=checksum, f0=f0)
