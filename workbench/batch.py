@@ -72,13 +72,17 @@ def run_batch(path, *, pieces=None, times=None, members=None, target=None, refer
                 tables.append(_one(path, ti, mi, pieces, target, ref, options))
                 bar.update(1)
         else:
-            from dask.distributed import as_completed
+            import time
 
             ref_future = client.scatter(ref, broadcast=True)
             futures = [client.submit(_one, path, ti, mi, pieces, target, ref_future, options, pure=False)
                        for ti, mi in jobs]
-            for _ in as_completed(futures):
-                bar.update(1)
+            while True:  # polls the futures' state (no extra tasks left behind by an interrupt)
+                done = sum(f.done() for f in futures)
+                bar.update(done - bar.n)
+                if done == len(futures) or any(f.status == "error" for f in futures):
+                    break
+                time.sleep(0.2)
             tables = client.gather(futures)
     finally:
         bar.close()

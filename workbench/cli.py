@@ -368,27 +368,29 @@ def _split_global(argv):
 
 
 def _finish(code: int, grace_s: float = 3.0) -> int:
-    """End of a ``pvwb`` process: remove temporary files, give non-daemon threads (thread-pool
-    workers) ``grace_s`` seconds to finish, then leave at once if one still runs, so an interrupt
-    always ends the process instead of hanging in the interpreter's shutdown."""
+    """End of a ``pvwb`` process: remove temporary files; after an interrupt (exit status 130,
+    or 128 + a signal) a daemon watchdog ends the process ``grace_s`` seconds later if the
+    interpreter's shutdown is still waiting for a busy thread-pool worker, so Ctrl-C always
+    ends the run."""
     import threading
-    import time
 
     from .export import remove_live_temps
 
     remove_live_temps()
-    deadline = time.monotonic() + grace_s
-    for t in threading.enumerate():
-        if t is threading.main_thread() or t.daemon:
-            continue
-        t.join(max(0.0, deadline - time.monotonic()))
-    if any(t.is_alive() and not t.daemon for t in threading.enumerate() if t is not threading.main_thread()):
-        for stream in (sys.stdout, sys.stderr):
-            try:
-                stream.flush()
-            except Exception:
-                pass
-        os._exit(code)
+    if code >= 128:
+        def watchdog():
+            import time
+
+            time.sleep(grace_s)
+            remove_live_temps()
+            for stream in (sys.stdout, sys.stderr):
+                try:
+                    stream.flush()
+                except Exception:
+                    pass
+            os._exit(code)
+
+        threading.Thread(target=watchdog, name="pvwb-exit-watchdog", daemon=True).start()
     return code
 
 
@@ -446,10 +448,13 @@ def _main(argv) -> int:
 
         mod = importlib.import_module(f"workbench.{COMMANDS[cmd]}")
         return int(mod.main(([cmd] if cmd in ("info", "invert") else []) + rest) or 0)
-    except SystemExit as exc:  # argparse (usage errors: 2, --help: 0) and SIGTERM (143)
+    except SystemExit as exc:  # argparse (usage errors: 2, --help: 0) and SIGTERM/SIGHUP (128 + n)
         if debug and exc.code not in (0, None):
             raise
-        return exc.code if isinstance(exc.code, int) else (0 if exc.code is None else 2)
+        code = exc.code if isinstance(exc.code, int) else (0 if exc.code is None else 2)
+        if code > 128:
+            print(f"pvwb {cmd}: terminated", file=sys.stderr)
+        return code
     except KeyboardInterrupt:
         if debug:
             raise
