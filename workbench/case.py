@@ -125,7 +125,7 @@ class Case:
             self._set_note("missing", "Missing values and terrain are handled by the terrain rule as "
                            "times are loaded (counts appear here as they are).")
             return
-        if not bool(has_nan):
+        if not bool(load_fields(has_nan, self.source)):
             self._census_complete = True
             return
         members = [None] if self.members is None else range(len(self.members))

@@ -251,13 +251,22 @@ def _check_pressure(ds):
             "(or pass units={'<name>': 'hPa'} to open_case).")
 
 
-def _is_round(v):
-    """A value that is a whole number in the file's likely units (as fill values are): itself,
-    or undone from a degC->K, m->m2 s-2 or hPa->Pa conversion."""
+def _file_value(v):
+    """The whole number a value was in the file's likely units (as fill values are): itself,
+    or undone from a degC->K, m->m2 s-2 or hPa->Pa conversion; None if none is whole."""
     for c in (v, v - 273.15, v / G, v / 100.0):
         if abs(c - round(c)) <= 1e-6 * abs(c) + 1e-4:
-            return True
-    return False
+            return float(round(c))
+    return None
+
+
+def _is_round(v):
+    return _file_value(v) is not None
+
+
+def _show(v):
+    fv = _file_value(v) if abs(v) < FILL_MAGNITUDE else None
+    return f"{v:.6g}" if fv is None or fv == v else f"{v:.6g} ({fv:g} in the file's units)"
 
 
 def _fills(ds, name, x, lo, hi, unit):
@@ -277,7 +286,7 @@ def _fills(ds, name, x, lo, hi, unit):
     fills = sorted(fills)
     isfill = np.isin(x, fills)
     n, total = int(isfill.sum()), int(finite.sum())
-    shown = ", ".join(f"{v:.6g}" for v in fills)
+    shown = ", ".join(_show(v) for v in fills)
     if n > 0.5 * total:
         raise InputError(
             f"{_who(ds, name)} holds {shown} {unit} at {n} of {total} checked points: the variable is "
@@ -439,9 +448,10 @@ def netcdf_groups(path) -> dict:
 
 # --- loading -------------------------------------------------------------------------------
 
-def load_fields(sel: xr.Dataset, source="the case file") -> xr.Dataset:
-    """``sel.astype("float64").load()`` with read errors of lazy files (a truncated or corrupt
-    chunk, a file removed since it was opened) turned into one-line FileFormatErrors."""
+def load_fields(sel, source="the case file"):
+    """``sel.astype("float64").load()`` (a Dataset or DataArray) with read errors of lazy files
+    (a truncated or corrupt chunk, a file removed since it was opened) turned into one-line
+    FileFormatErrors."""
     try:
         return sel.astype("float64").load()
     except MemoryError:
