@@ -288,3 +288,29 @@ def test_domain_with_pole_needs_region():
     crs, x, y, lat2d, lon2d = ff.plane_grid("polar_stereographic", nx=60, ny=60, dx=100000.0, centre=(-30.0, 89.0))
     with pytest.raises(GridError, match="contains a pole"):
         grids.latlon_target(lat2d, lon2d, crs, x, y)
+
+
+# --- maps in the data's own projection --------------------------------------------------------
+
+@pytest.mark.parametrize("kind,cls", [("lambert", "LambertConformal"), ("polar_stereographic", "Stereographic"),
+                                      ("rotated_pole", "RotatedPole"), ("mercator", "Mercator")])
+def test_maps_drawn_in_native_projection_by_default(tmp_path, kind, cls):
+    from pathlib import Path
+
+    from workbench.views import static
+
+    path = tmp_path / f"{kind}.nc"
+    ff.write_cf_netcdf(path, kind, grid_relative=True)
+    case = wb.open_case(path)
+    fig = static.map_figure(case, field="ertel_pv", surface=320.0, time=0)
+    assert type(fig.axes[0].projection).__name__ == cls
+    art = Path(__file__).parent / "artifacts"
+    art.mkdir(exist_ok=True)
+    static.save_figure(fig, art / f"native_map_{kind}.png", overwrite=True)
+    # the switch: the same map on plain latitude-longitude
+    flat = static.map_figure(case, field="ertel_pv", surface=320.0, time=0, settings={"projection": "plate_carree"})
+    assert type(flat.axes[0].projection).__name__ == "PlateCarree"
+    # the projection's parameters are the file's: its standard parallels / pole
+    if kind == "lambert":
+        p = fig.axes[0].projection.proj4_params
+        assert (p["lat_1"], p["lat_2"], p["lon_0"]) == (35.0, 60.0, -30.0)

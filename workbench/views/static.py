@@ -27,6 +27,7 @@ from __future__ import annotations
 import dataclasses
 import math
 import os
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Sequence
@@ -273,6 +274,7 @@ class MapData:
     field: xr.DataArray  # 2-D (latitude, longitude)
     field_name: str
     surface: str
+    native_crs: str | None = None  # WKT of the data's own projection (projected model grids)
     contour: xr.DataArray | None = None
     contour_name: str | None = None
     overlays: list = field(default_factory=list)
@@ -341,6 +343,11 @@ def _time_label(case, time) -> str:
         return ""
     t = case.times[case.time_index(time)]
     return np.datetime_as_string(np.datetime64(t, "m"), unit="m").replace("T", " ") + " UTC"
+
+
+def _native_crs(case):
+    data = getattr(case, "data", None)
+    return None if data is None else data.attrs.get("native_crs") or None
 
 
 def _case_meta(case, time, member) -> dict[str, Any]:
@@ -460,6 +467,7 @@ def map_data(
                                                   settings.overlay_level_hpa, results),
         annotations=ann.in_space(annotations, "map"),
         target=None if target is None else tuple(float(x) for x in target),
+        native_crs=_native_crs(case),
         **_case_meta(case, time, member),
     )
 
@@ -467,7 +475,39 @@ def map_data(
 # --------------------------------------------------------------------------- drawing helpers
 
 
-def _projection(settings: FigureSettings, lon0: float, lat_min: float, lat_max: float):
+def native_projection(wkt: str | None):
+    """The cartopy projection of a case's own grid (``case.data.attrs["native_crs"]``, WKT), or
+    None for latitude-longitude data."""
+    if not wkt:
+        return None
+    import pyproj
+
+    crs = pyproj.CRS.from_wkt(wkt)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        p4 = crs.to_dict()
+    ell = crs.ellipsoid
+    globe = ccrs.Globe(semimajor_axis=ell.semi_major_metre, semiminor_axis=ell.semi_minor_metre,
+                       ellipse=None) if ell is not None else None
+    kind, g = p4.get("proj"), lambda k, d=0.0: float(p4.get(k, d))
+    if kind == "ob_tran":  # rotated pole
+        return ccrs.RotatedPole(pole_longitude=g("lon_0") + 180.0, pole_latitude=g("o_lat_p", 90.0),
+                                central_rotated_longitude=g("o_lon_p"), globe=globe)
+    if kind == "lcc":
+        return ccrs.LambertConformal(central_longitude=g("lon_0"), central_latitude=g("lat_0"),
+                                     standard_parallels=(g("lat_1"), g("lat_2", g("lat_1"))), globe=globe)
+    if kind == "stere":
+        return ccrs.Stereographic(central_latitude=g("lat_0", 90.0), central_longitude=g("lon_0"),
+                                  true_scale_latitude=p4.get("lat_ts"), globe=globe)
+    if kind == "merc":
+        return ccrs.Mercator(central_longitude=g("lon_0"), latitude_true_scale=g("lat_ts"), globe=globe)
+    return None  # a projection cartopy has no class for here: drawn on latitude-longitude
+
+
+def _projection(settings: FigureSettings, lon0: float, lat_min: float, lat_max: float, native_crs=None):
+    if settings.projection == "native":
+        proj = native_projection(native_crs)
+        return proj if proj is not None else ccrs.PlateCarree(central_longitude=lon0)
     if settings.projection == "plate_carree":
         return ccrs.PlateCarree(central_longitude=lon0)
     if settings.projection == "lambert_conformal":
@@ -643,7 +683,7 @@ def draw_map(data: MapData, settings: FigureSettings | dict | None = None,
     values = np.asarray(da.values, float) * scale
 
     lon0 = 0.5 * (lon.min() + lon.max())
-    proj = _projection(settings, lon0, lat.min(), lat.max())
+    proj = _projection(settings, lon0, lat.min(), lat.max(), getattr(data, "native_crs", None))
     data_crs = ccrs.PlateCarree()
     width = page_size[0] if page_size else settings.width_in
     fig = Figure(figsize=(width, page_size[1] if page_size else settings.height_in),
@@ -849,6 +889,7 @@ def map_figure(source, field=None, surface=None, **kwargs) -> Figure:
         md = MapData(field=source, field_name=field or str(source.name),
                      surface=_surface_label(surface or source.attrs.get("surface", "")),
                      annotations=ann.in_space(kwargs.get("annotations"), "map"),
+                     native_crs=_native_crs(case),
                      **_case_meta(case, kwargs.get("time"), kwargs.get("member")))
         return draw_map(md, settings)
     if _is_state(source):
