@@ -493,13 +493,14 @@ class Case:
             vars_ = ["temperature", "geopotential", "u", "v"]
             if isinstance(kind, str) and kind in REFERENCE_KINDS:
                 members = [None] if self.members is None else range(len(self.members))
-                total, n = None, 0
+                total, n = None, None  # NaN-skipping mean (gaps too large to fill)
                 for ti in range(self.times.size):
                     for mi in members:
                         ds = self._complete(ti, mi, store=False)[0][vars_]
-                        total = ds if total is None else total + ds
-                        n += 1
-                mean = (total / n)
+                        ok = ds.notnull().astype("float64")
+                        total = ds.fillna(0.0) if total is None else total + ds.fillna(0.0)
+                        n = ok if n is None else n + ok
+                mean = total / n.where(n > 0)
                 mean = mean.drop_vars([c for c in mean.coords if c not in ("pressure", "latitude", "longitude")])
                 for v in vars_:
                     mean[v].attrs = dict(self.data[v].attrs)

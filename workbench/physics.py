@@ -326,7 +326,7 @@ def qg_pv(geopotential: xr.DataArray, temperature: xr.DataArray, sigma: xr.DataA
 #   pressure exceeds the surface pressure when ``surface_pressure`` is present. A column with
 #   no valid level at all is a gap, not terrain.
 # * scattered gaps: missing points above the ground that form clusters of at most
-#   MAX_GAP_POINTS points on one level (8-connected) are filled from valid neighbours on the
+#   MAX_GAP_POINTS points on one level (4-connected: points sharing an edge) are filled from valid neighbours on the
 #   same level: the mean of the linear interpolants along longitude and along latitude
 #   (xarray ``interpolate_na``, runs of at most MAX_GAP_RUN points), where neither exists the
 #   nearest valid value (``scipy.ndimage.distance_transform_edt``). Larger gaps stay missing.
@@ -337,7 +337,7 @@ def qg_pv(geopotential: xr.DataArray, temperature: xr.DataArray, sigma: xr.DataA
 
 #: Standard-atmosphere lapse rate (K m-1): ICAO Standard Atmosphere / U.S. Standard Atmosphere 1976.
 LAPSE_RATE = 0.0065
-#: Largest cluster of scattered missing points (on one level, 8-connected) that is filled.
+#: Largest cluster of scattered missing points (on one level, 4-connected) that is filled.
 MAX_GAP_POINTS = 9
 #: Longest run along longitude or latitude bridged by linear interpolation when filling.
 MAX_GAP_RUN = 3
@@ -448,9 +448,9 @@ def complete_fields(ds: xr.Dataset):
     filled_any = np.zeros(ref.shape, dtype=bool)
     gaps_any = np.zeros(ref.shape, dtype=bool)
     largest = 0
-    # 8-connected on each level only (no connection across levels or leading dims)
+    # 4-connected (edge neighbours) on each level only (no connection across levels or leading dims)
     structure = np.zeros((3,) * ref.ndim, dtype=bool)
-    structure[(1,) * (ref.ndim - 2)] = True
+    structure[(1,) * (ref.ndim - 2)] = ndimage.generate_binary_structure(2, 1)
     fields3d = [n for n in ds.data_vars if "pressure" in ds[n].dims and ds[n].ndim == ref.ndim]
     for name in fields3d:
         da = ds[name].transpose(*dims).astype("float64")
