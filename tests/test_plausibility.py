@@ -252,9 +252,6 @@ def test_360_day_dates_missing_from_the_standard_calendar_moved_by_position_in_y
     assert np.all(np.diff(out["time"].values).astype("timedelta64[h]").astype(int) > 0)
 
 
-@pytest.mark.xfail(raises=ValueError, strict=False,
-                   reason="io.normalise sorts the times before the calendar is converted; it needs "
-                          "checks.standard_calendar applied before its time sort")
 def test_360_day_netcdf_file_with_february_30(tmp_path):
     """Several times including 2051-02-29/30: opened (dates moved by position in the year)."""
     ds = base(ntime=4)

@@ -214,9 +214,19 @@ def read_dataset(path, *, chunks=None, **kw) -> xr.Dataset:
         if fmt == "grib":
             return _open_grib(path, chunks=chunks, **kw)
         try:
-            return xr.open_dataset(path, engine="netcdf4", chunks=chunks, **kw)
+            ds = xr.open_dataset(path, engine="netcdf4", chunks=chunks, **kw)
         except (OSError, ValueError):
-            return xr.open_dataset(path, engine="h5netcdf", chunks=chunks, **kw)
+            ds = xr.open_dataset(path, engine="h5netcdf", chunks=chunks, **kw)
+        if len(ds.data_vars) == 0 and "group" not in kw:
+            from .checks import netcdf_groups
+
+            groups = netcdf_groups(path)
+            if groups:
+                listed = "; ".join(f"{g}: {', '.join(v[:6])}" for g, v in list(groups.items())[:5])
+                raise FileFormatError(
+                    f"{str(path)!r} keeps its variables in netCDF groups ({listed}); open one with "
+                    f"open_case(path, group='{next(iter(groups)).lstrip('/')}').")
+        return ds
     except FileFormatError:
         raise
     except Exception as exc:  # truncated or corrupt files end up here
@@ -582,6 +592,9 @@ def normalise(ds: xr.Dataset, *, variables=None, coords=None, units_override=Non
             new = new.expand_dims(time=[np.datetime64("NaT", "ns")])
     if "member" in new.coords and "member" not in new.dims:
         new = new.drop_vars("member")
+    from .checks import standard_calendar
+
+    new = standard_calendar(new, "time")  # 360-day, noleap ... -> standard datetimes (or a clear refusal)
     tvals = new["time"].values
     if tvals.size != np.unique(tvals).size:
         vals, counts = np.unique(tvals, return_counts=True)
@@ -615,13 +628,22 @@ def normalise(ds: xr.Dataset, *, variables=None, coords=None, units_override=Non
         raise GridError(
             f"Only {pv.size} pressure level(s) found; vertical derivatives (PV, static stability) need "
             "at least 3 isobaric levels. Open a file with the full column of pressure levels.")
+    if not np.all(np.isfinite(pv)):
+        raise GridError(f"The pressure coordinate {found['pressure']!r} holds missing values; give every level a pressure.")
     if np.any(pv <= 0) or np.any(pv > 110000):
-        raise UnitsError(f"Pressure levels {pv[:3]}... Pa are not plausible isobaric levels; check the units.")
+        hint = (" They look like Pa labelled hPa (100 times too large)." if np.nanmax(pv) > 1e6 else "")
+        raise UnitsError(f"Pressure levels {', '.join(f'{x:g}' for x in pv[:3])}... Pa (from {found['pressure']!r}, "
+                         f"units {pc.attrs.get('units')!r}) are not plausible isobaric levels (0 < p <= 1100 hPa)."
+                         f"{hint} Check the units attribute.")
     new = new.assign_coords(pressure=pv).sortby("pressure", ascending=False)
     new["pressure"].attrs = dict(standard_name="air_pressure", long_name="pressure", units="Pa", positive="down")
 
     # latitude ascending
     lat = np.asarray(new["latitude"].values, dtype=float)
+    for c in ("latitude", "longitude"):
+        if not np.all(np.isfinite(np.asarray(new[c].values, dtype=float))):
+            raise GridError(f"The {c} coordinate {found[c]!r} holds missing (NaN) values; every grid column "
+                            "needs a position. Fix or drop those points.")
     if lat.size != np.unique(lat).size:
         raise GridError("Duplicate latitudes in the data; remove them before opening the case.")
     if lat.size < 3:
