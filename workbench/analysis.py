@@ -12,7 +12,7 @@ import numpy as np
 
 from .errors import GridError, InputError
 
-__all__ = ["standard_pieces", "cyclonic_sign", "storm_centre", "analyse", "default_case_path", "load_pieces", "main"]
+__all__ = ["standard_pieces", "cyclonic_sign", "storm_centre", "analyse", "above_ground_target", "default_case_path", "load_pieces", "main"]
 
 SAMPLE_DIR = Path(__file__).resolve().parents[1] / "sample_cases"
 
@@ -92,12 +92,46 @@ def storm_centre(case, time=None, member=None):
     return float(inner["longitude"][i]), float(inner["latitude"][j])
 
 
-def analyse(case, time=None, member=None, pieces=None, target=None, reference="time_mean"):
+def above_ground_target(case, target, time=None, member=None):
+    """``(target, note)``: ``target`` (lon, lat, hPa) moved up to the first level above the
+    ground where it lies below it, with a sentence saying so (else ``note`` is None).
+
+    The attribution interpolates bilinearly from the four surrounding columns and linearly in
+    pressure, so the target must be at or above the first level that is above the ground in
+    all four columns (the terrain rule, :meth:`workbench.Case.below_ground`)."""
+    lon, lat, p = (float(x) for x in target)
+    below = case.below_ground(time, member)
+    if not bool(below.any()):
+        return (lon, lat, p), None
+    la, lo = below["latitude"].values, below["longitude"].values
+    j = int(np.clip(np.searchsorted(la, lat), 1, la.size - 1))
+    i = int(np.clip(np.searchsorted(lo, lon), 1, lo.size - 1))
+    k0 = int(below.isel(latitude=slice(j - 1, j + 1), longitude=slice(i - 1, i + 1)).sum("pressure").max())
+    levels = case.levels_hpa
+    if k0 >= levels.size:
+        raise InputError(f"The target {lon:g} E, {lat:g} N lies under the ground at every level; pick "
+                         "another point.")
+    if p <= levels[k0] + 1e-9:
+        return (lon, lat, p), None
+    note = (f"The target {p:g} hPa lies below the ground at {lon:.1f} E, {lat:.1f} N; it was moved up "
+            f"to {levels[k0]:g} hPa, the first level above the ground there.")
+    return (lon, lat, float(levels[k0])), note
+
+
+def analyse(case, time=None, member=None, pieces=None, target=None, reference=None):
     """Invert ``pieces`` (default :func:`standard_pieces`) at one time and return
     ``(results, table, target)``: the balanced Datasets per piece, the attribution DataFrame
     at ``target`` = (lon, lat, pressure hPa) (default the storm centre at the lowest level
-    but one, 950 hPa on the usual level set), and the target used."""
+    but one, 950 hPa on the usual level set), and the target used.
+
+    ``reference`` None is the case's default (:attr:`workbench.Case.default_reference`). A
+    target below the ground (given or default) is moved up to the first level above it
+    (:func:`above_ground_target`). ``table.attrs["notes"]`` holds the sentences to show with
+    the table (target moved, shares not given); ``table.attrs["reference"]`` names the
+    reference used."""
     from .inversion.pieces import attribution
+
+    reference = case.resolve_reference(reference)
 
     if pieces is None:
         pieces = standard_pieces(moist=case.relative_humidity(time, member) is not None,
@@ -106,8 +140,12 @@ def analyse(case, time=None, member=None, pieces=None, target=None, reference="t
         lon, lat = storm_centre(case, time, member)
         levels = case.levels_hpa
         target = (lon, lat, float(levels[1] if levels.size > 1 else levels[0]))
+    target, moved = above_ground_target(case, target, time, member)
     results = case.inversion(pieces, time, member, reference)
     table = attribution(results, *target)
+    ref_label = reference if isinstance(reference, str) else "climatology (dataset)"
+    table.attrs["reference"] = ref_label
+    table.attrs["notes"] = ([moved] if moved else []) + list(table.attrs.get("share_notes", []))
     return results, table, tuple(float(x) for x in target)
 
 
@@ -155,7 +193,8 @@ def main(argv=None):
     parser.add_argument("--member", default=None)
     parser.add_argument("--target", default=None, help="lon,lat,pressure_hPa (default: storm centre, 2nd level)")
     parser.add_argument("--pieces", default=None, help="JSON file with a list of pieces (default: standard pieces)")
-    parser.add_argument("--reference", default="time_mean", help="time_mean | area_mean | zonal_mean | PATH")
+    parser.add_argument("--reference", default=None,
+                        help="time_mean | area_mean | zonal_mean | PATH (default: the case's, see `pvwb info`)")
     parser.add_argument("-o", "--output", default=None, help="write the attribution table(s) as CSV")
     parser.add_argument("--overwrite", action="store_true", help="replace an existing output file")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
@@ -180,6 +219,8 @@ def main(argv=None):
     times = [case.time_index(t) for t in times]  # checked before the work
     import pandas as pd
 
+    from .inversion.pieces import format_share
+
     tables = []
     print(case)
     print("\nDiagnostic analysis of model/analysis data, not a forecast or warning. Decisions follow "
@@ -187,10 +228,14 @@ def main(argv=None):
     for t in cli.progress(times, desc="invert", unit="time", enabled=None if not args.quiet else False):
         _, table, target_used = analyse(case, t, member, pieces, target, args.reference)
         label = str(case.times[t])[:16]
-        print(f"{label}  target {target_used[0]:.1f} E, {target_used[1]:.1f} N, {target_used[2]:g} hPa")
+        print(f"{label}  target {target_used[0]:.1f} E, {target_used[1]:.1f} N, {target_used[2]:g} hPa; "
+              f"reference {table.attrs['reference'].replace('_', ' ')}")
+        for note in table.attrs.get("notes", []):
+            print(f"note: {note}")
         with pd.option_context("display.width", 160, "display.max_columns", 20, "display.precision", 2):
             print(table[["height_anomaly", "wind_speed", "relative_vorticity", "height_share_pct"]].to_string(
-                formatters={"relative_vorticity": "{:.2e}".format}))
+                formatters={"relative_vorticity": "{:.2e}".format, "height_share_pct": format_share},
+                na_rep=format_share(None)))
         print()
         tables.append(table.assign(time=label).reset_index())
     if args.output:
