@@ -279,8 +279,14 @@ def check_output(path, overwrite, suffixes=None, what="output"):
     parent = p.parent if str(p.parent) else Path(".")
     if not parent.is_dir():
         raise InputError(f"-o {path!r}: folder {str(parent)!r} does not exist; create it first")
-    if not os.access(parent, os.W_OK | os.X_OK):
-        raise InputError(f"-o {path!r}: folder {str(parent)!r} is not writable")
+    from .export import temp_file_next_to
+
+    try:  # a real probe (permissions, read-only file systems, also for root)
+        with temp_file_next_to(p):
+            pass
+    except OSError as exc:
+        raise InputError(f"-o {path!r}: cannot write in folder {str(parent)!r}: "
+                         f"{os_error_message(exc, with_path=False)}") from None
     if suffixes and p.suffix.lower() not in suffixes:
         raise InputError(f"-o {path!r}: the {what} must end in {' or '.join(suffixes)}")
     if p.exists() and not overwrite:
@@ -331,17 +337,19 @@ _ERRNO_HINTS = {
     errno.ENETUNREACH: "network unreachable",
     errno.ETIMEDOUT: "timed out",
     errno.ENAMETOOLONG: "the file name is too long",
+    errno.EFBIG: "the file is too large for this file system or for the process's file-size limit",
     errno.EMFILE: "too many open files",
 }
 
 
-def os_error_message(exc: BaseException) -> str:
-    """One line for an OSError: what failed on which path, and what to do."""
+def os_error_message(exc: BaseException, with_path: bool = True) -> str:
+    """One line for an OSError: what failed (on which path, unless ``with_path=False``), and what to do."""
     if isinstance(exc, TimeoutError) and not getattr(exc, "errno", None):
         return f"timed out: {exc}" if str(exc) else "timed out"
     err = getattr(exc, "errno", None)
     hint = _ERRNO_HINTS.get(err) or getattr(exc, "strerror", None) or str(exc) or type(exc).__name__
-    where = [repr(str(x)) for x in (getattr(exc, "filename", None), getattr(exc, "filename2", None)) if x]
+    where = [repr(str(x)) for x in (getattr(exc, "filename", None), getattr(exc, "filename2", None))
+             if x and with_path]
     return f"{hint}: {' -> '.join(where)}" if where else hint
 
 

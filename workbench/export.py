@@ -218,7 +218,10 @@ def temp_file_next_to(path) -> Iterator[Path]:
     install_exit_handlers()
     clean_stale_temps(path.parent if str(path.parent) else Path("."))
     tmp = temp_path_for(path)
-    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    try:
+        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    except OSError as exc:  # name the folder the user chose, not the temporary name
+        raise type(exc)(exc.errno, exc.strerror, str(tmp.parent)) from None
     os.close(fd)
     _register(tmp)
     try:
