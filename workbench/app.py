@@ -23,7 +23,11 @@ by the netCDF/GRIB/Zarr readers of :mod:`workbench.io` only. Files are written o
 the output folder (``output_dir``, default the first data folder; :func:`resolve_output_path`
 refuses anything else with AccessError), atomically, and an existing file is replaced only when
 the page's "Overwrite an existing file" box is ticked. Sessions are loaded from the data folders
-and the output folder, and the case a session names must lie in the data folders too.
+and the output folder, and the case a session names (and a climatology file it gives as
+``reference``) must lie in the data folders too; "outside" and "not found" get one message.
+A session changed after it was saved is refused until the user presses "Load it anyway".
+Every user- or file-supplied string put into HTML (case name and attributes, file names,
+annotation texts, messages) goes through :func:`workbench.textsafe.escape`.
 """
 from __future__ import annotations
 

@@ -96,7 +96,9 @@ class SessionModifiedError(SessionError):
     loaded only when the user confirms (``accept_modified=True``)."""
 
 
-PROJECTIONS = ("plate_carree", "lambert_conformal", "stereographic", "mercator")
+# "native": the data's own projection (a projected model grid's; plain latitude-longitude
+# otherwise), the default
+PROJECTIONS = ("native", "plate_carree", "lambert_conformal", "stereographic", "mercator")
 _CMAP_NAME = re.compile(r"^[A-Za-z0-9_.\-]{1,64}$")
 
 
@@ -115,7 +117,7 @@ class FigureSettings:
     ``coastlines``/``gridlines``: draw them.
     """
 
-    projection: str = "plate_carree"
+    projection: str = "native"
     width_in: float = 10.0
     height_in: float = 8.0
     dpi: int = 150
@@ -286,6 +288,7 @@ def save_session(state, path, overwrite: bool = False) -> Path:
     """
     path = Path(path)
     doc = session_dict(state, path)
+    check_caps(doc, path)  # a session that could not be loaded back is not written
     try:
         text = json.dumps(doc, indent=2, ensure_ascii=False, allow_nan=False)
     except ValueError as exc:  # NaN/inf somewhere in the state
