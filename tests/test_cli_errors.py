@@ -297,3 +297,29 @@ def _write_table():
         rows.append(f"| {i} | {label} | `{cmd}` | {code} | {msg.replace('|', '/')[:220]} | {took:.1f} |")
     ARTIFACTS.mkdir(exist_ok=True)
     (ARTIFACTS / "cli_errors.md").write_text("\n".join(rows) + "\n")
+
+
+def test_progress_bar_only_on_a_terminal_and_for_long_steps(monkeypatch):
+    import io
+    import sys
+
+    from workbench import cli
+
+    class Terminal(io.StringIO):
+        def isatty(self):
+            return True
+
+    tty = Terminal()
+    monkeypatch.setattr(sys, "stderr", tty)
+    for _ in cli.progress(range(6), desc="long step"):
+        time.sleep(0.5)  # 3 s in all: the bar appears after about 2 s
+    assert "long step" in tty.getvalue() and "6/6" in tty.getvalue()
+    quick = Terminal()
+    monkeypatch.setattr(sys, "stderr", quick)
+    for _ in cli.progress(range(50), desc="quick step"):
+        pass
+    assert quick.getvalue() == ""
+    assert cli.progress_enabled(stream=Terminal()) and not cli.progress_enabled(stream=io.StringIO())
+    assert not cli.progress_enabled(quiet=True, stream=Terminal())
+    monkeypatch.setattr(cli, "QUIET", True)  # pvwb --quiet CMD
+    assert not cli.progress_enabled(stream=Terminal())

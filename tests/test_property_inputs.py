@@ -107,7 +107,7 @@ def malformed_dataset(draw):
     if "missing dimension" in defects:
         k = draw(st.sampled_from(list(fields)))
         fields[k] = fields[k][:, 0]
-        dims[k] = ("time", "lat", "lon")
+        dims[k] = dims[k][:1] + dims[k][2:]
     if "missing variable" in defects:
         del fields[draw(st.sampled_from(list(fields)))]
     dtype = draw(st.sampled_from(["float32", "float64"]))
