@@ -314,3 +314,41 @@ def test_maps_drawn_in_native_projection_by_default(tmp_path, kind, cls):
     if kind == "lambert":
         p = fig.axes[0].projection.proj4_params
         assert (p["lat_1"], p["lat_2"], p["lon_0"]) == (35.0, 60.0, -30.0)
+
+
+def test_cli_region_with_negative_western_edge(capsys):
+    """`--region -40,10,35,70` (a value starting with a minus sign) is taken as the region."""
+    from workbench.cli import main
+
+    assert main(["info", str(ff.SAMPLE), "--region", "-40,-10,40,60", "--times", "0..2"]) == 0
+    out = capsys.readouterr().out
+    assert "40..60 N, -40..-10 E" in out and "(3 times)" in out
+
+
+def test_region_across_the_seam_of_a_global_grid(tmp_path):
+    """A region across longitude 0 of a 0..360 global file is cut lazily into one contiguous
+    grid (-10..10 E), with the values of the file."""
+    lat = np.arange(-90.0, 90.1, 2.5)
+    lon = np.arange(0.0, 360.0, 2.5)
+    lev = np.array([1000.0, 850.0, 700.0, 500.0, 300.0, 200.0])
+    sample = xr.open_dataset(ff.SAMPLE).isel(time=[0, 1])
+    shape = (2, lev.size, lat.size, lon.size)
+    rng = np.random.default_rng(1)
+    T0 = np.interp(np.log(lev), np.log([1000.0, 200.0]), [285.0, 220.0])[None, :, None, None]
+    ds = xr.Dataset(
+        dict(t=(("time", "level", "lat", "lon"), (T0 + rng.normal(0, 1, shape)).astype("f4"), {"units": "K"}),
+             u=(("time", "level", "lat", "lon"), rng.normal(0, 5, shape).astype("f4"), {"units": "m s-1"}),
+             v=(("time", "level", "lat", "lon"), rng.normal(0, 5, shape).astype("f4"), {"units": "m s-1"}),
+             z=(("time", "level", "lat", "lon"),
+                np.broadcast_to((-7000.0 * np.log(lev / 1013.0) * 9.81)[None, :, None, None], shape).astype("f4"),
+                {"units": "m2 s-2", "standard_name": "geopotential"})),
+        coords=dict(time=sample["time"].values, level=("level", lev, {"units": "hPa"}),
+                    lat=("lat", lat, {"units": "degrees_north"}), lon=("lon", lon, {"units": "degrees_east"})))
+    path = tmp_path / "global.nc"
+    ds.to_netcdf(path)
+    case = wb.open_case(path, region=(-10, 10, 30, 60))
+    lon_c = case.data["longitude"].values
+    np.testing.assert_allclose(lon_c, np.arange(-10.0, 10.1, 2.5))
+    got = case.data["temperature"].isel(time=1).sel(pressure=50000.0).values
+    want = ds["t"].isel(time=1).sel(level=500.0, lat=slice(30, 60)).sel(lon=np.mod(lon_c, 360.0)).values
+    np.testing.assert_array_equal(got, want)

@@ -419,6 +419,26 @@ def main(argv=None) -> int:
     return _main(list(argv))
 
 
+# options whose value may start with a minus sign (a western or southern edge, a target)
+_SIGNED_VALUE_OPTIONS = ("--region", "--target", "--centre", "--center")
+
+
+def _join_negative_values(args):
+    """``--region -40,10,35,70`` -> ``--region=-40,10,35,70``: argparse would take a value that
+    starts with '-' and holds a comma for an option."""
+    out, i = [], 0
+    while i < len(args):
+        a = args[i]
+        if a in _SIGNED_VALUE_OPTIONS and i + 1 < len(args) and len(args[i + 1]) > 1 \
+                and args[i + 1][0] == "-" and (args[i + 1][1].isdigit() or args[i + 1][1] == "."):
+            out.append(f"{a}={args[i + 1]}")
+            i += 2
+            continue
+        out.append(a)
+        i += 1
+    return out
+
+
 def _main(argv) -> int:
     global QUIET
     argv = list(argv)
@@ -432,7 +452,7 @@ def _main(argv) -> int:
 
         print(f"pvwb {__version__}")
         return 0
-    cmd, rest = argv[0], argv[1:]
+    cmd, rest = argv[0], _join_negative_values(argv[1:])
     if cmd not in COMMANDS:
         print(f"pvwb: error: unknown command {cmd!r}; choose from {', '.join(COMMANDS)} (see `pvwb --help`)",
               file=sys.stderr)

@@ -205,6 +205,20 @@ def _open_grib(path, **kw):
     return ds
 
 
+def _small_chunk_cache():
+    """Keep the netCDF library's per-variable chunk cache small (4 MiB). Its default holds tens of
+    MB per variable of chunks the workbench reads once (a region of a big global file touches
+    every chunk of a time once), which is memory held for nothing."""
+    try:
+        import netCDF4
+
+        size, nelems, preemption = netCDF4.get_chunk_cache()
+        if size > 4 << 20:
+            netCDF4.set_chunk_cache(4 << 20, nelems, preemption)
+    except Exception:  # pragma: no cover - an older netCDF4 without the call
+        pass
+
+
 def read_dataset(path, *, chunks=None, **kw) -> xr.Dataset:
     """Open a file with the reader its bytes call for; FileFormatError with the cause if it fails."""
     fmt = detect_format(path)
@@ -214,6 +228,7 @@ def read_dataset(path, *, chunks=None, **kw) -> xr.Dataset:
         if fmt == "grib":
             return _open_grib(path, chunks=chunks, **kw)
         try:
+            _small_chunk_cache()
             ds = xr.open_dataset(path, engine="netcdf4", chunks=chunks, **kw)
         except (OSError, ValueError):
             ds = xr.open_dataset(path, engine="h5netcdf", chunks=chunks, **kw)
@@ -690,6 +705,8 @@ def normalise(ds: xr.Dataset, *, variables=None, coords=None, units_override=Non
     new = new.drop_vars(drop)
     new.attrs.setdefault("title", "")
     _add_notes(new, notes)
+    if region is not None and not new.attrs.get("native_crs"):
+        new = _select(new, region=region)  # cut before the checks, so their notes describe the region
     from .checks import check_plausible; new = check_plausible(new)  # noqa: E702 (plausibility, workbench.checks)
     return new
 
@@ -798,9 +815,67 @@ def _select(data, region=None, times=None):
                      lon_max=float(lon.max()))
             raise InputError(f"The region {w:g},{e:g},{s_:g},{n_:g} (W,E,S,N) holds fewer than 3 x 3 grid points of "
                              f"the data (domain {d['lon_min']:g}..{d['lon_max']:g} E, {d['lat_min']:g}..{d['lat_max']:g} N).")
+        # start at the region's western edge: a global grid is rolled so that the region is contiguous
+        ii = ii[np.argsort(np.mod(lon[ii] - w + 1e-9, 360.0), kind="stable")]
+        newlon = lon[ii[0]] + np.mod(lon[ii] - lon[ii[0]], 360.0)
+        if newlon[0] >= 180.0:
+            newlon = newlon - 360.0
         data = data.isel(latitude=slice(int(jj[0]), int(jj[-1]) + 1), longitude=ii)
+        data = data.assign_coords(longitude=("longitude", newlon, dict(data["longitude"].attrs)))
         _add_notes(data, [f"Cut to the region {w:g}..{e:g} E, {s_:g}..{n_:g} N."])
     return data
+
+
+def _precut(raw, region, times, coords=None):
+    """Cut a raw (not yet normalised) regular latitude-longitude dataset to a region and a time
+    selection with index ranges, lazily. Returns (dataset, notes); (raw, None) when the data are
+    not a plain latitude-longitude grid (projected grids are cut on their way to latitude-longitude)."""
+    coords = dict(coords or {})
+    lat_n = _find_coord(raw, "latitude", coords.get("latitude"))
+    lon_n = _find_coord(raw, "longitude", coords.get("longitude"))
+    if lat_n is None or lon_n is None or raw[lat_n].ndim != 1 or raw[lon_n].ndim != 1 or _native_crs(raw)[0]:
+        return raw, None
+    sel, notes = {}, []
+    if times is not None:
+        t_n = _find_coord(raw, "time", coords.get("time"))
+        if t_n is None or t_n not in raw.dims or raw[t_n].dtype.kind != "M":
+            return raw, None  # the time selection happens after normalising
+    if region is not None:
+        w, e, s_, n_ = _check_region(region)
+        lat = np.asarray(raw[lat_n].values, float)
+        lon = np.asarray(raw[lon_n].values, float)
+        if not (np.isfinite(lat).all() and np.isfinite(lon).all()):
+            return raw, None
+        jj = np.nonzero((lat >= s_ - 1e-9) & (lat <= n_ + 1e-9))[0]
+        width = np.mod(e - w, 360.0) or 360.0
+        ii = np.nonzero(np.mod(lon - w + 1e-9, 360.0) <= width + 2e-9)[0]
+        if jj.size < 3 or ii.size < 3:
+            raise InputError(f"The region {w:g},{e:g},{s_:g},{n_:g} (W,E,S,N) holds fewer than 3 x 3 grid points of "
+                             f"the data (domain {lon.min():g}..{lon.max():g} E, {lat.min():g}..{lat.max():g} N).")
+        sel[lat_n] = slice(int(jj.min()), int(jj.max()) + 1)
+        # contiguous index ranges (a region across the seam of a global grid is two), each read
+        # from the file in one piece; they are joined as Dask arrays (lazily)
+        ii = np.sort(ii)
+        breaks = np.nonzero(np.diff(ii) != 1)[0]
+        runs = np.split(ii, breaks + 1)
+        notes.append(f"Cut to the region {w:g}..{e:g} E, {s_:g}..{n_:g} N.")
+        if len(runs) > 1:
+            pieces = [raw.isel({**sel, lon_n: slice(int(r[0]), int(r[-1]) + 1)}).chunk() for r in runs]
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                out = xr.concat(pieces, dim=lon_n, data_vars="minimal", coords="minimal", compat="override",
+                                join="override", combine_attrs="override")
+            sel = {}
+            raw = out
+        else:
+            sel[lon_n] = slice(int(ii[0]), int(ii[-1]) + 1)
+    out = raw.isel(sel) if sel else raw
+    if times is not None:
+        t_n = _find_coord(out, "time", coords.get("time"))
+        tmp = xr.Dataset(coords={"time": out[t_n].values})
+        picked = _select(tmp, times=times)["time"].values
+        out = out.sel({t_n: picked})
+    return out, notes
 
 
 def _check_region(region):
@@ -863,11 +938,23 @@ def open_case(source, **options):
             chunks = {}
         parts = []
         for p in paths:
-            raw = read_dataset(p, chunks=chunks, **options)
+            cut = None
+            if (region is not None or times is not None) and detect_format(p) != "grib":
+                # cut a big regular file before anything is read: the lazy backend arrays take the
+                # region's index ranges straight to the file, and only then become Dask arrays
+                raw = read_dataset(p, chunks=None, **options)
+                raw, cut = _precut(raw, region, times, coords)
+                if chunks is not None:
+                    t_n = _find_coord(raw, "time", (coords or {}).get("time"))
+                    raw = raw.chunk(chunks or ({t_n: 1} if t_n in raw.dims else {}))
+            else:
+                raw = read_dataset(p, chunks=chunks, **options)
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", category=RuntimeWarning)
                 try:
-                    parts.append(normalise(raw, **norm))
+                    parts.append(normalise(raw, **dict(norm, region=None) if cut else norm))
+                    if cut:
+                        _add_notes(parts[-1], cut)
                 except InputError as exc:
                     if len(paths) > 1:
                         raise type(exc)(f"{p.name}: {exc}") from None
@@ -881,7 +968,7 @@ def open_case(source, **options):
                 h.update(file_checksum(p).encode())
             checksum = h.hexdigest()
         lazy = chunks == {}
-    data = _select(data, region=None if data.attrs.get("native_crs") else region, times=times)
+    data = _select(data, times=times)  # the region was cut in normalise
     if lazy:
         data = data.chunk({"time": 1})
     return Case(data, source=path_label, name=name, checksum=checksum, f0=f0)
