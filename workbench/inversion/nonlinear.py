@@ -1,0 +1,1135 @@
+"""Nonlinear-balance (Charney balance) inversion of Ertel PV with f varying with latitude.
+
+Computation only (no plotting, no widgets).  See DEVELOPERS.md, "Nonlinear balance".
+
+Equations (Davis & Emanuel 1991, Mon. Wea. Rev. 119, 1929-1953, their balance and PV
+equations, written on the sphere).  Vertical coordinate: the Exner function
+``pi = c_p (p/p0)^kappa``, so that ``theta = -dPhi/dpi`` (hydrostatic).  Unknowns: the
+geopotential Phi and the streamfunction psi of the nondivergent balanced wind
+(``u = -(1/a) dpsi/dlat``, ``v = (1/(a cos lat)) dpsi/dlon``).
+
+* PV equation (Ertel PV, hydrostatic, nondivergent wind):
+  ``q = (g kappa pi / p) [ (f + lap psi) Phi_pipi - grad(psi_pi) . grad(Phi_pi) ]``;
+* balance equation (divergence equation with D = dD/dt = 0, vertical advection dropped),
+  exact on the sphere for a nondivergent wind:
+  ``lap Phi = div(f grad psi) + 2 det(H psi) - |grad psi|^2 / a^2``, where ``H psi`` is the
+  covariant Hessian of psi (on a plane the last term vanishes and this is the familiar
+  ``lap Phi = div(f grad psi) + 2 (psi_xx psi_yy - psi_xy^2)``).  The identity used is
+  ``div((V.grad)V) = -2 det(H psi) + |V|^2/a^2`` (Ricci identity on a sphere of radius a);
+* boundaries: ``dPhi/dpi = -theta`` on the lowest and highest level (Neumann), Phi and psi
+  given on the lateral boundary nodes.
+
+f = 2 Omega sin(lat) (or a constant, for f-plane checks).  ``f`` is positive in the northern
+hemisphere; the system is elliptic where ``f q > 0`` and ``f (f + zeta) > 0``.
+
+Discretisation on the normalised grid (unknowns on the nodes, lateral nodes Dirichlet):
+``lap`` is the flux-form spherical Laplacian of the QG operator; ``div(f grad psi)`` the
+same with f at the half latitudes; ``H_yy = psi_latlat/a^2``, ``H_xx = lap psi - H_yy``,
+``H_xy = (psi_lonlat + tan(lat) psi_lon)/(a^2 cos lat)``; first derivatives centred (second
+order on the non-uniform latitudes); ``Phi_pipi`` finite volume on the levels with half cells
+whose outer face carries ``-theta`` (as the QG operator does with its boundary PV sheets);
+``Phi_pi`` centred in pi, ``-theta`` on the boundary levels; ``psi_pi`` centred, one-sided
+second order on the boundary levels.
+
+Solver: inexact Newton (Eisenstat-Walker forcing) with GMRES (``scipy.sparse.linalg.gmres``)
+on the exact Jacobian (the system is quadratic), right-preconditioned by the linearisation
+about a state at rest with f(lat) and the level-mean Phi_pipi.  The preconditioner is two
+separable direct solves on the engine of :class:`~workbench.inversion.solver.SeparableSolver`
+(vertical eigenmodes x sine/Fourier transform in longitude x one tridiagonal sweep in
+latitude, the latitude-dependent f folded into the sweep):
+``(lap + f^2 S^-1 D_pipi) dPhi = f r1/(C S) + r2`` and ``div(f grad dpsi) = lap dPhi - r2``.
+
+Pieces (Davis 1992, J. Atmos. Sci. 49, 1397-1411, piecewise inversion linearised about the
+full balanced state): every piece's forcing (Ertel PV anomaly in its mask, boundary theta',
+lateral Phi'/psi') is inverted with the tangent-linear system at the full balanced state;
+the pieces add up exactly to the linear response to the whole anomaly, and
+``"nonlinear remainder"`` = full anomaly - sum of the linear pieces is returned as its own
+entry, so the attribution table shows it as a row.
+"""
+from __future__ import annotations
+
+import json
+import time as _time
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+import scipy.fft as sfft
+import xarray as xr
+from scipy.sparse.linalg import LinearOperator, gmres
+
+from workbench.errors import DomainError, InputError, PieceError
+from workbench.inversion.fields import _ATTRS, central_f0, hydrostatic_temperature, spatial_dims
+from workbench.inversion.operator import QGGrid, horizontal_laplacian
+from workbench.inversion.solver import SeparableSolver, _blas_threads
+from workbench.units import CP, EARTH_RADIUS, G, KAPPA, OMEGA, P0, PVU
+
+__all__ = [
+    "BalanceGrid",
+    "BalanceResult",
+    "solve_balance",
+    "balance_residual",
+    "ertel_pv_nb",
+    "boundary_streamfunction",
+    "streamfunction",
+    "nonlinear_fields",
+    "invert_nonlinear_pieces",
+    "case_balanced_state",
+    "balance_quality",
+    "bench_nonlinear",
+    "NONLINEAR_REMAINDER",
+    "DEFAULT_TOL",
+]
+
+#: Name of the attribution row / results entry holding full minus the sum of linear pieces.
+NONLINEAR_REMAINDER = "nonlinear remainder"
+#: Default stopping tolerance on the relative residual (see :func:`solve_balance`).
+DEFAULT_TOL = 1e-6
+
+
+# ---------------------------------------------------------------------------
+# grid and discrete operators
+# ---------------------------------------------------------------------------
+
+
+class BalanceGrid:
+    """Geometry of the nonlinear-balance system on a latitude-longitude-pressure grid.
+
+    Parameters
+    ----------
+    lat, lon, pressure : arrays as for :class:`~workbench.inversion.operator.QGGrid`
+        (latitude ascending, one hemisphere; longitude uniform; pressure in Pa, decreasing).
+    f : None or float
+        None: ``f = 2 Omega sin(lat)``; a number: constant f (f-plane; for checks).
+    """
+
+    def __init__(self, lat, lon, pressure, f=None):
+        lat = np.asarray(lat, dtype=float)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # |f| may vary by more than 2: f varies here anyway
+            self.qg = QGGrid(lat, lon, pressure, np.ones(np.size(pressure)), central_f0(lat))
+        g = self.qg
+        self.lat, self.lon, self.pressure = g.lat, g.lon, g.pressure
+        self.nz, self.ny, self.nx = g.shape
+        self.shape = g.shape
+        self.interior_shape = g.interior_shape
+        self.periodic = g.periodic
+        self.ls = g.lon_slice
+        self.a = EARTH_RADIUS
+        self.phi = g.phi
+        self.dlam = g.dlam
+        self.f_plane = f is not None
+        if f is None:
+            self.f = 2.0 * OMEGA * np.sin(self.phi)
+            self.f_half = 2.0 * OMEGA * np.sin(0.5 * (self.phi[1:] + self.phi[:-1]))
+        else:
+            f = float(f)
+            if not np.isfinite(f) or f == 0.0 or np.sign(f) != np.sign(lat[0]):
+                raise DomainError(f"f: a constant Coriolis parameter must be finite, non-zero and have the "
+                                  f"sign of the hemisphere (got {f:g} s-1 for latitudes {lat[0]:g}..{lat[-1]:g}).")
+            self.f = np.full(self.ny, f)
+            self.f_half = np.full(self.ny - 1, f)
+        self.sign = 1.0 if self.f[0] > 0 else -1.0
+        self.f0 = float(np.mean(self.f))
+        p = self.pressure
+        self.pi = CP * (p / P0) ** KAPPA
+        self.C = G * KAPPA * self.pi / p  # q = C [ ... ]
+        dpi = np.diff(self.pi)  # negative
+        hs = np.empty(self.nz)
+        hs[0], hs[-1] = 0.5 * dpi[0], 0.5 * dpi[-1]
+        hs[1:-1] = 0.5 * (self.pi[2:] - self.pi[:-2])
+        self.dpi, self.hs = dpi, hs  # signed
+        # symmetric negative semi-definite T with D_pipi = diag(1/|hs|) T
+        gpos = 1.0 / np.abs(dpi)
+        T = np.zeros((self.nz, self.nz))
+        k = np.arange(self.nz - 1)
+        T[k, k + 1] = gpos
+        T[k + 1, k] = gpos
+        T[k, k] -= gpos
+        T[k + 1, k + 1] -= gpos
+        self.T, self.hpos = T, np.abs(hs)
+        # horizontal geometry at the interior rows
+        hc = g.horizontal()
+        self.hc = hc
+        j = slice(1, -1)
+        self.cos = np.cos(self.phi)[j][:, None]
+        self.tan = np.tan(self.phi)[j][:, None]
+        self.fi = self.f[j][:, None]
+        self.divf = dict(
+            south=hc["south"] * self.f_half[:-1],
+            north=hc["north"] * self.f_half[1:],
+            zonal=hc["zonal"] * self.f[j],
+        )
+        self.divf["merid_diag"] = -(self.divf["south"] + self.divf["north"])
+        ph = self.phi
+        hm, hp = ph[1:-1] - ph[:-2], ph[2:] - ph[1:-1]
+        self._dphi_w = (-hp / (hm * (hm + hp)), (hp - hm) / (hm * hp), hm / (hp * (hm + hp)))
+        self._d2phi_w = (2.0 / (hm * (hm + hp)), -2.0 / (hm * hp), 2.0 / (hp * (hm + hp)))
+
+    @property
+    def key(self):
+        return (self.qg.key, self.f_plane, float(self.f[0]))
+
+    # --- horizontal derivatives at the interior nodes ------------------------------------
+    def d_lon_rows(self, a):
+        """d/dlon (per radian) at the interior longitudes, every latitude row: (..., ny, nxi)."""
+        if self.periodic:
+            return (np.roll(a, -1, axis=-1) - np.roll(a, 1, axis=-1)) / (2.0 * self.dlam)
+        return (a[..., 2:] - a[..., :-2]) / (2.0 * self.dlam)
+
+    def d_lat(self, b):
+        """d/dlat (per radian) at the interior rows of b (..., ny, m): (..., ny-2, m)."""
+        w0, w1, w2 = self._dphi_w
+        return w0[:, None] * b[..., :-2, :] + w1[:, None] * b[..., 1:-1, :] + w2[:, None] * b[..., 2:, :]
+
+    def d2_lat(self, b):
+        w0, w1, w2 = self._d2phi_w
+        return w0[:, None] * b[..., :-2, :] + w1[:, None] * b[..., 1:-1, :] + w2[:, None] * b[..., 2:, :]
+
+    def lap(self, a):
+        """Flux-form spherical Laplacian at the interior nodes (..., nz, nyi, nxi)."""
+        hc = self.hc
+        c = a[..., 1:-1, :]
+        merid = hc["north"][:, None] * (a[..., 2:, :] - c) - hc["south"][:, None] * (c - a[..., :-2, :])
+        if self.periodic:
+            zon = np.roll(c, -1, axis=-1) + np.roll(c, 1, axis=-1) - 2.0 * c
+            return merid + hc["zonal"][:, None] * zon
+        zon = c[..., 2:] + c[..., :-2] - 2.0 * c[..., 1:-1]
+        return merid[..., 1:-1] + hc["zonal"][:, None] * zon
+
+    def div_f_grad(self, a):
+        """div(f grad a) in flux form (f at the half latitudes) at the interior nodes."""
+        d = self.divf
+        c = a[..., 1:-1, :]
+        merid = d["north"][:, None] * (a[..., 2:, :] - c) - d["south"][:, None] * (c - a[..., :-2, :])
+        if self.periodic:
+            zon = np.roll(c, -1, axis=-1) + np.roll(c, 1, axis=-1) - 2.0 * c
+            return merid + d["zonal"][:, None] * zon
+        zon = c[..., 2:] + c[..., :-2] - 2.0 * c[..., 1:-1]
+        return merid[..., 1:-1] + d["zonal"][:, None] * zon
+
+    def interior(self, a):
+        return a[..., 1:-1, self.ls]
+
+    # --- vertical -------------------------------------------------------------------------
+    def d_pi(self, a):
+        """d/dpi at the levels, second order (one-sided second order on the end levels)."""
+        return np.gradient(a, self.pi, axis=-3, edge_order=2)
+
+    def d2_pi(self, a, theta_b, theta_t):
+        """Phi_pipi by finite volume; the outer faces carry dPhi/dpi = -theta."""
+        grad = (a[..., 1:, :, :] - a[..., :-1, :, :]) / self.dpi[:, None, None]  # faces k+1/2
+        out = np.empty(a.shape)
+        out[..., 1:-1, :, :] = grad[..., 1:, :, :] - grad[..., :-1, :, :]
+        out[..., 0, :, :] = grad[..., 0, :, :] + theta_b
+        out[..., -1, :, :] = -theta_t - grad[..., -1, :, :]
+        return out / self.hs[:, None, None]
+
+
+def _zero2(grid):
+    return np.zeros(grid.shape[1:])
+
+
+def _terms(grid, Phi, psi, theta_b, theta_t):
+    """Derived quantities at the interior nodes shared by the residual and the Jacobian."""
+    a = grid.a
+    Pp = grid.d_pi(Phi)
+    Pp[..., 0, :, :] = -theta_b
+    Pp[..., -1, :, :] = -theta_t
+    Spp = grid.interior(grid.d2_pi(Phi, theta_b, theta_t))
+    sp_ = grid.d_pi(psi)
+    cos, tan = grid.cos, grid.tan
+    ls = grid.ls
+
+    def gx(b):
+        return grid.d_lon_rows(b)[..., 1:-1, :] / (a * cos)
+
+    def gy(b):
+        return grid.d_lat(b[..., ls]) / a
+
+    zeta = grid.lap(psi)
+    psi_lon_rows = grid.d_lon_rows(psi)  # (..., ny, nxi)
+    psi_lon = psi_lon_rows[..., 1:-1, :]
+    psi_lat = grid.d_lat(psi[..., ls])
+    hyy = grid.d2_lat(psi[..., ls]) / a ** 2
+    hxx = zeta - hyy
+    hxy = (grid.d_lat(psi_lon_rows) + tan * psi_lon) / (a * a * cos)
+    return dict(
+        Spp=Spp, Ppx=gx(Pp), Ppy=gy(Pp), spx=gx(sp_), spy=gy(sp_), zeta=zeta,
+        hxx=hxx, hyy=hyy, hxy=hxy, psx=psi_lon / (a * cos), psy=psi_lat / a,
+        lapPhi=grid.lap(Phi), divf=grid.div_f_grad(psi),
+    )
+
+
+def _eta(grid, d, eta_floor):
+    """Absolute vorticity at the interior nodes, floored (sign of f) when ``eta_floor`` is set."""
+    eta = grid.fi + d["zeta"]
+    if eta_floor is None:
+        return eta, None
+    lo = eta_floor * np.abs(grid.fi)
+    clipped = grid.sign * eta < lo
+    return np.where(clipped, grid.sign * lo, eta), clipped
+
+
+def _pv(grid, d, eta):
+    C = grid.C[:, None, None]
+    return C * (eta * d["Spp"] - (d["spx"] * d["Ppx"] + d["spy"] * d["Ppy"]))
+
+
+def _balance(grid, d):
+    a = grid.a
+    return (d["lapPhi"] - d["divf"] - 2.0 * (d["hxx"] * d["hyy"] - d["hxy"] ** 2)
+            + (d["psx"] ** 2 + d["psy"] ** 2) / a ** 2)
+
+
+def ertel_pv_nb(grid: BalanceGrid, Phi, psi, theta_b, theta_t):
+    """Ertel PV (K m2 kg-1 s-1) of (Phi, psi) with the inversion's own stencil, NaN on the lateral nodes."""
+    d = _terms(grid, np.asarray(Phi, float), np.asarray(psi, float), theta_b, theta_t)
+    out = np.full(grid.shape, np.nan)
+    out[..., 1:-1, grid.ls] = _pv(grid, d, grid.fi + d["zeta"])
+    return out
+
+
+def balance_residual(grid: BalanceGrid, Phi, psi, q, theta_b, theta_t, eta_floor=None):
+    """(E1, E2) at the interior nodes: PV residual (K m2 kg-1 s-1) and balance residual (s-2)."""
+    d = _terms(grid, Phi, psi, theta_b, theta_t)
+    eta, _ = _eta(grid, d, eta_floor)
+    return _pv(grid, d, eta) - grid.interior(q), _balance(grid, d)
+
+
+def _jvp(grid, d, eta, clipped, dPhi, dpsi, dtb, dtt):
+    """Tangent-linear (E1, E2) at the state with terms ``d`` for full-grid increments."""
+    e = _terms(grid, dPhi, dpsi, dtb, dtt)
+    dzeta = e["zeta"] if clipped is None else np.where(clipped, 0.0, e["zeta"])
+    C = grid.C[:, None, None]
+    r1 = C * (eta * e["Spp"] + dzeta * d["Spp"]
+              - (d["spx"] * e["Ppx"] + e["spx"] * d["Ppx"] + d["spy"] * e["Ppy"] + e["spy"] * d["Ppy"]))
+    r2 = (e["lapPhi"] - e["divf"]
+          - 2.0 * (d["hxx"] * e["hyy"] + e["hxx"] * d["hyy"] - 2.0 * d["hxy"] * e["hxy"])
+          + 2.0 * (d["psx"] * e["psx"] + d["psy"] * e["psy"]) / grid.a ** 2)
+    return r1, r2
+
+
+# ---------------------------------------------------------------------------
+# separable solves with latitude-dependent coefficients (the preconditioner)
+# ---------------------------------------------------------------------------
+
+
+class _LatSeparable(SeparableSolver):
+    """``H x + diag_f(lat)^2 diag(1/w) T x = r`` by the engine of SeparableSolver.
+
+    ``H`` is a flux-form horizontal operator with latitude-dependent coefficients
+    (``south``, ``north``, ``merid_diag``, ``zonal`` at the interior rows) and ``cy`` (ny-2,)
+    multiplies the vertical eigenvalues row by row; ``T=None`` means no vertical coupling
+    (a 2-D solve on every level).  The transforms and the vectorised tridiagonal sweep are
+    the parent's.
+    """
+
+    def __init__(self, grid: QGGrid, coeffs, w=None, T=None, cy=None, nv=None, workers=None):
+        self.grid = grid
+        self.workers = workers or 1
+        _, nyi, nxi = grid.interior_shape
+        if T is None:
+            self.nv = int(nv)
+            self._fwd = self._inv = None
+            lam = np.zeros(self.nv)
+        else:
+            w = np.asarray(w, dtype=float)
+            sw = np.sqrt(w)
+            lam, U = np.linalg.eigh(np.asarray(T, float) / sw[:, None] / sw[None, :])
+            lam = np.minimum(lam, 0.0)
+            self.nv = w.size
+            self._fwd = np.ascontiguousarray(U.T * sw[None, :])
+            self._inv = np.ascontiguousarray(U / sw[:, None])
+        self.eigenvalues = lam
+        if grid.periodic:
+            nl = grid.nx // 2 + 1
+            mu = -4.0 * np.sin(np.pi * np.arange(nl) / grid.nx) ** 2
+        else:
+            nl = nxi
+            mu = -4.0 * np.sin(np.pi * np.arange(1, nl + 1) / (2.0 * (grid.nx - 1))) ** 2
+        self._nl = nl
+        south, north = coeffs["south"].copy(), coeffs["north"].copy()
+        cy = np.zeros(nyi) if cy is None else np.asarray(cy, float)
+        diag = (coeffs["merid_diag"][:, None, None] + coeffs["zonal"][:, None, None] * mu[None, None, :]
+                + cy[:, None, None] * lam[None, :, None])
+        inv_piv, cprime = np.empty_like(diag), np.empty_like(diag)
+        inv_piv[0] = 1.0 / diag[0]
+        cprime[0] = north[0] * inv_piv[0]
+        for j in range(1, nyi):
+            inv_piv[j] = 1.0 / (diag[j] - south[j] * cprime[j - 1])
+            cprime[j] = north[j] * inv_piv[j]
+        self._south, self._inv_piv, self._cprime = south, inv_piv, cprime
+
+    def _solve_interior(self, r, lead, nv, nyi, nxi):
+        if self._fwd is not None:
+            return super()._solve_interior(r, lead, nv, nyi, nxi)
+        y = np.array(r, dtype=float)
+        if self.grid.periodic:
+            y = sfft.rfft(y, axis=-1, workers=self.workers)
+        else:
+            y = sfft.dst(y, type=1, axis=-1, workers=self.workers, overwrite_x=True)
+        self._sweep(y)
+        if self.grid.periodic:
+            return sfft.irfft(y, n=self.grid.nx, axis=-1, workers=self.workers)
+        return sfft.idst(y, type=1, axis=-1, workers=self.workers, overwrite_x=True)
+
+
+class _Preconditioner:
+    """Approximate inverse of the Jacobian: the linearisation about rest with f(lat) and S(pi)."""
+
+    def __init__(self, grid: BalanceGrid, S):
+        S = np.asarray(S, float)
+        if not np.all(S > 0):
+            raise DomainError(
+                "nonlinear balance: the level-mean static stability d2Phi/dpi2 is not positive at "
+                f"{int(np.sum(~(S > 0)))} level(s); the state is statically unstable on average there "
+                "and cannot be inverted.")
+        self.grid, self.S = grid, S
+        hc = grid.hc
+        self.A = _LatSeparable(grid.qg, hc, w=grid.hpos * S, T=grid.T, cy=grid.f[1:-1] ** 2)
+        self.B = _LatSeparable(grid.qg, grid.divf, nv=1)
+        self.scale = (grid.fi[None] / (grid.C * S)[:, None, None])
+        self.applications = 0
+
+    def apply(self, r1, r2):
+        g = self.grid
+        self.applications += 1
+        dPhi = self.A.solve_interior(self.scale * r1 + r2)
+        full = np.zeros(g.shape)
+        full[..., 1:-1, g.ls] = dPhi
+        dpsi = self.B.solve_interior(g.lap(full) - r2)
+        return dPhi, dpsi
+
+
+# ---------------------------------------------------------------------------
+# the nonlinear solve
+# ---------------------------------------------------------------------------
+
+
+@dataclass
+class BalanceResult:
+    """Solution of the nonlinear-balance system (full grid arrays) and how it was reached."""
+
+    Phi: np.ndarray
+    psi: np.ndarray
+    converged: bool
+    residual_history: list
+    newton_iterations: int
+    gmres_iterations: int
+    preconditioner_applications: int
+    residual_evaluations: int
+    seconds: float
+    tol: float
+    floored: np.ndarray | None = None  # int8 (nz, ny, nx): 1 PV floored, 2 abs. vorticity floored, 3 both
+    n_pv_floored: int = 0
+    n_eta_floored: int = 0
+    scales: dict = field(default_factory=dict)
+
+
+def _rms(a):
+    return float(np.sqrt(np.mean(np.square(a)))) if a.size else 0.0
+
+
+def _where_text(grid, mask):
+    k, j, i = np.argwhere(mask)[0]
+    return (f"{grid.lon[i]:g} E, {grid.lat[j]:g} N, {grid.pressure[k] / 100:g} hPa")
+
+
+def check_ellipticity(grid, q, eta, pv_floor=None, eta_floor=None):
+    """Refuse (DomainError) or floor where ``f q <= 0`` or ``f (f + zeta) <= 0``.
+
+    ``q`` (full grid, K m2 kg-1 s-1), ``eta`` (interior nodes, s-1).  With ``pv_floor`` (PVU)
+    the PV is raised to ``pv_floor`` (with the sign of f) where it is below it; the count and
+    the mask are returned.  ``eta_floor`` (a fraction of |f|) is applied inside the iteration;
+    here it only lets points with the wrong absolute vorticity pass.
+    Returns (q_used, pv_mask (full grid bool)).
+    """
+    s = grid.sign
+    qi = grid.interior(q)
+    bad_q = ~(s * qi > 0)
+    bad_e = ~(s * eta > 0)
+    full_q = np.zeros(grid.shape, bool)
+    full_q[..., 1:-1, grid.ls] = bad_q
+    full_e = np.zeros(grid.shape, bool)
+    full_e[..., 1:-1, grid.ls] = bad_e
+    hemi = "northern" if s > 0 else "southern"
+    msgs = []
+    if bad_q.any() and pv_floor is None:
+        msgs.append(f"Ertel PV has the wrong sign for the {hemi} hemisphere (<= 0 in the sense of f) at "
+                    f"{int(bad_q.sum())} points (e.g. {_where_text(grid, full_q)})")
+    if bad_e.any() and eta_floor is None:
+        msgs.append(f"absolute vorticity f + zeta has the wrong sign at {int(bad_e.sum())} points "
+                    f"(e.g. {_where_text(grid, full_e)})")
+    if msgs:
+        raise DomainError("nonlinear balance: the system is not elliptic: " + "; ".join(msgs)
+                          + ". Accept the floor remedy (floor=True: PV and absolute vorticity raised to a "
+                          "small value of the sign of f, points counted and mapped) or use balance='qg'.")
+    if pv_floor is None:
+        return q, np.zeros(grid.shape, bool)
+    lo = pv_floor * PVU
+    low = np.zeros(grid.shape, bool)
+    low[..., 1:-1, grid.ls] = s * qi < lo
+    q2 = np.where(low, s * lo, q)
+    return q2, low
+
+
+def harmonic_extension(grid: BalanceGrid, lateral):
+    """Per level, the field with ``lap = 0`` inside and the lateral values of ``lateral``."""
+    lateral = np.asarray(lateral, float)
+    g = grid
+    full = np.array(lateral)
+    full[..., 1:-1, g.ls] = 0.0
+    B = _LatSeparable(g.qg, g.hc, nv=1)
+    full[..., 1:-1, g.ls] = B.solve_interior(-g.lap(full))
+    return full
+
+
+def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_lateral, *, guess=None,
+                  tol=DEFAULT_TOL, max_newton=20, floor=False, pv_floor=0.01, eta_floor=0.05,
+                  preconditioner_state=None, verbose=False):
+    """Solve the nonlinear-balance system for Phi and psi.
+
+    Parameters
+    ----------
+    grid : BalanceGrid
+    q : array (nz, ny, nx)
+        Ertel PV (K m2 kg-1 s-1) at the interior nodes (lateral values ignored).
+    theta_b, theta_t : arrays (ny, nx)
+        theta (K) on the lowest / highest level (``dPhi/dpi = -theta`` there).
+    Phi_lateral, psi_lateral : arrays (nz, ny, nx)
+        Dirichlet data: their lateral-boundary values are used.
+    guess : (Phi, psi) or None
+        First guess (full grid; its lateral values are replaced by the data); default the
+        level-by-level harmonic extension of the lateral data.
+    tol : float
+        Stop when the relative residual ``max(rms(E1)/rms(q), rms(E2)/rms(lap Phi_guess))``
+        (RMS over the interior nodes) is <= tol.
+    floor : bool
+        Accept the floor remedy where the system is not elliptic: PV raised to ``pv_floor``
+        PVU and f + zeta to ``eta_floor`` |f| (with the sign of f); the changed points are
+        counted and mapped in the result.  False: refuse with DomainError.
+
+    Returns
+    -------
+    BalanceResult
+    """
+    t_start = _time.perf_counter()
+    g = grid
+    q = np.asarray(q, float)
+    theta_b, theta_t = np.asarray(theta_b, float), np.asarray(theta_t, float)
+    if guess is None:
+        Phi = harmonic_extension(g, Phi_lateral)
+        psi = harmonic_extension(g, psi_lateral)
+    else:
+        Phi, psi = (np.array(a, dtype=float) for a in guess)
+    for arr, lat in ((Phi, np.asarray(Phi_lateral, float)), (psi, np.asarray(psi_lateral, float))):
+        inner = arr[..., 1:-1, g.ls].copy()
+        arr[...] = lat
+        arr[..., 1:-1, g.ls] = inner
+    for name, arr in (("Ertel PV", g.interior(q)), ("geopotential", Phi), ("streamfunction", psi),
+                      ("bottom theta", theta_b), ("top theta", theta_t)):
+        if not np.all(np.isfinite(arr)):
+            raise InputError(f"nonlinear balance: {name} contains NaN or infinite values; give complete fields.")
+    d0 = _terms(g, Phi, psi, theta_b, theta_t)
+    q_used, pv_mask = check_ellipticity(g, q, g.fi + d0["zeta"], pv_floor if floor else None,
+                                        eta_floor if floor else None)
+    ef = eta_floor if floor else None
+    qs = _rms(g.interior(q_used))
+    bs = max(_rms(d0["lapPhi"]), _rms(d0["divf"]), 1e-30)
+    S_state = d0["Spp"] if preconditioner_state is None else preconditioner_state
+    S = S_state.reshape(g.nz, -1).mean(axis=1)
+    P = _Preconditioner(g, S)
+    n_int = int(np.prod(g.interior_shape))
+    counts = dict(gmres=0, res=0)
+
+    def residual(Phi, psi):
+        counts["res"] += 1
+        d = _terms(g, Phi, psi, theta_b, theta_t)
+        eta, clipped = _eta(g, d, ef)
+        r1 = _pv(g, d, eta) - g.interior(q_used)
+        r2 = _balance(g, d)
+        return d, eta, clipped, r1, r2
+
+    def rel(r1, r2):
+        return max(_rms(r1) / qs, _rms(r2) / bs)
+
+    d, eta, clipped, r1, r2 = residual(Phi, psi)
+    history = [rel(r1, r2)]
+    # unknown scales: the preconditioner maps scaled residuals to increments
+    eta_k, prev = 0.1, history[0]
+    newton = 0
+    with _blas_threads(1):
+        while history[-1] > tol and newton < max_newton:
+            newton += 1
+            dd, ee, cc = d, eta, clipped
+
+            def split(v):
+                return v[:n_int].reshape(g.interior_shape), v[n_int:].reshape(g.interior_shape)
+
+            def full(x):
+                out = np.zeros(g.shape)
+                out[..., 1:-1, g.ls] = x
+                return out
+
+            def matvec(v):
+                a, b = split(np.asarray(v).ravel())
+                j1, j2 = _jvp(g, dd, ee, cc, full(a), full(b), _zero2(g), _zero2(g))
+                return np.concatenate([(j1 / qs).ravel(), (j2 / bs).ravel()])
+
+            def precond(v):
+                a, b = split(np.asarray(v).ravel())
+                x1, x2 = P.apply(a * qs, b * bs)
+                return np.concatenate([x1.ravel(), x2.ravel()])
+
+            def cb(_):
+                counts["gmres"] += 1
+
+            N = 2 * n_int
+            J = LinearOperator((N, N), matvec=matvec, dtype=float)
+            M = LinearOperator((N, N), matvec=precond, dtype=float)
+            rhs = -np.concatenate([(r1 / qs).ravel(), (r2 / bs).ravel()])
+            rtol = min(0.5, max(eta_k, 0.5 * tol / max(history[-1], 1e-300)))
+            dx, _info = gmres(J, rhs, rtol=rtol, restart=40, maxiter=4, M=M, callback=cb,
+                              callback_type="pr_norm")
+            dP, dS = split(dx)
+            step = 1.0
+            for _ in range(6):  # backtracking on the residual norm
+                Pn, Sn = Phi.copy(), psi.copy()
+                Pn[..., 1:-1, g.ls] += step * dP
+                Sn[..., 1:-1, g.ls] += step * dS
+                dn, en, cn, r1n, r2n = residual(Pn, Sn)
+                rn = rel(r1n, r2n)
+                if np.isfinite(rn) and rn < history[-1]:
+                    break
+                step *= 0.5
+            else:
+                break
+            Phi, psi, d, eta, clipped, r1, r2 = Pn, Sn, dn, en, cn, r1n, r2n
+            history.append(rn)
+            if verbose:
+                print(f"newton {newton}: relative residual {rn:.3e} (step {step:g}, gmres rtol {rtol:.2g})")
+            ratio = rn / prev
+            prev = rn
+            eta_new = 0.9 * ratio ** 2
+            if 0.9 * eta_k ** 2 > 0.1:
+                eta_new = max(eta_new, 0.9 * eta_k ** 2)
+            eta_k = min(0.5, max(eta_new, 1e-12))
+    floored = None
+    n_pv = int(pv_mask.sum())
+    n_eta = 0
+    if floor:
+        floored = pv_mask.astype(np.int8)
+        if clipped is not None:
+            ce = np.zeros(g.shape, bool)
+            ce[..., 1:-1, g.ls] = clipped
+            n_eta = int(ce.sum())
+            floored = floored + 2 * ce.astype(np.int8)
+    elif np.any(~(g.sign * eta > 0)):
+        bad = np.zeros(g.shape, bool)
+        bad[..., 1:-1, g.ls] = ~(g.sign * eta > 0)
+        raise DomainError(
+            f"nonlinear balance: the balanced absolute vorticity has the wrong sign at {int(bad.sum())} points "
+            f"(e.g. {_where_text(g, bad)}); the system is not elliptic there. Accept the floor remedy "
+            "(floor=True) or use balance='qg'.")
+    return BalanceResult(
+        Phi=Phi, psi=psi, converged=bool(history[-1] <= tol), residual_history=history,
+        newton_iterations=newton, gmres_iterations=counts["gmres"],
+        preconditioner_applications=P.applications, residual_evaluations=counts["res"],
+        seconds=_time.perf_counter() - t_start, tol=tol, floored=floored, n_pv_floored=n_pv,
+        n_eta_floored=n_eta, scales=dict(q=qs, balance=bs))
+
+
+def solve_tangent(grid, state, forcing, *, eta_floor=None, rtol=1e-10, P=None):
+    """Tangent-linear response at a balanced ``state`` (Phi, psi, theta_b, theta_t).
+
+    ``forcing`` is a dict with q (interior PV anomaly), bottom_theta, top_theta (ny, nx),
+    lateral_phi, lateral_psi (full grid, lateral values used; None = 0).  Returns
+    (dPhi, dpsi, gmres iterations) on the full grid.
+    """
+    g = grid
+    Phi, psi, tb, tt = state
+    d = _terms(g, Phi, psi, tb, tt)
+    eta, clipped = _eta(g, d, eta_floor)
+    if P is None:
+        P = _Preconditioner(g, d["Spp"].reshape(g.nz, -1).mean(axis=1))
+    z2 = _zero2(g)
+    bt = z2 if forcing.get("bottom_theta") is None else np.asarray(forcing["bottom_theta"], float)
+    tt_ = z2 if forcing.get("top_theta") is None else np.asarray(forcing["top_theta"], float)
+    bP = np.zeros(g.shape)
+    bS = np.zeros(g.shape)
+    for arr, key in ((bP, "lateral_phi"), (bS, "lateral_psi")):
+        if forcing.get(key) is not None:
+            arr[...] = forcing[key]
+            arr[..., 1:-1, g.ls] = 0.0
+    # known part: what the boundary data give through the tangent-linear operator
+    k1, k2 = _jvp(g, d, eta, clipped, bP, bS, bt, tt_)
+    qf = np.zeros(g.interior_shape) if forcing.get("q") is None else g.interior(np.nan_to_num(forcing["q"]))
+    qs = max(_rms(g.interior(np.nan_to_num(ertel_pv_nb(g, Phi, psi, tb, tt)))), 1e-30)
+    bs = max(_rms(d["lapPhi"]), _rms(d["divf"]), 1e-30)
+    r1, r2 = qf - k1, -k2
+    n_int = int(np.prod(g.interior_shape))
+    it = dict(n=0)
+
+    def split(v):
+        return v[:n_int].reshape(g.interior_shape), v[n_int:].reshape(g.interior_shape)
+
+    def full(x):
+        out = np.zeros(g.shape)
+        out[..., 1:-1, g.ls] = x
+        return out
+
+    def matvec(v):
+        a, b = split(np.asarray(v).ravel())
+        j1, j2 = _jvp(g, d, eta, clipped, full(a), full(b), z2, z2)
+        return np.concatenate([(j1 / qs).ravel(), (j2 / bs).ravel()])
+
+    def precond(v):
+        a, b = split(np.asarray(v).ravel())
+        x1, x2 = P.apply(a * qs, b * bs)
+        return np.concatenate([x1.ravel(), x2.ravel()])
+
+    def cb(_):
+        it["n"] += 1
+
+    N = 2 * n_int
+    rhs = np.concatenate([(r1 / qs).ravel(), (r2 / bs).ravel()])
+    if not np.any(rhs):
+        return bP, bS, 0
+    with _blas_threads(1):
+        x, info = gmres(LinearOperator((N, N), matvec=matvec, dtype=float), rhs, rtol=rtol, restart=60,
+                        maxiter=20, M=LinearOperator((N, N), matvec=precond, dtype=float), callback=cb,
+                        callback_type="pr_norm")
+    if info != 0:
+        raise DomainError(f"nonlinear balance: the tangent-linear piece solve did not reach rtol {rtol:g} "
+                          f"in {it['n']} GMRES iterations; the full balanced state may be near the limit of "
+                          "ellipticity (try floor=True).")
+    a, b = split(x)
+    dPhi, dpsi = bP.copy(), bS.copy()
+    dPhi[..., 1:-1, g.ls] = a
+    dpsi[..., 1:-1, g.ls] = b
+    return dPhi, dpsi, it["n"]
+
+
+# ---------------------------------------------------------------------------
+# streamfunction of the analysed wind
+# ---------------------------------------------------------------------------
+
+
+def boundary_streamfunction(grid: BalanceGrid, u, v):
+    """psi on the lateral boundary nodes from the analysed wind (full-grid array; interior 0).
+
+    Rule: along the boundary, counter-clockwise, ``dpsi/ds = -u_n`` (u_n the outward normal
+    wind), integrated with the trapezoid rule; the mean outflow (the domain's net divergence,
+    which a streamfunction cannot carry) is removed first so that psi closes around the
+    boundary; the mean of psi on the boundary is 0 on every level.  On a zonally periodic
+    grid each latitude circle takes ``dpsi/dx = v`` with its zonal-mean v removed, and the
+    northern circle is offset from the southern by ``-a * integral(zonal-mean u dlat)``.
+    """
+    g = grid
+    u = np.asarray(u, float)
+    v = np.asarray(v, float)
+    a, lam, ph = g.a, np.deg2rad(g.lon), g.phi
+    out = np.zeros(g.shape)
+    if g.periodic:
+        dl = g.dlam
+        for j in (0, -1):
+            vv = v[..., j, :] - v[..., j, :].mean(axis=-1, keepdims=True)
+            seg = 0.5 * (vv + np.roll(vv, -1, axis=-1)) * a * np.cos(ph[j]) * dl
+            c = np.concatenate([np.zeros(vv.shape[:-1] + (1,)), np.cumsum(seg[..., :-1], axis=-1)], axis=-1)
+            out[..., j, :] = c - c.mean(axis=-1, keepdims=True)
+        ubar = u.mean(axis=-1)
+        offset = -a * np.trapezoid(ubar, ph, axis=-1)
+        out[..., -1, :] += offset[..., None]
+        out -= 0.5 * offset[..., None, None]
+        return out
+    ny, nx = g.ny, g.nx
+    # perimeter nodes counter-clockwise: south (W->E), east (S->N), north (E->W), west (N->S)
+    jj = np.concatenate([np.zeros(nx - 1, int), np.arange(ny - 1), np.full(nx - 1, ny - 1), np.arange(ny - 1, 0, -1)])
+    ii = np.concatenate([np.arange(nx - 1), np.full(ny - 1, nx - 1), np.arange(nx - 1, 0, -1), np.zeros(ny - 1, int)])
+    # -u_n along each side: south v, east -u, north -v, west u (see the docstring)
+    side = np.concatenate([np.zeros(nx - 1, int), np.ones(ny - 1, int), np.full(nx - 1, 2), np.full(ny - 1, 3)])
+    jn, in_ = np.roll(jj, -1), np.roll(ii, -1)
+    uu, vv = u[..., jj, ii], v[..., jj, ii]
+    un, vn = u[..., jn, in_], v[..., jn, in_]
+    sgn_v = np.select([side == 0, side == 2], [1.0, -1.0], 0.0)
+    sgn_u = np.select([side == 1, side == 3], [-1.0, 1.0], 0.0)
+    w0 = sgn_v * vv + sgn_u * uu
+    w1 = sgn_v * vn + sgn_u * un
+    # segment lengths: zonal segments at their latitude, meridional ones a dlat
+    ds = np.where((side == 0) | (side == 2), a * np.cos(ph[jj]) * np.abs(lam[in_] - lam[ii]),
+                  a * np.abs(ph[jn] - ph[jj]))
+    net = np.sum(0.5 * (w0 + w1) * ds, axis=-1, keepdims=True)
+    w0 = w0 - net / ds.sum()
+    w1 = w1 - net / ds.sum()
+    seg = 0.5 * (w0 + w1) * ds
+    c = np.concatenate([np.zeros(seg.shape[:-1] + (1,)), np.cumsum(seg[..., :-1], axis=-1)], axis=-1)
+    c -= c.mean(axis=-1, keepdims=True)
+    out[..., jj, ii] = c
+    return out
+
+
+def relative_vorticity(grid: BalanceGrid, u, v):
+    """zeta = (1/(a cos lat)) [dv/dlon - d(u cos lat)/dlat] at the interior nodes (centred)."""
+    g = grid
+    u = np.asarray(u, float)
+    v = np.asarray(v, float)
+    cosf = np.cos(g.phi)[:, None]
+    dv = g.d_lon_rows(v)[..., 1:-1, :]
+    duc = g.d_lat((u * cosf)[..., g.ls])
+    return (dv - duc) / (g.a * g.cos)
+
+
+def streamfunction(grid: BalanceGrid, u, v):
+    """psi of the analysed wind: ``lap psi = zeta`` inside, the boundary rule on the lateral nodes."""
+    g = grid
+    psi = boundary_streamfunction(g, u, v)
+    B = _LatSeparable(g.qg, g.hc, nv=1)
+    zeta = relative_vorticity(g, u, v)
+    psi[..., 1:-1, g.ls] = B.solve_interior(zeta - g.lap(psi))
+    return psi
+
+
+# ---------------------------------------------------------------------------
+# balanced fields
+# ---------------------------------------------------------------------------
+
+
+def nonlinear_fields(grid: BalanceGrid, phi, psi, coords, bottom_theta=None, top_theta=None, names=None):
+    """Balanced fields of (phi, psi) with the same variables as the QG results.
+
+    ``u = -(1/a) dpsi/dlat``, ``v = (1/(a cos lat)) dpsi/dlon`` (second-order centred,
+    second-order one-sided at the edges), ``relative_vorticity = lap psi`` (NaN on the lateral
+    nodes), temperature hydrostatic in ln p (the imposed theta on the boundary levels when
+    given), ``height_anomaly = phi/g``.  ``phi``/``psi`` (..., nz, ny, nx); ``names`` labels a
+    leading ``piece`` dimension.
+    """
+    g = grid
+    phi = np.asarray(phi, float)
+    psi = np.asarray(psi, float)
+    a = g.a
+    rlat, rlon = g.phi, np.deg2rad(g.lon)
+    u = -np.gradient(psi, rlat, axis=-2, edge_order=2) / a
+    if g.periodic:
+        dpl = (np.roll(psi, -1, axis=-1) - np.roll(psi, 1, axis=-1)) / (2.0 * g.dlam)
+    else:
+        dpl = np.gradient(psi, rlon, axis=-1, edge_order=2)
+    v = dpl / (a * np.cos(rlat)[:, None])
+    zeta = horizontal_laplacian(g.qg, psi)
+    temp = hydrostatic_temperature(phi, g.pressure)
+    pi = (g.pressure / P0) ** KAPPA
+    if bottom_theta is not None:
+        temp[..., 0, :, :] = pi[0] * np.asarray(bottom_theta, float)
+    if top_theta is not None:
+        temp[..., -1, :, :] = pi[-1] * np.asarray(top_theta, float)
+    values = dict(geopotential_anomaly=phi, height_anomaly=phi / G, u=u, v=v, relative_vorticity=zeta,
+                  temperature_anomaly=temp, theta_anomaly=temp / pi[:, None, None])
+    dims = ("pressure", "latitude", "longitude")
+    if phi.ndim == 4:
+        dims = ("piece",) + dims
+        coords = dict(coords, piece=list(names))
+    attrs = {k: dict(v_) for k, v_ in _ATTRS.items()}
+    attrs["u"] = dict(standard_name="eastward_wind", long_name="balanced eastward wind (nonlinear balance)",
+                      units="m s-1")
+    attrs["v"] = dict(standard_name="northward_wind", long_name="balanced northward wind (nonlinear balance)",
+                      units="m s-1")
+    ds = xr.Dataset({k: (dims, val, attrs[k]) for k, val in values.items()}, coords=coords)
+    ds["streamfunction"] = xr.DataArray(psi, dims=dims, attrs=dict(long_name="balanced streamfunction",
+                                                                  units="m2 s-1"))
+    ds.attrs.update(
+        balance="nonlinear (Charney) balance, f = 2 Omega sin(lat), spherical metric",
+        caution="Diagnostic analysis of model or analysis data, not a forecast or warning.",
+    )
+    return ds
+
+
+# ---------------------------------------------------------------------------
+# the case: full state, reference, pieces
+# ---------------------------------------------------------------------------
+
+
+def _case_states(case, ti, mi, reference):
+    """Analysed and reference states of a case time on the inversion stencil."""
+    from workbench import physics
+    from workbench.case import _ground_value
+
+    ds = case.at(ti, mi)
+    case._refuse_gaps(ti, mi, "The nonlinear inversion")
+    physics.check_qg_domain(case.data["latitude"].values)
+    bg = case.missing_info(ti, mi)["below_ground"]
+    g = _grid_of_case(case)
+    ref = case.reference(reference)
+
+    def state(fields):
+        fields = fields.transpose(..., "pressure", "latitude", "longitude")
+        Phi = np.asarray(fields["geopotential"].values, float)
+        theta = physics.potential_temperature(fields["temperature"])
+        tb = np.asarray(_ground_value(theta, bg).values, float)
+        tt = np.asarray(theta.isel(pressure=-1).values, float)
+        psi = streamfunction(g, fields["u"].values, fields["v"].values)
+        return dict(Phi=Phi, psi=psi, tb=tb, tt=tt, q=ertel_pv_nb(g, Phi, psi, tb, tt),
+                    u=np.asarray(fields["u"].values, float), v=np.asarray(fields["v"].values, float))
+
+    return g, state(ds), state(ref)
+
+
+def _grid_of_case(case):
+    d = case.data
+    return BalanceGrid(d["latitude"].values, d["longitude"].values, d["pressure"].values)
+
+
+def _solve_state(g, st, tol, floor, **kw):
+    return solve_balance(g, st["q"], st["tb"], st["tt"], st["Phi"], st["psi"], guess=(st["Phi"], st["psi"]),
+                         tol=tol, floor=floor, **kw)
+
+
+def _require_converged(res, what):
+    if not res.converged:
+        h = res.residual_history
+        raise DomainError(
+            f"nonlinear balance: the {what} did not converge (relative residual {h[-1]:.2e} after "
+            f"{res.newton_iterations} Newton steps, tolerance {res.tol:g}); the state may be close to "
+            "the limit of ellipticity (try floor=True) or use balance='qg'.")
+
+
+def _info(res):
+    return dict(converged=res.converged, residual_history=[float(x) for x in res.residual_history],
+                newton_iterations=res.newton_iterations, gmres_iterations=res.gmres_iterations,
+                preconditioner_applications=res.preconditioner_applications, seconds=res.seconds,
+                tol=res.tol, n_pv_floored=res.n_pv_floored, n_eta_floored=res.n_eta_floored)
+
+
+def case_balanced_state(case, time=None, member=None, *, tol=DEFAULT_TOL, floor=False):
+    """Full nonlinear-balance state of a case time: Dataset with ``geopotential``, ``u``, ``v``,
+    ``relative_vorticity``, ``temperature`` and ``streamfunction`` on the case grid (attrs:
+    iterations, residual history, floored points; variable ``floored`` when ``floor``)."""
+    ti, mi = case._key(time, member)
+    g, st, _ = _case_states(case, ti, mi, None)
+    res = _solve_state(g, st, tol, floor)
+    _require_converged(res, "full inversion")
+    return _full_dataset(case, g, res.Phi, res.psi, st["tb"], st["tt"], res, "nonlinear")
+
+
+def _full_dataset(case, g, Phi, psi, tb, tt, res, balance):
+    coords = {c: case.data[c] for c in ("pressure", "latitude", "longitude")}
+    f = nonlinear_fields(g, Phi, psi, coords, tb, tt)
+    ds = xr.Dataset(dict(
+        geopotential=f["geopotential_anomaly"].assign_attrs(standard_name="geopotential",
+                                                            long_name="balanced geopotential", units="m2 s-2"),
+        u=f["u"], v=f["v"], relative_vorticity=f["relative_vorticity"],
+        temperature=f["temperature_anomaly"].assign_attrs(standard_name="air_temperature",
+                                                          long_name="balanced temperature", units="K"),
+        streamfunction=f["streamfunction"]))
+    ds.attrs.update(balance=balance, caution=f.attrs["caution"])
+    if res is not None:
+        ds.attrs["solver"] = json.dumps(_info(res))
+        if res.floored is not None:
+            ds["floored"] = xr.DataArray(res.floored, dims=("pressure", "latitude", "longitude"), attrs=dict(
+                long_name="points changed by the floor remedy (1 PV, 2 absolute vorticity, 3 both)"))
+    return ds
+
+
+def invert_nonlinear_pieces(case, pieces, time=None, member=None, reference=None, *, tol=DEFAULT_TOL,
+                            floor=False, piece_rtol=1e-10):
+    """Piecewise nonlinear-balance inversion of one case time (see the module docstring).
+
+    Returns a dict like :func:`workbench.inversion.pieces.invert_pieces`: one balanced Dataset
+    per piece (anomalies about the balanced reference state), the remainder,
+    ``"nonlinear remainder"`` (full anomaly minus the sum of the linear pieces) and ``"total"``
+    (the full anomaly: nonlinear inversion of the case minus that of the reference).  Each
+    Dataset has attrs ``piece``, ``kind`` and ``balance="nonlinear"``; ``"total"`` carries the
+    solver report (``solver`` JSON: iterations, residual history, floored points).
+    """
+    from workbench.inversion.pieces import Piece, _claims
+
+    plist = [p if isinstance(p, Piece) else Piece.from_dict(p) for p in pieces]
+    if any(p.name == NONLINEAR_REMAINDER for p in plist):
+        raise PieceError(f"piece {NONLINEAR_REMAINDER!r}: this name is kept for the nonlinear remainder; "
+                         "rename the piece.")
+    ti, mi = case._key(time, member)
+    g, st, rf = _case_states(case, ti, mi, reference)
+    full = _solve_state(g, st, tol, floor)
+    _require_converged(full, "full inversion")
+    refr = _solve_state(g, rf, tol, floor)
+    _require_converged(refr, "inversion of the reference state")
+    anomaly = case.anomaly(ti, mi, reference).copy()
+    dq = st["q"] - rf["q"]
+    anomaly["qgpv_anomaly"] = anomaly["qgpv_anomaly"].copy(data=dq)
+    anomaly["bottom_theta_anomaly"] = anomaly["bottom_theta_anomaly"].copy(data=st["tb"] - rf["tb"])
+    anomaly["top_theta_anomaly"] = anomaly["top_theta_anomaly"].copy(data=st["tt"] - rf["tt"])
+    anomaly["geopotential_anomaly"] = anomaly["geopotential_anomaly"].copy(data=st["Phi"] - rf["Phi"])
+    dpsi_lat = st["psi"] - rf["psi"]
+    forcings, (_q, _bt, _tt, lat_all) = _claims(plist, anomaly)
+    state = (full.Phi, full.psi, st["tb"], st["tt"])
+    d = _terms(g, full.Phi, full.psi, st["tb"], st["tt"])
+    P = _Preconditioner(g, d["Spp"].reshape(g.nz, -1).mean(axis=1))
+    ef = 0.05 if floor else None
+    names, Ps, Ss, Bs, Ts, its = [], [], [], [], [], []
+    for name, f in forcings:
+        lateral = f["lateral"] is lat_all
+        fd = dict(q=f["q"], bottom_theta=f["bottom_theta"], top_theta=f["top_theta"],
+                  lateral_phi=lat_all if lateral else None, lateral_psi=dpsi_lat if lateral else None)
+        dP, dS, n = solve_tangent(g, state, fd, eta_floor=ef, rtol=piece_rtol, P=P)
+        names.append(name)
+        Ps.append(dP)
+        Ss.append(dS)
+        Bs.append(np.zeros(g.shape[1:]) if f["bottom_theta"] is None else f["bottom_theta"])
+        Ts.append(np.zeros(g.shape[1:]) if f["top_theta"] is None else f["top_theta"])
+        its.append(n)
+    tot_P, tot_S = full.Phi - refr.Phi, full.psi - refr.psi
+    tb_tot, tt_tot = st["tb"] - rf["tb"], st["tt"] - rf["tt"]
+    names += [NONLINEAR_REMAINDER, "total"]
+    Ps += [tot_P - np.sum(Ps, axis=0), tot_P]
+    Ss += [tot_S - np.sum(Ss, axis=0), tot_S]
+    Bs += [tb_tot - np.sum(Bs, axis=0), tb_tot]
+    Ts += [tt_tot - np.sum(Ts, axis=0), tt_tot]
+    coords = {c: case.data[c] for c in ("pressure", "latitude", "longitude")}
+    stacked = nonlinear_fields(g, np.array(Ps), np.array(Ss), coords, np.array(Bs), np.array(Ts), names=names)
+    kinds = {p.name: p.kind for p in plist}
+    out = {}
+    for i, name in enumerate(names):
+        ds = stacked.isel(piece=i, drop=True)
+        kind = "total" if name == "total" else ("nonlinear" if name == NONLINEAR_REMAINDER
+                                                 else kinds.get(name, "remainder"))
+        ds.attrs = dict(stacked.attrs, piece=name, kind=kind, balance="nonlinear")
+        out[name] = ds
+    out["total"].attrs["solver"] = json.dumps(dict(full=_info(full), reference=_info(refr),
+                                                   piece_gmres_iterations=dict(zip(names[:-2], its))))
+    if full.floored is not None:
+        out["total"]["floored"] = xr.DataArray(full.floored, dims=("pressure", "latitude", "longitude"),
+                                               attrs=dict(long_name="points changed by the floor remedy "
+                                                                    "(1 PV, 2 absolute vorticity, 3 both)"))
+    return out
+
+
+def balance_quality(case, time=None, member=None, reference=None, *, tol=DEFAULT_TOL, floor=False):
+    """Balanced-versus-analysed wind per level for QG and nonlinear balance.
+
+    Returns a Dataset over ``pressure``: ``rms_wind`` (RMS analysed wind speed),
+    ``rms_difference_qg`` / ``rms_difference_nonlinear`` (RMS of the vector difference between
+    the balanced and the analysed wind, m s-1) and ``relative_difference_qg`` /
+    ``relative_difference_nonlinear`` (that over ``rms_wind``); RMS weighted by cos(lat) over
+    the interior nodes above the ground.  ``balance_difference`` (pressure, latitude,
+    longitude) is the speed of the nonlinear minus the QG balanced wind (where the two
+    balances differ most).  The QG balanced wind is the QG full inversion's (reference plus
+    the QG anomaly, geostrophic with the case's constant f0).
+    """
+    ti, mi = case._key(time, member)
+    nl = case_balanced_state(case, ti, mi, tol=tol, floor=floor)
+    qg = case.balanced_state(ti, mi, balance="qg", reference=reference)
+    ds = case.at(ti, mi).transpose(..., "pressure", "latitude", "longitude")
+    ua, va = (np.asarray(ds[c].values, float) for c in ("u", "v"))
+    bg = np.asarray(case.below_ground(ti, mi).values, bool)
+    w = np.broadcast_to(np.cos(np.deg2rad(case.data["latitude"].values))[None, :, None], ua.shape).copy()
+    w[bg] = 0.0
+    w[:, [0, -1], :] = 0.0
+    w[:, :, [0, -1]] = 0.0
+
+    def rms(a):
+        return np.sqrt(np.sum(w * a, axis=(1, 2)) / np.sum(w, axis=(1, 2)))
+
+    out = xr.Dataset(coords={"pressure": case.data["pressure"]})
+    out["rms_wind"] = ("pressure", rms(ua ** 2 + va ** 2), dict(units="m s-1", long_name="RMS analysed wind"))
+    for name, st in (("qg", qg), ("nonlinear", nl)):
+        du = st["u"].values - ua
+        dv = st["v"].values - va
+        r = rms(du ** 2 + dv ** 2)
+        out[f"rms_difference_{name}"] = ("pressure", r, dict(units="m s-1", long_name=(
+            f"RMS vector difference, {name} balanced minus analysed wind")))
+        out[f"relative_difference_{name}"] = ("pressure", r / out["rms_wind"].values, dict(units="1"))
+    diff = np.hypot(nl["u"].values - qg["u"].values, nl["v"].values - qg["v"].values)
+    out["balance_difference"] = (("pressure", "latitude", "longitude"), diff,
+                                 dict(units="m s-1", long_name="speed of nonlinear minus QG balanced wind"))
+    out = out.assign_coords(latitude=case.data["latitude"], longitude=case.data["longitude"])
+    out.attrs.update(time=str(case.times[ti])[:19], solver=nl.attrs.get("solver", ""),
+                     weighting="cos(latitude), interior nodes above the ground")
+    return out
+
+
+# ---------------------------------------------------------------------------
+# benchmark
+# ---------------------------------------------------------------------------
+
+
+def bench_problem(shape, amplitude=1.0):
+    """An invented regional state on the grid of ``workbench.bench.make_grid(shape)``: a
+    stratified reference (theta linear in ln p), a jet and a cut-off low of Rossby number near
+    ``0.3 * amplitude``; the analysed wind is geostrophic with the local f (unbalanced).
+    Returns (grid, q, theta_b, theta_t, Phi, psi_data)."""
+    nz, ny, nx = shape
+    lat = np.linspace(25.0, 85.0, ny)
+    lon = np.linspace(-60.0, 40.0, nx)
+    p = np.linspace(100000.0, 10000.0, nz)
+    g = BalanceGrid(lat, lon, p)
+    Phi, u, v, tb, tt = _invented_state(g, amplitude)
+    psi = streamfunction(g, u, v)
+    q = ertel_pv_nb(g, Phi, psi, tb, tt)
+    return g, q, tb, tt, Phi, psi
+
+
+def _invented_state(g, amplitude):
+    """Fixture fields (invented): Phi with a jet and a low; the geostrophic wind with local f."""
+    p = g.pressure
+    lnp = np.log(p / P0)
+    th0 = 290.0 - 25.0 * lnp  # K, theta linear in ln p (stable)
+    pi = g.pi
+    # Phi_ref from dPhi/dpi = -theta: integrate upward from 0 at the lowest level
+    from scipy.integrate import cumulative_trapezoid
+
+    Phi_ref = -cumulative_trapezoid(th0, pi, initial=0.0)
+    LA, LO = np.meshgrid(g.phi, np.deg2rad(g.lon), indexing="ij")
+    s = (pi[0] - pi) / (pi[0] - pi[-1])  # 0 at the bottom, 1 at the top
+    jet = -4.0e3 * amplitude * np.tanh((LA - np.deg2rad(50.0)) / np.deg2rad(8.0))
+    r2 = ((LA - np.deg2rad(55.0)) / np.deg2rad(6.0)) ** 2 + ((LO - np.deg2rad(-10.0)) * np.cos(LA) / np.deg2rad(6.0)) ** 2
+    low = -3.0e3 * amplitude * np.exp(-r2)
+    Phi = (Phi_ref[:, None, None] + (0.3 + s[:, None, None]) * jet[None]
+           + np.sin(np.pi * (0.2 + 0.6 * s))[:, None, None] * low[None])
+    f = g.f[:, None]
+    u = -np.gradient(Phi, g.phi, axis=-2) / (g.a * f)
+    v = np.gradient(Phi, np.deg2rad(g.lon), axis=-1) / (g.a * np.cos(g.phi)[:, None] * f)
+    theta = -g.d_pi(Phi)
+    return Phi, u, v, theta[0], theta[-1]
+
+
+def bench_nonlinear(name, shape, repeat=3, tol=DEFAULT_TOL, log=None):
+    """Benchmark records for one grid: QG solve time and the nonlinear full inversion.
+
+    Records: ``method="qg_balance"`` (one fast QG solve, median) and
+    ``method="nonlinear_balance"`` with ``newton_iterations``, ``gmres_iterations``,
+    ``preconditioner_applications``, ``final_relative_residual``, ``median_s`` and
+    ``qg_solves`` = ``median_s`` over the QG solve time (same grid, timed interleaved).
+    """
+    import statistics
+
+    from workbench.inversion.operator import apply_qg_operator
+    from workbench.inversion.solver import QGSolver
+
+    g, q, tb, tt, Phi, psi = bench_problem(shape)
+    qs = QGSolver(g.qg)
+    rng = np.random.default_rng(1)
+    phi_r = rng.standard_normal(g.shape) * 100.0
+    qq = np.nan_to_num(apply_qg_operator(g.qg, phi_r))
+    t_qg, t_nl, res = [], [], None
+    for _ in range(repeat):
+        for _ in range(5):
+            t0 = _time.perf_counter()
+            qs.solve(qq, lateral=phi_r)
+            t_qg.append(_time.perf_counter() - t0)
+        t0 = _time.perf_counter()
+        res = solve_balance(g, q, tb, tt, Phi, psi, tol=tol)
+        t_nl.append(_time.perf_counter() - t0)
+    tq, tn = statistics.median(t_qg), statistics.median(t_nl)
+    recs = [
+        dict(grid=name, shape=list(shape), method="qg_balance", median_s=tq, repeats=len(t_qg)),
+        dict(grid=name, shape=list(shape), method="nonlinear_balance", median_s=tn, repeats=repeat,
+             qg_solves=tn / tq, newton_iterations=res.newton_iterations, gmres_iterations=res.gmres_iterations,
+             preconditioner_applications=res.preconditioner_applications,
+             residual_evaluations=res.residual_evaluations,
+             final_relative_residual=float(res.residual_history[-1]), tol=tol, converged=res.converged,
+             residual_history=[float(x) for x in res.residual_history],
+             first_guess="level-by-level harmonic extension of the lateral data"),
+    ]
+    if log:
+        for r in recs:
+            log(r)
+    return recs
