@@ -664,16 +664,53 @@ class Case:
 
         return self._cache.get(("anom", ti, mi, _ref_key(reference)), make)
 
-    def inversion(self, pieces, time=None, member=None, reference=None) -> dict:
-        """Piecewise QG inversion: dict piece name -> balanced Dataset (and "total")."""
+    def inversion(self, pieces, time=None, member=None, reference=None, balance="qg", floor=False) -> dict:
+        """Piecewise inversion: dict piece name -> balanced Dataset (and "total").
+
+        ``balance="qg"`` (constant f0, linear) or ``"nonlinear"`` (nonlinear balance with
+        f(lat), :mod:`workbench.inversion.nonlinear`; adds the ``"nonlinear remainder"`` entry;
+        ``floor=True`` accepts the floor remedy where the system is not elliptic)."""
         from .inversion.pieces import Piece, invert_pieces
 
+        if balance not in ("qg", "nonlinear"):
+            raise InputError(f"balance {balance!r} is unknown; use 'qg' or 'nonlinear'.")
         ti, mi = self._key(time, member)
         reference = self.resolve_reference(reference)
         plist = [p if isinstance(p, Piece) else Piece.from_dict(p) for p in pieces]
         key = ("inv", ti, mi, _ref_key(reference),
                json.dumps([p.to_dict() for p in plist], sort_keys=True, default=str))
+        if balance == "nonlinear":
+            from .inversion.nonlinear import invert_nonlinear_pieces
+
+            return self._cache.get(key + ("nonlinear", bool(floor)), lambda: invert_nonlinear_pieces(
+                self, plist, ti, mi, reference, floor=floor))
         return self._cache.get(key, lambda: invert_pieces(self.anomaly(ti, mi, reference), plist))
+
+    def balanced_state(self, time=None, member=None, balance="nonlinear", reference=None, floor=False):
+        """The full balanced state (not only the anomaly): Dataset with ``geopotential``, ``u``,
+        ``v``, ``relative_vorticity`` and ``temperature`` on the case grid, to compare with the
+        analysed fields. ``"qg"``: reference plus the QG full inversion, geostrophic wind with
+        the constant f0; ``"nonlinear"``: the nonlinear-balance inversion of the Ertel PV."""
+        if balance == "nonlinear":
+            from .inversion.nonlinear import case_balanced_state
+
+            ti, mi = self._key(time, member)
+            return self._cache.get(("balstate", ti, mi, bool(floor)),
+                                   lambda: case_balanced_state(self, ti, mi, floor=floor))
+        if balance != "qg":
+            raise InputError(f"balance {balance!r} is unknown; use 'qg' or 'nonlinear'.")
+        from .inversion.fields import balanced_fields
+
+        total = self.inversion([], time, member, reference)["total"]
+        phi = self.reference(reference)["geopotential"] + total["geopotential_anomaly"]
+        f = balanced_fields(phi.transpose("pressure", "latitude", "longitude"), self.f0)
+        ds = xr.Dataset(dict(geopotential=f["geopotential_anomaly"].assign_attrs(
+            standard_name="geopotential", long_name="balanced geopotential", units="m2 s-2"),
+            u=f["u"], v=f["v"], relative_vorticity=f["relative_vorticity"],
+            temperature=f["temperature_anomaly"].assign_attrs(
+                standard_name="air_temperature", long_name="balanced temperature", units="K")))
+        ds.attrs.update(balance="qg", f0=self.f0)
+        return ds
 
     def _refuse_gaps(self, ti, mi, what):
         info = self.missing_info(ti, mi)
