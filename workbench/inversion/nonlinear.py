@@ -503,8 +503,9 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
         First guess (full grid; its lateral values are replaced by the data); default the
         level-by-level harmonic extension of the lateral data.
     tol : float
-        Stop when the relative residual ``max(rms(E1)/rms(q), rms(E2)/rms(lap Phi_guess))``
-        (RMS over the interior nodes) is <= tol.
+        Stop when the relative residual ``max(rms(E1)/rms(q), rms(E2)/b)`` (RMS over the
+        interior nodes) is <= tol; ``b`` is the largest of rms(lap Phi) and rms(div(f grad psi))
+        of the first guess and ``f0^2 rms(q - level mean of q)/rms(q)``.
     floor : bool
         Accept the floor remedy where the system is not elliptic: PV raised to ``pv_floor``
         PVU and f + zeta to ``eta_floor`` |f| (with the sign of f); the changed points are
@@ -536,7 +537,9 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
                                         eta_floor if floor else None)
     ef = eta_floor if floor else None
     qs = _rms(g.interior(q_used))
-    bs = max(_rms(d0["lapPhi"]), _rms(d0["divf"]), 1e-30)
+    qi = g.interior(q_used)
+    qa = qi - qi.reshape(g.nz, -1).mean(axis=1)[:, None, None]
+    bs = max(_rms(d0["lapPhi"]), _rms(d0["divf"]), g.f0 ** 2 * max(_rms(qa) / max(qs, 1e-300), 1e-6))
     S_state = d0["Spp"] if preconditioner_state is None else preconditioner_state
     S = S_state.reshape(g.nz, -1).mean(axis=1)
     P = _Preconditioner(g, S)

@@ -1,0 +1,251 @@
+"""Nonlinear-balance inversion (workbench.inversion.nonlinear) against outside references."""
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pytest
+from scipy.integrate import quad
+from scipy.optimize import newton_krylov
+
+from workbench.errors import DomainError
+from workbench.inversion import nonlinear as nl
+from workbench.inversion.operator import QGGrid
+from workbench.inversion.solver import QGSolver
+from workbench.units import CP, EARTH_RADIUS, KAPPA, P0, RD, G
+
+P9 = np.array([1000, 900, 800, 700, 600, 500, 400, 300, 200.0]) * 100.0
+A = EARTH_RADIUS
+
+
+def _geodesic(lat, lon, latc, lonc):
+    """Great-circle distance r (m) from the centre and the derivatives of cos(r/a)."""
+    ph, la = np.meshgrid(np.deg2rad(lat), np.deg2rad(lon), indexing="ij")
+    pc, lc = np.deg2rad(latc), np.deg2rad(lonc)
+    c = np.sin(pc) * np.sin(ph) + np.cos(pc) * np.cos(ph) * np.cos(la - lc)
+    r = A * np.arccos(np.clip(c, -1.0, 1.0))
+    dc_dphi = np.sin(pc) * np.cos(ph) - np.cos(pc) * np.sin(ph) * np.cos(la - lc)
+    dc_dlam = -np.cos(pc) * np.cos(ph) * np.sin(la - lc)
+    return r, dc_dphi, dc_dlam, ph
+
+
+def gradient_wind_vortex(res_deg, f0=1.03e-4, V0=20.0, r0=3.0e5):
+    """Axisymmetric vortex in exact gradient-wind balance on an f-plane on the sphere (fixture).
+
+    Tangential wind v = G(pi) V0 rho exp((1 - rho^2)/2), rho = r/r0, G = 0.5 + 0.5 s (s = 0 at the
+    lowest level, 1 at the top), stratified reference theta = 300 + 0.12 (pi0 - pi) K.
+    Gradient-wind balance dPhi/dr = f v + v^2/r (Holton & Hakim, An Introduction to Dynamic
+    Meteorology, 5th ed., sec. 3.2.5) in geodesic polar coordinates on the sphere, where 1/r becomes
+    cot(r/a)/a (the axisymmetric nondivergent divergence equation on a sphere; -> 1/r for r << a).
+    """
+    lat = np.arange(38.0, 52.0 + 1e-9, res_deg)
+    lon = np.arange(-10.0, 10.0 + 1e-9, res_deg)
+    g = nl.BalanceGrid(lat, lon, P9, f=f0)
+    pi = g.pi
+    pi0, pit = pi[0], pi[-1]
+    Gp = 0.5 + 0.5 * (pi0 - pi) / (pi0 - pit)
+    dG = -0.5 / (pi0 - pit)
+    r, dcp, dcl, ph = _geodesic(lat, lon, 45.0, 0.0)
+    rho = r / r0
+    F = rho * np.exp(0.5 * (1.0 - rho ** 2))
+    dF = (1.0 - rho ** 2) * np.exp(0.5 * (1.0 - rho ** 2)) / r0
+    I1 = V0 * r0 * np.exp(0.5 * (1.0 - rho ** 2))  # integral of V0 F from r to infinity
+
+    def integrand(x):
+        rr = x / r0
+        return (V0 * rr * np.exp(0.5 * (1 - rr ** 2))) ** 2 / (A * np.tan(x / A))
+
+    rmax = 12.0 * r0
+    I2 = np.array([quad(integrand, x, rmax, limit=200)[0] if x < rmax else 0.0 for x in r.ravel()]).reshape(r.shape)
+    cot = np.where(r > 0, 1.0 / np.tan(np.maximum(r, 1.0) / A) / A, 0.0)
+    Phi_ref = -(300.0 * (pi - pi0) - 0.06 * (pi0 - pi) ** 2)  # dPhi/dpi = -theta_ref
+    Phi = Phi_ref[:, None, None] - f0 * Gp[:, None, None] * I1 - Gp[:, None, None] ** 2 * I2
+    theta = (300.0 + 0.12 * (pi0 - pi))[:, None, None] + f0 * dG * I1 + 2.0 * Gp[:, None, None] * dG * I2
+    vt = Gp[:, None, None] * V0 * F
+    # Ertel PV (hydrostatic, nondivergent) in geodesic polar coordinates, analytic:
+    # q = (g kappa pi/p) [(f + zeta) Phi_pipi - psi_r,pi Phi_r,pi]  (Davis & Emanuel 1991, the PV equation)
+    zeta = Gp[:, None, None] * V0 * (dF + F * cot)
+    zeta = np.where(r > 0, zeta, Gp[:, None, None] * V0 * 2.0 * np.exp(0.5) / r0)  # limit r -> 0
+    Phi_pipi = 0.12 - 2.0 * dG ** 2 * I2
+    psi_rpi = dG * V0 * F
+    Phi_rpi = f0 * dG * V0 * F + 2.0 * Gp[:, None, None] * dG * (V0 * F) ** 2 * cot
+    C = (G * KAPPA * pi / P9)[:, None, None]
+    q = C * ((f0 + zeta) * Phi_pipi - psi_rpi * Phi_rpi)
+    # wind components of the streamfunction psi(r) (dpsi/dr = vt): u = -(1/a) dpsi/dphi, v = dpsi/dlam/(a cos)
+    sinr = np.sin(np.maximum(r, 1.0) / A)
+    dr_dphi = -A / sinr * dcp
+    dr_dlam = -A / sinr * dcl
+    u = -vt * dr_dphi / A
+    v = vt * dr_dlam / (A * np.cos(ph))
+    return g, dict(Phi=Phi, theta=theta, q=q, u=u, v=v, vt=vt, Phi_ref=Phi_ref, Ro=V0 / (f0 * r0))
+
+
+def _invert_vortex(res_deg):
+    g, s = gradient_wind_vortex(res_deg)
+    psi_b = nl.boundary_streamfunction(g, s["u"], s["v"])
+    out = nl.solve_balance(g, s["q"], s["theta"][0], s["theta"][-1], s["Phi"], psi_b, tol=1e-10)
+    assert out.converged
+    f = nl.nonlinear_fields(g, out.Phi, out.psi, {})
+    inner = (slice(None), slice(1, -1), slice(1, -1))
+    amp = np.abs(s["Phi"] - s["Phi_ref"][:, None, None]).max()
+    err_phi = np.abs(out.Phi - s["Phi"])[inner].max() / amp
+    err_wind = np.hypot(f["u"].values - s["u"], f["v"].values - s["v"])[inner].max() / np.abs(s["vt"]).max()
+    return err_phi, err_wind, s["Ro"], out
+
+
+def test_gradient_wind_vortex_recovered():
+    # exact gradient-wind balance v^2/r + f v = dPhi/dr (Holton & Hakim 5th ed. sec. 3.2.5), Rossby number
+    # V0/(f r0) = 0.65: the inversion of the analytic Ertel PV returns Phi and the wind within the
+    # discretisation error, which is second order (documented in DEVELOPERS.md "Nonlinear balance").
+    e1_phi, e1_wind, ro, out1 = _invert_vortex(1.0)
+    e2_phi, e2_wind, _, out2 = _invert_vortex(0.5)
+    assert ro > 0.5
+    assert e2_phi < 0.01 and e2_wind < 0.03  # 0.5 deg (r0 = 5.4 grid lengths)
+    # second order: halving the grid length divides the error by about 4 (common practice)
+    assert e1_phi / e2_phi > 3.0 and e1_wind / e2_wind > 3.0
+    assert out2.residual_history[-1] <= 1e-10
+
+
+def test_gradient_wind_beats_geostrophic_wind():
+    # the balanced wind is the gradient wind, not the geostrophic wind (Holton & Hakim sec. 3.2.5:
+    # cyclonic gradient wind is subgeostrophic); the geostrophic wind with the same f misses by O(Ro).
+    g, s = gradient_wind_vortex(0.5)
+    _, err_wind, _, _ = _invert_vortex(0.5)
+    ug = -np.gradient(s["Phi"], g.phi, axis=-2) / (A * 1.03e-4)
+    vg = np.gradient(s["Phi"], np.deg2rad(g.lon), axis=-1) / (A * np.cos(g.phi)[:, None] * 1.03e-4)
+    inner = (slice(None), slice(1, -1), slice(1, -1))
+    err_geo = np.hypot(ug - s["u"], vg - s["v"])[inner].max() / np.abs(s["vt"]).max()
+    assert err_geo > 10 * err_wind
+
+
+def _small_amplitude(eps, f0=1.0e-4):
+    """Same Ertel PV anomaly eps * B (a Gaussian blob, fixture) inverted by both balances."""
+    lat = np.linspace(35.0, 55.0, 21)
+    lon = np.linspace(-15.0, 15.0, 31)
+    g = nl.BalanceGrid(lat, lon, P9, f=f0)
+    gamma, th0 = 8.0e-4, 300.0  # theta_ref = th0 + gamma (p0 - p): d(theta)/dp constant
+    pi = g.pi
+    e = 1.0 / KAPPA + 1.0
+    Phi_ref = -((th0 + gamma * P0) * (pi - pi[0]) - gamma * P0 * CP / e * ((pi / CP) ** e - (pi[0] / CP) ** e))
+    theta_ref = th0 + gamma * (P0 - P9)
+    Phi0 = np.broadcast_to(Phi_ref[:, None, None], g.shape).copy()
+    zero = np.zeros(g.shape)
+    tb = np.full(g.shape[1:], theta_ref[0])
+    tt = np.full(g.shape[1:], theta_ref[-1])
+    qbar = nl.ertel_pv_nb(g, Phi0, zero, tb, tt)
+    r, *_ = _geodesic(lat, lon, 45.0, 0.0)
+    B = np.exp(-(r / 8.0e5) ** 2)[None] * np.exp(-((P9 - 50000.0) / 20000.0) ** 2)[:, None, None]
+    out = nl.solve_balance(g, qbar * (1.0 + eps * B), tb, tt, Phi0, zero, tol=1e-10)
+    # QG: q' = f0 P'/Pbar (the linearised Ertel PV with d(theta)/dp constant), sigma of the reference
+    sigma = RD * (P9 / P0) ** KAPPA * gamma / P9
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        qg = QGSolver(QGGrid(lat, lon, P9, sigma, f0))
+    phi_qg = qg.solve(f0 * eps * B)
+    dphi = out.Phi - Phi0
+    inner = (slice(None), slice(1, -1), slice(1, -1))
+    ro = np.nanmax(np.abs(nl.ertel_pv_nb(g, out.Phi, out.psi, tb, tt) - qbar) / qbar)
+    zeta_ro = np.abs(g.lap(out.psi)).max() / f0
+    return np.abs(dphi - phi_qg)[inner].max() / np.abs(phi_qg).max(), zeta_ro, ro
+
+
+def test_small_amplitude_limit_is_qg():
+    # small-amplitude limit: nonlinear balance -> QG with the same f0 (Davis & Emanuel 1991; Holton & Hakim
+    # ch. 6), the difference growing like the Rossby number; what stays at eps -> 0 is the difference of
+    # the two vertical discretisations (pi finite volume vs p finite volume), measured 0.4 %.
+    d = {eps: _small_amplitude(eps) for eps in (0.025, 0.05, 0.1)}
+    (d1, ro1, _), (d2, ro2, _), (d4, ro4, _) = d[0.025], d[0.05], d[0.1]
+    assert d1 < 0.02 + 1.0 * ro1
+    assert ro4 > ro2 > ro1
+    # linear growth with amplitude (O(Rossby number)): equal increments for equal steps in eps
+    assert 1.6 < (d4 - d2) / (d2 - d1) < 2.4
+    assert (d4 - d1) / (ro4 - ro1) < 2.0
+
+
+def test_same_discrete_system_as_newton_krylov():
+    # the same discrete equations solved by SciPy's general Newton-Krylov solver, no preconditioner
+    g, q, tb, tt, Phi, psi = nl.bench_problem((5, 9, 11), amplitude=0.5)
+    ours = nl.solve_balance(g, q, tb, tt, Phi, psi, tol=1e-12)
+    assert ours.converged
+    n = int(np.prod(g.interior_shape))
+    P0_, S0 = Phi, psi  # start from the invented analysed state (not from our solution)
+    qs, bs = ours.scales["q"], ours.scales["balance"]
+    ps = np.abs(Phi).max()
+    ss = np.abs(psi).max()
+
+    def F(x):
+        Pn, Sn = P0_.copy(), S0.copy()
+        Pn[:, 1:-1, 1:-1] = x[:n].reshape(g.interior_shape) * ps
+        Sn[:, 1:-1, 1:-1] = x[n:].reshape(g.interior_shape) * ss
+        r1, r2 = nl.balance_residual(g, Pn, Sn, q, tb, tt)
+        return np.concatenate([(r1 / qs).ravel(), (r2 / bs).ravel()])
+
+    x0 = np.concatenate([P0_[:, 1:-1, 1:-1].ravel() / ps, S0[:, 1:-1, 1:-1].ravel() / ss])
+    x = newton_krylov(F, x0, f_tol=1e-11, maxiter=60, method="gmres", inner_maxiter=2 * x0.size,
+                      inner_restart=x0.size, line_search=None)
+    phi_nk = x[:n].reshape(g.interior_shape) * ps
+    psi_nk = x[n:].reshape(g.interior_shape) * ss
+    assert np.abs(phi_nk - ours.Phi[:, 1:-1, 1:-1]).max() / np.abs(ours.Phi).max() < 1e-8
+    assert np.abs(psi_nk - ours.psi[:, 1:-1, 1:-1]).max() / np.abs(ours.psi).max() < 1e-8
+
+
+def test_refuses_non_elliptic_unless_floor():
+    g, q, tb, tt, Phi, psi = nl.bench_problem((5, 9, 11), amplitude=0.5)
+    q = q.copy()
+    q[2, 4, 5] = -0.05 * q[2, 4, 5]
+    with pytest.raises(DomainError, match="not elliptic.*1 points.*floor"):
+        nl.solve_balance(g, q, tb, tt, Phi, psi)
+    out = nl.solve_balance(g, q, tb, tt, Phi, psi, floor=True)
+    assert out.converged and out.n_pv_floored == 1 and out.floored[2, 4, 5] & 1
+    assert int((out.floored > 0).sum()) == out.n_pv_floored + out.n_eta_floored
+
+
+def test_pieces_close_and_nonlinear_remainder(sample_case_small):
+    case = sample_case_small
+    from workbench.analysis import standard_pieces
+    from workbench.inversion.pieces import attribution
+
+    pieces = standard_pieces()
+    res = case.inversion(pieces, time=6, balance="nonlinear", floor=True)
+    assert nl.NONLINEAR_REMAINDER in res and "total" in res
+    tot = res["total"]
+    for var in ("geopotential_anomaly", "u", "v", "relative_vorticity", "temperature_anomaly", "theta_anomaly"):
+        s = sum(ds[var] for k, ds in res.items() if k != "total")
+        scale = float(np.abs(tot[var]).max())
+        assert float(np.abs(s - tot[var]).max()) <= 1e-10 * scale, var  # closure to round-off
+    # the linear pieces add up to the tangent-linear response to the whole anomaly (linearity)
+    lin = sum(ds["geopotential_anomaly"] for k, ds in res.items() if k not in ("total", nl.NONLINEAR_REMAINDER))
+    nlr = res[nl.NONLINEAR_REMAINDER]["geopotential_anomaly"]
+    assert float(np.abs(nlr).max()) < 0.5 * float(np.abs(tot["geopotential_anomaly"]).max())
+    assert float(np.abs(lin + nlr - tot["geopotential_anomaly"]).max()) < 1e-9 * float(np.abs(lin).max())
+    lon, lat = float(case.data.longitude[10]), float(case.data.latitude[10])
+    table = attribution(res, lon, lat, 500.0)
+    assert nl.NONLINEAR_REMAINDER in table.index
+    np.testing.assert_allclose(table.loc["sum of pieces", "height_anomaly"],
+                               table.loc["full inversion", "height_anomaly"], rtol=1e-10)
+
+
+def test_tangent_linear_is_linear(sample_case_small):
+    # the piece solve is linear: response(a + b) = response(a) + response(b) (GMRES to 1e-10)
+    case = sample_case_small
+    g, st, _ = nl._case_states(case, 6, None, None)
+    full = nl._solve_state(g, st, 1e-8, True)
+    state = (full.Phi, full.psi, st["tb"], st["tt"])
+    rng = np.random.default_rng(3)
+    qa = np.where(rng.random(g.shape) < 0.3, 1e-7, 0.0)
+    qb = np.where(rng.random(g.shape) < 0.3, -1e-7, 0.0)
+    ra = nl.solve_tangent(g, state, dict(q=qa), eta_floor=0.05)[0]
+    rb = nl.solve_tangent(g, state, dict(q=qb), eta_floor=0.05)[0]
+    rab = nl.solve_tangent(g, state, dict(q=qa + qb), eta_floor=0.05)[0]
+    assert np.abs(ra + rb - rab).max() < 1e-8 * np.abs(rab).max()
+
+
+@pytest.fixture(scope="module")
+def sample_case_small():
+    import workbench
+    from workbench.analysis import default_case_path
+    from workbench.case import Case
+
+    full = workbench.open_case(default_case_path())
+    d = full.data.isel(latitude=slice(10, 40), longitude=slice(10, 50), pressure=slice(0, None, 2))
+    return Case(d.load(), name="invented sample (cropped)")
