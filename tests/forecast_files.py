@@ -92,7 +92,11 @@ def _grib_grid(h, kind, crs, x, y, lat2d, lon2d, grid_relative):
     ny, nx = lat2d.shape
     ec.codes_set(h, "Nx", nx)
     ec.codes_set(h, "Ny", ny)
-    p = crs.to_dict()
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # only the parameters are read
+        p = crs.to_dict()
     if kind == "lambert":
         ec.codes_set(h, "LaDInDegrees", p["lat_0"])
         ec.codes_set(h, "LoVInDegrees", p["lon_0"] % 360)

@@ -251,6 +251,7 @@ def _title_page(case, state, generated, notes=()):
         info.append(f"Target point: {_fmt_lonlat(lon, lat)} at {p:g} hPa")
     info.append(f"Generated {generated} by PV Workbench {package_version()}")
     y = _text_page(fig, y - 0.03, "\n".join(info), size=10.5)
+    y_cols = y - 0.02
     y = _text_page(fig, y - 0.02, "Pieces of the piecewise QG inversion", size=12, weight="bold")
     if state.pieces:
         y = _text_page(fig, y, "\n".join("- " + _piece_line(p) for p in state.pieces), size=10)
@@ -261,6 +262,14 @@ def _title_page(case, state, generated, notes=()):
         y = _text_page(fig, y, "\n".join(
             f"- {s.name or f'section {k}'}: {_fmt_lonlat(*s.start)} to {_fmt_lonlat(*s.end)}"
             for k, s in enumerate(state.sections)), size=10)
+    data_notes = [n for n in getattr(case, "notes", []) if n]
+    if data_notes:  # right-hand column, beside the pieces and sections
+        yr = _text_page(fig, y_cols, "How the data were read", size=12, weight="bold", x=0.52, width=60)
+        width = int(0.44 * fig.get_figwidth() * 72.0 / (0.56 * 8.5))
+        for n in data_notes[:10]:
+            if yr < 0.24:
+                break
+            yr = _text_page(fig, yr, "- " + n, size=8.5, width=width, x=0.52) - 0.004
     if notes:
         y = _text_page(fig, y - 0.02, "Notes from the computation", size=12, weight="bold")
         y = _text_page(fig, y, "\n".join("- " + n for n in notes), size=9.5, color="#8a3b00")

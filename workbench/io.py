@@ -826,20 +826,17 @@ def _select(data, region=None, times=None):
     return data
 
 
-def _precut(raw, region, times, coords=None):
-    """Cut a raw (not yet normalised) regular latitude-longitude dataset to a region and a time
-    selection with index ranges, lazily. Returns (dataset, notes); (raw, None) when the data are
-    not a plain latitude-longitude grid (projected grids are cut on their way to latitude-longitude)."""
+def _precut(raw, region, coords=None):
+    """Cut a raw (not yet normalised) regular latitude-longitude dataset to a region with index
+    ranges, lazily. Returns (dataset, notes); (raw, None) when the data are not a plain
+    latitude-longitude grid (projected grids are cut on their way to latitude-longitude).
+    Times are selected after normalising (lazily: one Dask chunk per time)."""
     coords = dict(coords or {})
     lat_n = _find_coord(raw, "latitude", coords.get("latitude"))
     lon_n = _find_coord(raw, "longitude", coords.get("longitude"))
     if lat_n is None or lon_n is None or raw[lat_n].ndim != 1 or raw[lon_n].ndim != 1 or _native_crs(raw)[0]:
         return raw, None
     sel, notes = {}, []
-    if times is not None:
-        t_n = _find_coord(raw, "time", coords.get("time"))
-        if t_n is None or t_n not in raw.dims or raw[t_n].dtype.kind != "M":
-            return raw, None  # the time selection happens after normalising
     if region is not None:
         w, e, s_, n_ = _check_region(region)
         lat = np.asarray(raw[lat_n].values, float)
@@ -870,11 +867,6 @@ def _precut(raw, region, times, coords=None):
         else:
             sel[lon_n] = slice(int(ii[0]), int(ii[-1]) + 1)
     out = raw.isel(sel) if sel else raw
-    if times is not None:
-        t_n = _find_coord(out, "time", coords.get("time"))
-        tmp = xr.Dataset(coords={"time": out[t_n].values})
-        picked = _select(tmp, times=times)["time"].values
-        out = out.sel({t_n: picked})
     return out, notes
 
 
@@ -939,11 +931,11 @@ def open_case(source, **options):
         parts = []
         for p in paths:
             cut = None
-            if (region is not None or times is not None) and detect_format(p) != "grib":
+            if region is not None and detect_format(p) != "grib":
                 # cut a big regular file before anything is read: the lazy backend arrays take the
                 # region's index ranges straight to the file, and only then become Dask arrays
                 raw = read_dataset(p, chunks=None, **options)
-                raw, cut = _precut(raw, region, times, coords)
+                raw, cut = _precut(raw, region, coords)
                 if chunks is not None:
                     t_n = _find_coord(raw, "time", (coords or {}).get("time"))
                     raw = raw.chunk(chunks or ({t_n: 1} if t_n in raw.dims else {}))
