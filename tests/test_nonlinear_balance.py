@@ -152,7 +152,8 @@ def _small_amplitude(eps, f0=1.0e-4):
 def test_small_amplitude_limit_is_qg():
     # small-amplitude limit: nonlinear balance -> QG with the same f0 (Davis & Emanuel 1991; Holton & Hakim
     # ch. 6), the difference growing like the Rossby number; what stays at eps -> 0 is the difference of
-    # the two vertical discretisations (pi finite volume vs p finite volume), measured 0.4 %.
+    # the two vertical discretisations (pi finite volume vs p finite volume), measured 0.8 %
+    # (relative differences 1.1, 1.5, 2.2 % at eps = 0.025, 0.05, 0.1).
     d = {eps: _small_amplitude(eps) for eps in (0.025, 0.05, 0.1)}
     (d1, ro1, _), (d2, ro2, _), (d4, ro4, _) = d[0.025], d[0.05], d[0.1]
     assert d1 < 0.02 + 1.0 * ro1

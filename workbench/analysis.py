@@ -118,7 +118,7 @@ def above_ground_target(case, target, time=None, member=None):
     return (lon, lat, float(levels[k0])), note
 
 
-def analyse(case, time=None, member=None, pieces=None, target=None, reference=None):
+def analyse(case, time=None, member=None, pieces=None, target=None, reference=None, balance="qg"):
     """Invert ``pieces`` (default :func:`standard_pieces`) at one time and return
     ``(results, table, target)``: the balanced Datasets per piece, the attribution DataFrame
     at ``target`` = (lon, lat, pressure hPa) (default the storm centre at the lowest level
@@ -141,8 +141,9 @@ def analyse(case, time=None, member=None, pieces=None, target=None, reference=No
         levels = case.levels_hpa
         target = (lon, lat, float(levels[1] if levels.size > 1 else levels[0]))
     target, moved = above_ground_target(case, target, time, member)
-    results = case.inversion(pieces, time, member, reference)
+    results = case.inversion(pieces, time, member, reference, balance=balance)
     table = attribution(results, *target)
+    table.attrs["balance"] = balance
     ref_label = reference if isinstance(reference, str) else "climatology (dataset)"
     table.attrs["reference"] = ref_label
     table.attrs["notes"] = ([moved] if moved else []) + list(table.attrs.get("share_notes", []))

@@ -9,7 +9,7 @@ from workbench.inversion.solver import QGSolver, SeparableSolver, clear_solver_c
 __all__ = [
     "QGGrid", "apply_qg_operator", "assemble_operator", "QGSolver", "SeparableSolver", "get_solver",
     "clear_solver_cache", "balanced_fields", "invert_qgpv", "Piece", "invert_pieces", "attribution",
-    "piece_mask", "piece_forcing", "qg_omega", "piece_omega",
+    "piece_mask", "piece_forcing", "qg_omega", "piece_omega", "invert_nonlinear_pieces", "balance_quality",
 ]
 
 _LAZY = {
@@ -17,6 +17,7 @@ _LAZY = {
     "Piece": "pieces", "invert_pieces": "pieces", "attribution": "pieces", "piece_mask": "pieces",
     "piece_forcing": "pieces",
     "qg_omega": "omega", "piece_omega": "omega",
+    "invert_nonlinear_pieces": "nonlinear", "balance_quality": "nonlinear",
 }
 
 
