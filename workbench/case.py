@@ -31,13 +31,84 @@ ZONAL_MEAN_MIN_WIDTH_KM = 4000.0
 CENSUS_MAX_BYTES = 256e6
 
 
-class _Cache:
-    """A small thread-safe LRU cache of derived fields."""
+def _default_cache_bytes():
+    """The derived-field cache budget of a new Case: ``PVWB_CACHE_MB`` (MB) if set, else 1024 MB."""
+    import os
 
-    def __init__(self, maxsize=256):
+    text = os.environ.get("PVWB_CACHE_MB", "").strip()
+    if text:
+        try:
+            value = float(text)
+        except ValueError:
+            raise InputError(f"PVWB_CACHE_MB={text!r} is not a number; give the cache size in MB "
+                             "(e.g. 1024).") from None
+        if value < 0:
+            raise InputError(f"PVWB_CACHE_MB={text!r} must be 0 or more (MB).")
+        return int(value * 1e6)
+    return int(1024e6)
+
+
+#: Cache entries that belong to the case as a whole (reference state, its PV and sigma, the
+#: reference on an isentrope), kept whatever the budget: recomputing them means reading every time.
+_PINNED = ("ref", "refpv", "refisen", "sigma")
+
+
+def _nbytes(obj, seen=None) -> int:
+    """Bytes held in memory by a cached value: numpy data of arrays, xarray objects (variables
+    computed on demand count nothing) and containers of them; each buffer counted once."""
+    seen = set() if seen is None else seen
+    if isinstance(obj, np.ndarray):
+        base = obj
+        while isinstance(base.base, np.ndarray):
+            base = base.base
+        if id(base) in seen:
+            return 0
+        seen.add(id(base))
+        return int(base.nbytes)
+    if isinstance(obj, xr.DataArray):
+        obj = obj.to_dataset(name="_") if obj.name is None else obj._to_temp_dataset()
+    if isinstance(obj, xr.Dataset):
+        total = 0
+        for var in obj.variables.values():
+            data = var._data  # numpy when in memory; a lazy wrapper otherwise (not counted)
+            if isinstance(data, np.ndarray):
+                total += _nbytes(data, seen)
+            elif hasattr(data, "array") and isinstance(getattr(data, "array"), np.ndarray):
+                total += _nbytes(data.array, seen)  # index coordinates
+        return total
+    if isinstance(obj, dict):
+        return sum(_nbytes(v, seen) for v in obj.values())
+    if isinstance(obj, (list, tuple)):
+        return sum(_nbytes(v, seen) for v in obj)
+    return 0
+
+
+class _Cache:
+    """A thread-safe LRU cache of derived fields, bounded by bytes.
+
+    ``max_bytes`` (default :func:`_default_cache_bytes`: ``PVWB_CACHE_MB`` or 1024 MB) bounds
+    the memory of the per-time entries (fields, anomalies, inversions): when a new entry takes
+    the total over it, the least recently used entries are dropped (the newest is always kept,
+    so one time's work is never refused). Case-level entries (:data:`_PINNED`) are kept and not
+    counted. ``maxsize`` also bounds the number of entries.
+    """
+
+    def __init__(self, maxsize=256, max_bytes=None):
         self._d = OrderedDict()
+        self._size = {}
         self._lock = threading.RLock()
         self.maxsize = maxsize
+        self.max_bytes = _default_cache_bytes() if max_bytes is None else int(max_bytes)
+
+    @staticmethod
+    def _pinned(key):
+        return isinstance(key, tuple) and bool(key) and key[0] in _PINNED
+
+    @property
+    def nbytes(self) -> int:
+        """Bytes counted against ``max_bytes`` (the per-time entries)."""
+        with self._lock:
+            return sum(self._size.values())
 
     def get(self, key, make, store=True):
         with self._lock:
@@ -49,13 +120,26 @@ class _Cache:
             return value
         with self._lock:
             self._d[key] = value
-            while len(self._d) > self.maxsize:
-                self._d.popitem(last=False)
+            self._d.move_to_end(key)
+            if not self._pinned(key):
+                self._size[key] = _nbytes(value)
+            self._evict(keep=key)
         return value
+
+    def _evict(self, keep=None):
+        total = sum(self._size.values())
+        for k in list(self._d):
+            if total <= self.max_bytes and len(self._d) <= self.maxsize:
+                break
+            if k == keep or (self._pinned(k) and len(self._d) <= self.maxsize):
+                continue
+            del self._d[k]
+            total -= self._size.pop(k, 0)
 
     def clear(self):
         with self._lock:
             self._d.clear()
+            self._size.clear()
 
     def __len__(self):
         return len(self._d)
@@ -727,6 +811,21 @@ class Case:
 
     def clear_cache(self):
         self._cache.clear()
+
+    @property
+    def cache_max_bytes(self) -> int:
+        """Memory budget (bytes) of the per-time derived fields kept by this case (fields,
+        anomalies, inversions; least recently used dropped first). Default ``PVWB_CACHE_MB``
+        (MB) or 1024 MB; 0 keeps only the latest entry."""
+        return self._cache.max_bytes
+
+    @cache_max_bytes.setter
+    def cache_max_bytes(self, value):
+        if value is None or float(value) < 0:
+            raise InputError(f"cache_max_bytes must be 0 or more bytes, got {value!r}.")
+        with self._cache._lock:
+            self._cache.max_bytes = int(value)
+            self._cache._evict()
 
 
 def _ground_value(da, below):

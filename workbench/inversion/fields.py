@@ -18,15 +18,19 @@ periodic grid); the vertical derivative is taken in ln p the same way.
 """
 from __future__ import annotations
 
+import weakref
+
 import numpy as np
 import xarray as xr
+from xarray.backends import BackendArray
+from xarray.core import indexing
 
 from workbench.errors import GridError, UnitsError
 from workbench.inversion.operator import QGGrid, horizontal_laplacian
 from workbench.inversion.solver import get_solver
 from workbench.units import EARTH_RADIUS, G, KAPPA, P0, RD, coriolis
 
-__all__ = ["balanced_fields", "invert_qgpv", "grid_for", "spatial_dims", "central_f0", "hydrostatic_temperature"]
+__all__ = ["balanced_fields", "BalancedSource", "balanced_source", "invert_qgpv", "grid_for", "spatial_dims", "central_f0", "hydrostatic_temperature"]
 
 DIMS = ("pressure", "latitude", "longitude")
 
@@ -121,7 +125,111 @@ def hydrostatic_temperature(phi, pressure):
     return -np.gradient(np.asarray(phi, dtype=float), np.log(pressure), axis=-3, edge_order=2) / RD
 
 
-def balanced_fields(phi: xr.DataArray, f0, bottom_theta=None, top_theta=None, grid: QGGrid | None = None):
+class BalancedSource:
+    """phi' (..., nz, ny, nx, float64) and what its balanced fields need: computes any of them on
+    a range of levels in one pass (the fields of one piece share the phi' they come from).
+
+    The lazily computed Dataset variables of :func:`balanced_fields` and the point look-ups of
+    :func:`workbench.inversion.pieces.attribution` go through :meth:`levels`, so a map level or a
+    target costs a few levels of work, not whole 3-D fields, and the results keep only phi'.
+    """
+
+    def __init__(self, data, lat, lon, p, f0, grid, bottom_theta=None, top_theta=None):
+        self.data = data
+        self.shape = data.shape
+        self.lat, self.lon, self.p = lat, lon, p
+        self.f0 = float(f0)
+        self.grid = grid
+        self.rlat, self.rlon = np.deg2rad(lat), np.deg2rad(lon)
+        self.pi = (p / P0) ** KAPPA
+        flat = self.shape[:-3] + self.shape[-2:]
+        self.bottom_theta = None if bottom_theta is None else np.broadcast_to(
+            np.asarray(bottom_theta, dtype=float), flat)
+        self.top_theta = None if top_theta is None else np.broadcast_to(np.asarray(top_theta, dtype=float), flat)
+
+    @property
+    def nbytes(self):
+        return int(self.data.nbytes)
+
+    def levels(self, names, k0, k1, lead=()):
+        """dict name -> array (lead..., k1-k0, ny, nx) of the fields ``names`` on levels k0..k1-1,
+        for the leading index ``lead`` (a tuple of ints/slices over the leading dims)."""
+        nz = self.shape[-3]
+        lead = tuple(lead)
+        d = self.data[lead + (slice(k0, k1),)]
+        out = {}
+        a = EARTH_RADIUS
+        f0 = self.f0
+        for name in names:
+            if name == "geopotential_anomaly":
+                out[name] = d
+            elif name == "height_anomaly":
+                out[name] = d / G
+            elif name == "u":
+                out[name] = -_deriv(d, self.rlat, -2) / (f0 * a)
+            elif name == "v":
+                out[name] = _deriv(d, self.rlon, -1, periodic=self.grid.periodic) / (
+                    f0 * a * np.cos(self.rlat)[:, None])
+            elif name == "relative_vorticity":
+                out[name] = horizontal_laplacian(self.grid, d) / f0
+            elif name in ("temperature_anomaly", "theta_anomaly"):
+                if "temperature_anomaly" not in out:
+                    out["temperature_anomaly"] = self._temperature(k0, k1, lead, nz)
+                if name == "theta_anomaly":
+                    out[name] = out["temperature_anomaly"] / self.pi[k0:k1, None, None]
+            else:
+                raise KeyError(name)
+        return {n: out[n] for n in names}
+
+    def _temperature(self, k0, k1, lead, nz):
+        # the ln p derivative on a halo of levels: np.gradient gives the same value at a level
+        # from its neighbours whether the array holds all levels or a few around it
+        lo, hi = max(0, k0 - 1), min(nz, k1 + 1)
+        while hi - lo < min(3, nz):
+            lo, hi = max(0, lo - 1), min(nz, hi + 1)
+        temp = hydrostatic_temperature(self.data[lead + (slice(lo, hi),)], self.p[lo:hi])[..., k0 - lo:k1 - lo, :, :]
+        if self.bottom_theta is not None and k0 == 0:
+            temp[..., 0, :, :] = self.pi[0] * self.bottom_theta[lead]
+        if self.top_theta is not None and k1 == nz:
+            temp[..., -1, :, :] = self.pi[-1] * self.top_theta[lead]
+        return temp
+
+
+class _LazyField(BackendArray):
+    """One balanced field of a :class:`BalancedSource`, computed for the levels asked for."""
+
+    def __init__(self, source: BalancedSource, name: str):
+        self.source = source
+        self.name = name
+        self.shape = source.shape
+        self.dtype = np.dtype("float64")
+
+    def __getitem__(self, key):
+        return indexing.explicit_indexing_adapter(key, self.shape, indexing.IndexingSupport.BASIC, self._get)
+
+    def _get(self, key):
+        key = tuple(key) + (slice(None),) * (len(self.shape) - len(key))
+        lead, kp, rest = key[:-3], key[-3], key[-2:]
+        nz = self.shape[-3]
+        if isinstance(kp, (int, np.integer)):
+            k = int(kp) % nz
+            vals = self.source.levels([self.name], k, k + 1, lead)[self.name]
+            return vals[(Ellipsis, 0) + rest]
+        idx = np.arange(nz)[kp]
+        if idx.size == 0:
+            vals = self.source.levels([self.name], 0, 1, lead)[self.name][..., :0, :, :]
+            return vals[(Ellipsis, slice(None)) + rest]
+        k0, k1 = int(idx.min()), int(idx.max()) + 1
+        vals = self.source.levels([self.name], k0, k1, lead)[self.name]
+        return vals[(Ellipsis, idx - k0) + rest]
+
+
+FIELD_NAMES = ("geopotential_anomaly", "height_anomaly", "u", "v", "relative_vorticity",
+               "temperature_anomaly", "theta_anomaly")
+
+
+def balanced_fields(phi: xr.DataArray, f0, bottom_theta=None, top_theta=None, grid: QGGrid | None = None,
+                    lazy: bool = True):
     """Balanced fields of a geopotential anomaly phi' (m2 s-2).
 
     Parameters
@@ -137,6 +245,11 @@ def balanced_fields(phi: xr.DataArray, f0, bottom_theta=None, top_theta=None, gr
     grid : QGGrid, optional
         Reused for the Laplacian (otherwise built with a unit sigma, which the
         Laplacian does not use).
+    lazy : bool
+        True (default): only phi' is held; every other variable is computed from it when read,
+        for the levels read (``ds["u"].isel(pressure=k)`` works on one level, ``.values`` on
+        all), through :class:`BalancedSource`. Memory: one field instead of seven. False: all
+        fields computed now (in memory).
 
     Returns
     -------
@@ -153,29 +266,12 @@ def balanced_fields(phi: xr.DataArray, f0, bottom_theta=None, top_theta=None, gr
     p = np.asarray(phi["pressure"].values, dtype=float)
     if grid is None:
         grid = QGGrid(lat, lon, p, np.ones(p.size), f0)
-    rlat, rlon = np.deg2rad(lat), np.deg2rad(lon)
-    a = EARTH_RADIUS
-    dphi_dlat = _deriv(data, rlat, -2)
-    dphi_dlon = _deriv(data, rlon, -1, periodic=grid.periodic)
-    u = -dphi_dlat / (f0 * a)
-    v = dphi_dlon / (f0 * a * np.cos(rlat)[:, None])
-    zeta = horizontal_laplacian(grid, data) / f0
-    temp = hydrostatic_temperature(data, p)
-    pi = (p / P0) ** KAPPA
-    if bottom_theta is not None:
-        temp[..., 0, :, :] = pi[0] * np.asarray(bottom_theta, dtype=float)
-    if top_theta is not None:
-        temp[..., -1, :, :] = pi[-1] * np.asarray(top_theta, dtype=float)
-    theta = temp / pi[:, None, None]
-    values = dict(
-        geopotential_anomaly=data,
-        height_anomaly=data / G,
-        u=u,
-        v=v,
-        relative_vorticity=zeta,
-        temperature_anomaly=temp,
-        theta_anomaly=theta,
-    )
+    source = BalancedSource(data, lat, lon, p, f0, grid, bottom_theta, top_theta)
+    if lazy:
+        values = {k: (data if k == "geopotential_anomaly" else indexing.LazilyIndexedArray(_LazyField(source, k)))
+                  for k in FIELD_NAMES}
+    else:
+        values = source.levels(FIELD_NAMES, 0, p.size)
     ds = xr.Dataset(
         {k: (phi.dims, val, dict(_ATTRS[k])) for k, val in values.items()},
         coords=phi.coords,
@@ -185,7 +281,26 @@ def balanced_fields(phi: xr.DataArray, f0, bottom_theta=None, top_theta=None, gr
         balance="quasi-geostrophic, constant f0, spherical metric",
         caution="Diagnostic analysis of model or analysis data, not a forecast or warning.",
     )
+    _SOURCES[id(ds)] = source
     return ds
+
+
+#: the BalancedSource behind each Dataset made by balanced_fields (weakly: gone with the Dataset)
+_SOURCES: "weakref.WeakValueDictionary[int, BalancedSource]" = weakref.WeakValueDictionary()
+
+
+def balanced_source(ds) -> BalancedSource | None:
+    """The :class:`BalancedSource` of a Dataset returned by :func:`balanced_fields` (None for any
+    other Dataset, e.g. one made by arithmetic on results)."""
+    src = _SOURCES.get(id(ds))
+    if src is None or ds.get("geopotential_anomaly") is None:
+        return None
+    var = ds["geopotential_anomaly"].variable
+    try:
+        same = var._data is src.data  # the very Dataset balanced_fields made (not a copy or a slice)
+    except AttributeError:
+        same = False
+    return src if same and var.shape == src.shape else None
 
 
 def invert_qgpv(

@@ -289,13 +289,21 @@ def _boundary_mask(piece, theta):
     return m
 
 
+def _finite(a):
+    """``a`` as float64 with NaN -> 0: one copy at most (none when already float64 and finite)."""
+    a = np.asarray(a, dtype=float)
+    if np.isfinite(a).all():
+        return a
+    return np.nan_to_num(a)
+
+
 def _arrays(anomaly):
-    q = np.nan_to_num(spatial_dims(_var(anomaly, "qgpv_anomaly"), "qgpv_anomaly").values.astype(float))
+    q = np.nan_to_num(np.array(spatial_dims(_var(anomaly, "qgpv_anomaly"), "qgpv_anomaly").values, dtype=float),
+                      copy=False)
     bt = np.nan_to_num(_var(anomaly, "bottom_theta_anomaly").transpose("latitude", "longitude").values.astype(float))
     tt = np.nan_to_num(_var(anomaly, "top_theta_anomaly").transpose("latitude", "longitude").values.astype(float))
-    lat = np.nan_to_num(
-        spatial_dims(_var(anomaly, "geopotential_anomaly"), "geopotential_anomaly").values.astype(float)
-    )
+    # read only (the lateral piece's Dirichlet data): no copy unless it holds NaN
+    lat = _finite(spatial_dims(_var(anomaly, "geopotential_anomaly"), "geopotential_anomaly").values)
     if q.ndim != 3:
         raise InputError("anomaly dataset: expected one time and member (dims pressure, latitude, longitude).")
     return q, bt, tt, lat
@@ -393,6 +401,23 @@ def _claims(pieces, anomaly):
     return forcings, (claims.q, claims.bt, claims.tt, claims.lat)
 
 
+def _checked_claims(pieces, anomaly):
+    """The checked piece list's claim bookkeeping and the remainder's name."""
+    claims = Claims(anomaly)
+    rems = [p for p in pieces if p.kind == "remainder"]
+    if len(rems) > 1:
+        raise PieceError(f"piece {rems[1].name!r}: only one remainder piece is allowed; remove the others.")
+    remainder_name = rems[0].name if rems else "remainder"
+    if not rems and any(p.name == "remainder" for p in pieces):
+        raise PieceError("piece 'remainder': this name is kept for the remainder; rename the piece.")
+    names = set()
+    for pc in pieces:
+        if pc.name in names:
+            raise PieceError(f"piece {pc.name!r}: two pieces share this name; give each piece its own name.")
+        names.add(pc.name)
+    return claims, remainder_name
+
+
 def invert_pieces(anomaly: xr.Dataset, pieces) -> dict:
     """Invert every piece and the full forcing with one factorised solver.
 
@@ -415,28 +440,29 @@ def invert_pieces(anomaly: xr.Dataset, pieces) -> dict:
     qda = spatial_dims(_var(anomaly, "qgpv_anomaly"), "qgpv_anomaly")
     grid = grid_for(qda, sigma, f0)
     solver = get_solver(grid)
-    forcings, (q, bt, tt, lat) = _claims(plist, anomaly)
-    n = len(forcings) + 1
-    Q = np.zeros((n,) + q.shape)
-    B = np.zeros((n,) + bt.shape)
-    T = np.zeros((n,) + tt.shape)
-    L = np.zeros((n,) + q.shape)
-    for i, (_, f) in enumerate(forcings):
-        for arr, key in ((Q, "q"), (B, "bottom_theta"), (T, "top_theta"), (L, "lateral")):
-            if f[key] is not None:
-                arr[i] = f[key]
-    Q[-1], B[-1], T[-1], L[-1] = q, bt, tt, lat
-    phi = solver.solve(Q, B, T, L)
-    names = [name for name, _ in forcings] + ["total"]
+    claims, remainder_name = _checked_claims(plist, anomaly)
+    q, bt, tt, lat = claims.q, claims.bt, claims.tt, claims.lat
+    zero2 = np.zeros(bt.shape)
     kinds = {p.name: p.kind for p in plist}
     coords = {d: qda[d] for d in ("pressure", "latitude", "longitude")}
-    phi_da = xr.DataArray(phi, dims=("piece",) + qda.dims[-3:], coords=dict(coords, piece=names))
-    stacked = balanced_fields(phi_da, grid.f0, bottom_theta=B, top_theta=T, grid=grid)
     out = {}
-    for i, name in enumerate(names):
-        ds = stacked.isel(piece=i, drop=True)
-        ds.attrs = dict(stacked.attrs, piece=name, kind="total" if name == "total" else kinds.get(name, "remainder"))
+
+    def solve(name, f):
+        # one piece at a time: the solver's work space is a few fields, not a few per piece
+        b = zero2 if f["bottom_theta"] is None else f["bottom_theta"]
+        t = zero2 if f["top_theta"] is None else f["top_theta"]
+        phi = solver.solve(np.zeros(q.shape) if f["q"] is None else f["q"], b, t, f["lateral"])
+        f.clear()
+        phi_da = xr.DataArray(phi, dims=qda.dims[-3:], coords=coords)
+        ds = balanced_fields(phi_da, grid.f0, bottom_theta=b, top_theta=t, grid=grid)
+        ds.attrs.update(piece=name, kind="total" if name == "total" else kinds.get(name, "remainder"))
         out[name] = ds
+
+    for pc in plist:
+        if pc.kind != "remainder":  # the remainder is computed after all claims
+            solve(pc.name, claims.take(pc))
+    solve(remainder_name, claims.remainder())
+    solve("total", dict(q=q, bottom_theta=bt, top_theta=tt, lateral=lat))
     return out
 
 
@@ -477,14 +503,18 @@ def attribution(results: dict, lon: float, lat: float, pressure_hpa: float):
     ):
         if not (lo <= float(val) <= hi):
             raise InputError(f"attribution: target {name} {val} is outside the domain ({lo:g} to {hi:g}); pick a point inside.")
-    at = dict(longitude=float(lon), latitude=float(lat), pressure=float(pressure_hpa) * 100.0)
+    # indices and weights of the target, once; then each piece's fields on the two bracketing
+    # levels only (one pass over its phi'), read at the eight surrounding nodes
+    dims = ("pressure", "latitude", "longitude")
+    brackets = [_bracket(ref[d].values, v) for d, v in zip(dims, (float(pressure_hpa) * 100.0, float(lat),
+                                                                   float(lon)))]
     rows = {}
     for name, ds in results.items():
         if name == "total":
             continue
-        rows[name] = {v: float(ds[v].interp(at, method="linear")) for v in _ATTR_VARS}
+        rows[name] = _at_target(ds, brackets)
     summed = {v: float(sum(r[v] for r in rows.values())) for v in _ATTR_VARS}
-    full = {v: float(ref[v].interp(at, method="linear")) for v in _ATTR_VARS}
+    full = _at_target(ref, brackets)
     rows["sum of pieces"] = summed
     rows["full inversion"] = full
     df = pd.DataFrame.from_dict(rows, orient="index")
@@ -521,3 +551,40 @@ def attribution(results: dict, lon: float, lat: float, pressure_hpa: float):
         units=dict(height_anomaly="m", u="m s-1", v="m s-1", wind_speed="m s-1", relative_vorticity="s-1"),
     )
     return df
+
+
+def _bracket(coord, value):
+    """(i0, i1, w): the two nodes of ``coord`` (ascending or descending) around ``value`` and the
+    linear weight of ``i1`` (the nodes and weight of a sorted linear interpolation)."""
+    c = np.asarray(coord, dtype=float)
+    order = np.argsort(c, kind="stable")
+    cs = c[order]
+    if cs.size == 1:
+        return int(order[0]), int(order[0]), 0.0
+    hi = int(np.clip(np.searchsorted(cs, value, side="left"), 1, cs.size - 1))
+    w = (value - cs[hi - 1]) / (cs[hi] - cs[hi - 1])
+    return int(order[hi - 1]), int(order[hi]), float(w)
+
+
+def _at_target(ds, brackets):
+    """dict variable -> value at the target of :func:`attribution` (trilinear with ``brackets``)."""
+    from workbench.inversion.fields import balanced_source
+
+    (k0, k1, wk), (j0, j1, wj), (i0, i1, wi) = brackets
+    ka, kb = min(k0, k1), max(k0, k1)
+    src = balanced_source(ds)
+    if src is not None and src.data.ndim == 3:
+        block = src.levels(_ATTR_VARS, ka, kb + 1)
+    else:
+        block = {v: np.asarray(spatial_dims(ds[v], v).isel(pressure=slice(ka, kb + 1)).values, dtype=float)
+                 for v in _ATTR_VARS}
+    out = {}
+    for v in _ATTR_VARS:
+        b = block[v]
+        val = 0.0
+        for k, wz in ((k0, 1.0 - wk), (k1, wk)):
+            for j, wy in ((j0, 1.0 - wj), (j1, wj)):
+                for i, wx in ((i0, 1.0 - wi), (i1, wi)):
+                    val += wz * wy * wx * b[k - ka, j, i]
+        out[v] = float(val)
+    return out
