@@ -108,6 +108,13 @@ def detect_format(path) -> str:
     if head[:3] == b"CDF" or head[:8] == b"\x89HDF\r\n\x1a\n":
         return "netcdf"
     if head[:4] == b"GRIB":
+        with open(p, "rb") as fh:
+            fh.seek(max(0, size - 4))
+            tail = fh.read(4)
+        if tail != b"7777":  # every GRIB message ends with "7777" (WMO FM 92 GRIB, section 8)
+            raise FileFormatError(
+                f"GRIB file {str(p)!r} ends in the middle of a message (it does not end with the '7777' end "
+                "marker): it is truncated. Re-download or re-export it.")
         return "grib"
     raise FileFormatError(
         f"File {str(p)!r} is not netCDF, GRIB2 or Zarr (it starts with {head[:8]!r}). "
@@ -242,7 +249,7 @@ def read_dataset(path, *, chunks=None, **kw) -> xr.Dataset:
                     f"{str(path)!r} keeps its variables in netCDF groups ({listed}); open one with "
                     f"open_case(path, group='{next(iter(groups)).lstrip('/')}').")
         return ds
-    except FileFormatError:
+    except InputError:  # the package's own, already clear
         raise
     except Exception as exc:  # truncated or corrupt files end up here
         raise FileFormatError(
@@ -424,6 +431,11 @@ def _to_latlon(ds, *, variables, region, grid_step, winds):
         scale = {"km": 1000.0, "kilometer": 1000.0, "kilometre": 1000.0}
         xa = np.asarray(ds[xdim].values, float) * scale.get(str(ds[xdim].attrs.get("units", "m")).lower(), 1.0)
         ya = np.asarray(ds[ydim].values, float) * scale.get(str(ds[ydim].attrs.get("units", "m")).lower(), 1.0)
+        for name, a in ((xdim, xa), (ydim, ya)):
+            d = np.diff(a)
+            if a.size < 3 or not np.all(np.isfinite(a)) or np.abs(d - d.mean()).max() > 1e-3 * abs(d.mean()):
+                raise GridError(f"The projected grid's {name!r} coordinate is not evenly spaced (or has fewer than "
+                                "3 points); a model grid has one spacing. Check the coordinate values.")
         _, to_geo = grids._transformers(crs)
         X, Y = np.meshgrid(xa, ya)
         lon2d, lat2d = (np.asarray(a) for a in to_geo.transform(X, Y))
