@@ -38,6 +38,8 @@ commands:
   batch CASE                the same pieces over every time / member, locally or on Dask
   sample [-o PATH]          rebuild the invented sample storm
   bench [--json]            inversion benchmarks (solver vs FFT, spsolve, PyAMG)
+  explain CASE --time T     QG tendency attribution: which piece's wind moves which piece's PV
+  whatif CASE --piece NAME  QG what-if experiment (scale/remove/shift a piece), not a forecast
 
 global options (before the command):
   --debug                   show the full traceback of an error (also PVWB_DEBUG=1)
@@ -47,7 +49,7 @@ Run `pvwb <command> --help` for a command's options. CASE defaults to the bundle
 invented sample storm where a command accepts it."""
 
 COMMANDS = {"info": "analysis", "invert": "analysis", "brief": "brief", "serve": "app", "batch": "batch",
-            "sample": "sample", "bench": "bench"}
+            "sample": "sample", "bench": "bench", "explain": "tendency", "whatif": "whatif"}
 
 #: set by ``pvwb --quiet`` (or a command's own ``--quiet``): no progress bars
 QUIET = False

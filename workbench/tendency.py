@@ -329,7 +329,7 @@ class Explanation:
 
         ``row``/``col``: a piece name (or index, or list of them); None = all pieces (so
         ``map(row="upper trough")`` is the whole row, ``map()`` the total). ``level_hpa``: one
-        pressure level (nearest), else every level. NaN on the lateral boundary nodes."""
+        pressure level (nearest), else every level. Zero on the lateral boundary nodes (held)."""
         rows = self._select(row, "row")
         cols = self._select(col, "column")
         b = self.budget
