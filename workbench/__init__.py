@@ -8,7 +8,35 @@ plotting or widget libraries.
 
 __version__ = "0.1.0"
 
-from . import units  # noqa: F401  (registers PVU)
+
+
+def _import_units():
+    """Import :mod:`workbench.units` (MetPy's registry, PVU) without importing matplotlib.
+
+    MetPy's unit registry switches on pint's matplotlib support when it is built, which imports
+    matplotlib into every process (computation commands included). That one call is skipped while
+    MetPy is first imported here; nothing in the package draws pint quantities (views draw plain
+    arrays). Call ``workbench.units.units.setup_matplotlib()`` to switch it on when needed.
+    """
+    import sys
+
+    if "metpy.units" in sys.modules:
+        from . import units  # noqa: F401
+        return
+    import pint
+
+    cls = pint.UnitRegistry
+    real = cls.__dict__.get("setup_matplotlib")
+    if real is not None:
+        cls.setup_matplotlib = lambda self, enable=True: None
+    try:
+        from . import units  # noqa: F401  (registers PVU)
+    finally:
+        if real is not None:
+            cls.setup_matplotlib = real
+
+
+_import_units()
 from .case import Case
 from .errors import (AccessError, DomainError, FileFormatError, GridError, InputError,  # noqa: F401
                      MissingVariableError, PieceError, SessionError, UnitsError, WorkbenchError)
