@@ -118,14 +118,15 @@ def _grib_grid(h, kind, crs, x, y, lat2d, lon2d, grid_relative):
 
 
 def write_grib(path, kind="lambert", *, times=1, grid_relative=True, below_ground=None, extra_levels=True,
-               nx=48, ny=40, dx=50000.0, steps=False, start=4):
+               nx=48, ny=40, dx=50000.0, steps=False, start=4, pa_levels=()):
     """Write a pressure-level GRIB2 file on a projected grid (one message per field and level).
 
     ``below_ground``: boolean (ny, nx) mask of a mountain; levels with pressure above the
     mountain's surface pressure are written as missing (bitmap). ``extra_levels`` adds surface
     pressure and orography (surface), mean-sea-level pressure, tropopause and max-wind fields,
     as forecast centres put them in the same file. ``steps``: times as forecast steps of one
-    run instead of analysis times. Returns the grid (crs, x, y, lat2d, lon2d) and the source
+    run instead of analysis times. ``pa_levels``: these levels (hPa) are written as
+    ``isobaricInPa`` levels in Pa, as some centres write the upper levels. Returns the grid (crs, x, y, lat2d, lon2d) and the source
     Dataset (earth-relative winds).
     """
     import eccodes as ec
@@ -179,7 +180,10 @@ def write_grib(path, kind="lambert", *, times=1, grid_relative=True, below_groun
             for k, lev in enumerate(LEVELS):
                 mask = None if sp is None else (lev * 100.0 > sp)
                 for short, arr in fields.items():
-                    message(short, "isobaricInhPa", lev, arr[ti, k], ti, mask)
+                    if lev in pa_levels:
+                        message(short, "isobaricInPa", int(lev * 100), arr[ti, k], ti, mask)
+                    else:
+                        message(short, "isobaricInhPa", lev, arr[ti, k], ti, mask)
             if extra_levels:
                 mslp = atm["mslp"].values[ti]
                 message("prmsl", "meanSea", None, mslp, ti)

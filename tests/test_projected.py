@@ -80,6 +80,16 @@ def test_grib_below_ground_bitmap_is_missing(tmp_path):
     assert float(sp.min()) == pytest.approx(64000.0, abs=50.0)
 
 
+def test_grib_levels_in_pa_join_the_hpa_levels(tmp_path, sample):
+    """Upper levels written as isobaricInPa (a separate hypercube for cfgrib) join the hPa ones."""
+    path = tmp_path / "pa.grib2"
+    ff.write_grib(path, "lambert", pa_levels=(150, 100), extra_levels=False)
+    case = wb.open_case(path)
+    np.testing.assert_allclose(case.levels_hpa, ff.LEVELS)
+    err = _compare_with_sample(case, sample)
+    assert err["temperature"] < 0.5
+
+
 def test_grib_forecast_steps_become_valid_times(tmp_path):
     path = tmp_path / "steps.grib2"
     _, atm = ff.write_grib(path, "lambert", times=3, steps=True, extra_levels=False)

@@ -195,10 +195,16 @@ def _open_grib(path, **kw):
         raise MissingVariableError(
             f"{str(path)!r} holds no fields on isobaric levels (level types found: {', '.join(found) or 'none'}). "
             "PV needs temperature, winds and geopotential on pressure levels.")
-    names = [c for c in _GRIB_PRESSURE_LEVELS if c in pressure[0].coords]
-    pressure = [p.rename({[c for c in _GRIB_PRESSURE_LEVELS if c in p.coords][0]: names[0]}) for p in pressure]
-    if pressure[0][names[0]].attrs.get("units") is None and names[0] == "isobaricInPa":
-        pressure[0][names[0]].attrs["units"] = "Pa"
+    # levels in Pa (centres write the levels under 1 hPa, or all of them, that way) join the
+    # hPa ones in hPa
+    def in_hpa(cube):
+        if "isobaricInPa" in cube.coords:
+            vals = np.asarray(cube["isobaricInPa"].values, float) / 100.0
+            cube = cube.assign_coords(isobaricInPa=vals).rename(isobaricInPa="isobaricInhPa")
+        cube["isobaricInhPa"].attrs = dict(units="hPa", standard_name="air_pressure")
+        return cube
+
+    pressure = [in_hpa(p) for p in pressure]
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         ds = xr.merge(pressure, compat="override", join="outer") if len(pressure) > 1 else pressure[0]
