@@ -118,13 +118,14 @@ def _grib_grid(h, kind, crs, x, y, lat2d, lon2d, grid_relative):
 
 
 def write_grib(path, kind="lambert", *, times=1, grid_relative=True, below_ground=None, extra_levels=True,
-               nx=48, ny=40, dx=50000.0, steps=False, start=4, pa_levels=()):
+               nx=48, ny=40, dx=50000.0, steps=False, start=4, pa_levels=(), members=0):
     """Write a pressure-level GRIB2 file on a projected grid (one message per field and level).
 
     ``below_ground``: boolean (ny, nx) mask of a mountain; levels with pressure above the
     mountain's surface pressure are written as missing (bitmap). ``extra_levels`` adds surface
     pressure and orography (surface), mean-sea-level pressure, tropopause and max-wind fields,
-    as forecast centres put them in the same file. ``steps``: times as forecast steps of one
+    as forecast centres put them in the same file. ``members``: an ensemble of that many
+    members (product template 4.1), member m's temperature warmer by 0.1 m K. ``steps``: times as forecast steps of one
     run instead of analysis times. ``pa_levels``: these levels (hPa) are written as
     ``isobaricInPa`` levels in Pa, as some centres write the upper levels. Returns the grid (crs, x, y, lat2d, lon2d) and the source
     Dataset (earth-relative winds).
@@ -144,7 +145,7 @@ def write_grib(path, kind="lambert", *, times=1, grid_relative=True, below_groun
                   r=atm["relative_humidity"].values)
     t0 = np.datetime64(str(atm["time"].values[0])[:19])
     with open(path, "wb") as fh:
-        def message(short, level_type, level, values, ti, bitmap=None):
+        def message(short, level_type, level, values, ti, bitmap=None, member=None):
             h = ec.codes_grib_new_from_samples("GRIB2")
             ec.codes_set(h, "centre", 255)  # no originating centre (WMO common code table C-11: missing)
             _grib_grid(h, kind, crs, x, y, lat2d, lon2d, grid_relative and short in ("u", "v"))
@@ -157,7 +158,11 @@ def write_grib(path, kind="lambert", *, times=1, grid_relative=True, below_groun
             d = str(ref)
             ec.codes_set(h, "dataDate", int(d[:10].replace("-", "")))
             ec.codes_set(h, "dataTime", int(d[11:13]) * 100)
-            ec.codes_set(h, "productDefinitionTemplateNumber", 0)
+            ec.codes_set(h, "productDefinitionTemplateNumber", 0 if member is None else 1)
+            if member is not None:
+                ec.codes_set(h, "typeOfEnsembleForecast", 3)
+                ec.codes_set(h, "numberOfForecastsInEnsemble", members)
+                ec.codes_set(h, "perturbationNumber", member)
             ec.codes_set(h, "typeOfGeneratingProcess", 2 if step else 0)
             ec.codes_set(h, "stepUnits", 1)
             ec.codes_set(h, "forecastTime", step)
@@ -180,7 +185,11 @@ def write_grib(path, kind="lambert", *, times=1, grid_relative=True, below_groun
             for k, lev in enumerate(LEVELS):
                 mask = None if sp is None else (lev * 100.0 > sp)
                 for short, arr in fields.items():
-                    if lev in pa_levels:
+                    if members:
+                        for m in range(members):
+                            vals = arr[ti, k] + (0.1 * m if short == "t" else 0.0)
+                            message(short, "isobaricInhPa", lev, vals, ti, mask, member=m)
+                    elif lev in pa_levels:
                         message(short, "isobaricInPa", int(lev * 100), arr[ti, k], ti, mask)
                     else:
                         message(short, "isobaricInhPa", lev, arr[ti, k], ti, mask)

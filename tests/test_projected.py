@@ -90,6 +90,17 @@ def test_grib_levels_in_pa_join_the_hpa_levels(tmp_path, sample):
     assert err["temperature"] < 0.5
 
 
+def test_grib_ensemble_members(tmp_path):
+    """An ensemble in one GRIB2 file (perturbationNumber) becomes the member dimension."""
+    path = tmp_path / "ens.grib2"
+    ff.write_grib(path, "lambert", members=3, extra_levels=False)
+    case = wb.open_case(path)
+    assert case.members is not None and len(case.members) == 3
+    t0 = case.data["temperature"].isel(time=0, member=0)
+    t2 = case.data["temperature"].isel(time=0, member=2)
+    assert float((t2 - t0).mean()) == pytest.approx(0.2, abs=0.02)
+
+
 def test_grib_forecast_steps_become_valid_times(tmp_path):
     path = tmp_path / "steps.grib2"
     _, atm = ff.write_grib(path, "lambert", times=3, steps=True, extra_levels=False)
