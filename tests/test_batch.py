@@ -45,3 +45,46 @@ def test_batch_cli_writes_table(small_case_path, tmp_path, capsys):
     # refuses to overwrite without --overwrite, and says so in one line
     assert main(["batch", str(small_case_path), "-o", str(out)]) == 2
     assert "already exists" in capsys.readouterr().err
+
+
+def test_batch_store_is_resumable(small_case_path, tmp_path, monkeypatch):
+    import zarr
+
+    import workbench.batch as batch
+
+    store = tmp_path / "run.zarr"
+    plain = run_batch(small_case_path)
+    first = run_batch(small_case_path, store=store)
+    pd.testing.assert_frame_equal(first, plain, rtol=1e-12)
+    g = zarr.open_group(str(store), mode="r+")
+    assert g["done"][...].tolist() == [[1], [1]]
+    g["done"][1, 0] = 0  # as if the run had stopped before the second time
+    calls = []
+    real = batch._one
+    monkeypatch.setattr(batch, "_one", lambda path, ti, *a: calls.append(ti) or real(path, ti, *a))
+    again = run_batch(small_case_path, store=store)
+    assert calls == [1]  # only the unfinished time ran
+    pd.testing.assert_frame_equal(again, plain, rtol=1e-12)
+    with pytest.raises(wb.InputError, match="other settings"):
+        run_batch(small_case_path, store=store, reference="area_mean")
+
+
+def test_batch_worker_warnings_come_back_once(small_case_path, recwarn):
+    # a warning raised inside every task is re-issued once on the client (the CLI's note line)
+    import warnings
+
+    from workbench import analysis
+
+    orig = analysis.analyse
+
+    def noisy(*a, **k):
+        warnings.warn("invented test warning from a task")
+        return orig(*a, **k)
+
+    analysis.analyse = noisy
+    try:
+        run_batch(small_case_path)
+    finally:
+        analysis.analyse = orig
+    msgs = [str(w.message) for w in recwarn.list if "invented test warning" in str(w.message)]
+    assert msgs == ["invented test warning from a task"]

@@ -1,93 +1,216 @@
 """Batch: the same pieces over every time and ensemble member, serially or on a Dask cluster.
 
-Each task opens the case from its path (workers share no memory with the client), takes the
-reference state computed once on the client, runs :func:`workbench.analysis.analyse` for one
-(time, member) and returns its attribution table. The tables are joined into one DataFrame
-with ``time`` and ``member`` columns. Computation only.
+What each task needs is sent once: the case is opened once per worker process (kept by path and
+options, :func:`_worker_case`), the reference state is computed once (serially on the client, or
+as one task on the cluster whose result Dask keeps and hands to every task) and put in that
+case's cache, so no task re-reads every time or re-interpolates a climatology. Tasks are the
+(time, member) pairs; each runs :func:`workbench.analysis.analyse` and, with ``store=``, writes
+its attribution table into its own region of a Zarr store (``done`` flag last), so a rerun skips
+finished work. Warnings raised in a task come back with its result and are re-issued on the
+client once each (the CLI shows them as one-line notes). Computation only.
 """
 from __future__ import annotations
 
-import argparse
+import json
+import threading
+import warnings
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from .errors import InputError
 
-__all__ = ["run_batch", "main"]
+__all__ = ["run_batch", "main", "COLUMNS"]
+
+#: the attribution columns kept per piece row
+COLUMNS = ("height_anomaly", "u", "v", "wind_speed", "relative_vorticity", "height_share_pct",
+           "vorticity_share_pct")
+
+_CASES: dict = {}
+_CASES_LOCK = threading.Lock()
 
 
-def _one(path, ti, mi, pieces, target, reference, options):
+def _worker_case(path, options, ref_name, ref):
+    """The case at ``path`` opened once per process (per options), with the shared reference in
+    its cache under ``ref_name``."""
     import workbench as wb
-    from workbench.analysis import analyse
 
-    case = wb.open_case(path, **options)
-    _, table, tgt = analyse(case, ti, mi, pieces, target, reference)
+    key = (path, json.dumps(options, sort_keys=True, default=str))
+    with _CASES_LOCK:
+        case = _CASES.get(key)
+        if case is None:
+            case = wb.open_case(path, **options)
+            _CASES.clear()  # one case per worker at a time
+            _CASES[key] = case
+    if ref is not None:
+        case._cache.get(("ref", ref_name), lambda: ref)  # case-level entry, kept
+    return case
+
+
+def _reference(path, options, reference):
+    """(name, Dataset): the reference state on the case grid, computed once."""
+    case = _worker_case(path, options, None, None)
+    return reference, case.reference(reference)
+
+
+def _one(path, ti, mi, pieces, target, ref, options, store=None):
+    from workbench.analysis import analyse
+    from workbench.inversion.pieces import Piece
+
+    ref_name, ref_ds = ref
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        case = _worker_case(path, options, ref_name, ref_ds)
+        plist = None if pieces is None else [Piece.from_dict(p) for p in pieces]
+        _, table, tgt = analyse(case, ti, mi, plist, target, ref_name)
+    notes = list(dict.fromkeys(str(w.message) for w in caught))
+    if store is not None:
+        import zarr
+
+        g = zarr.open_group(store, mode="r+")
+        rows = g.attrs["rows"]
+        g["table"][ti, 0 if mi is None else mi] = table.reindex(rows)[list(COLUMNS)].to_numpy(dtype=float)
+        g["target"][ti, 0 if mi is None else mi] = np.asarray(tgt, dtype=float)
+        g["done"][ti, 0 if mi is None else mi] = 1
     table = table.reset_index()
     table.insert(0, "member", "" if mi is None else str(case.members[mi]))
     table.insert(0, "time", str(case.times[ti])[:19])
     table["target_lon"], table["target_lat"], table["target_hpa"] = tgt
-    return table
+    return table, notes
+
+
+def _rows(pieces):
+    names = [p["name"] for p in pieces if p.get("kind") != "remainder"]
+    rem = next((p["name"] for p in pieces if p.get("kind") == "remainder"), "remainder")
+    return names + [rem, "sum of pieces", "full inversion"]
+
+
+def _open_store(store, case, times_all, mems_all, pieces, reference, path):
+    """The Zarr store of a run (created, or reopened when its settings match)."""
+    import zarr
+
+    settings = dict(source=str(path), checksum=case.checksum or "", reference=str(reference),
+                    pieces=json.dumps(pieces, sort_keys=True, default=str),
+                    times=[str(t)[:19] for t in case.times],
+                    members=[] if case.members is None else [str(m) for m in case.members])
+    rows = _rows(pieces)
+    shape = (len(times_all), len(mems_all))
+    if Path(store).exists():
+        g = zarr.open_group(store, mode="r+")
+        old = {k: g.attrs.get(k) for k in settings}
+        if old != settings:
+            diff = ", ".join(k for k in settings if old.get(k) != settings[k])
+            raise InputError(f"{store}: this store holds a run with other settings ({diff}); give a new "
+                             "store or remove it to start again.")
+        return g
+    g = zarr.open_group(store, mode="w")
+    g.attrs.update(settings, rows=rows, columns=list(COLUMNS))
+    g.create_array("table", shape=shape + (len(rows), len(COLUMNS)), dtype="float64",
+                   chunks=(1, 1, len(rows), len(COLUMNS)), fill_value=np.nan)
+    g.create_array("target", shape=shape + (3,), dtype="float64", chunks=(1, 1, 3), fill_value=np.nan)
+    g.create_array("done", shape=shape, dtype="uint8", chunks=(1, 1), fill_value=0)
+    return g
+
+
+def _from_store(g, case, jobs):
+    rows, cols = g.attrs["rows"], g.attrs["columns"]
+    table, target = g["table"][...], g["target"][...]
+    frames = []
+    for ti, mi in jobs:
+        m = 0 if mi is None else mi
+        df = pd.DataFrame(table[ti, m], index=pd.Index(rows, name="piece"), columns=cols).reset_index()
+        df.insert(0, "member", "" if mi is None else str(case.members[mi]))
+        df.insert(0, "time", str(case.times[ti])[:19])
+        df["target_lon"], df["target_lat"], df["target_hpa"] = (float(x) for x in target[ti, m])
+        frames.append(df)
+    return frames
 
 
 def run_batch(path, *, pieces=None, times=None, members=None, target=None, reference=None,
-              client=None, options=None, progress=False) -> pd.DataFrame:
+              client=None, options=None, progress=False, store=None) -> pd.DataFrame:
     """Attribution tables for every (time, member) of the case at ``path``.
 
     Parameters
     ----------
-    pieces : list of Piece or dicts (default: :func:`workbench.analysis.standard_pieces`)
+    pieces : list of Piece or dicts (default: :func:`workbench.analysis.standard_pieces` for the
+        case's hemisphere and humidity)
     times, members : indices to run (default: all)
     target : (lon, lat, hPa) or None for each time's storm centre
-    reference : as for :meth:`Case.reference` (None: the case's default); computed once here and
-        shipped to the workers
+    reference : as for :meth:`Case.reference` (None: the case's default); computed once (on the
+        cluster when there is a client) and shared by every task
     client : a ``dask.distributed.Client`` (the run is spread over its workers) or None (serial)
     options : keywords of :func:`workbench.open_case` (e.g. ``region``, ``times``), used by every task
     progress : True for a tqdm bar on stderr (shown once the run has lasted about two seconds)
+    store : path of a Zarr store: each (time, member) writes its region there; a rerun with the
+        same settings skips the finished ones (resumable)
     """
-    import workbench as wb
+    from .analysis import cyclonic_sign, standard_pieces
 
     options = dict(options or {})
     path = str(Path(path))
-    case = wb.open_case(path, **options)
+    case = _worker_case(path, options, None, None)
     times = list(range(case.times.size)) if times is None else [case.time_index(t) for t in times]
     if case.members is None:
-        mems = [None]
+        mems_all, mems = [None], [None]
     else:
-        mems = list(range(case.members.size)) if members is None else [case.member_index(m) for m in members]
+        mems_all = list(range(case.members.size))
+        mems = mems_all if members is None else [case.member_index(m) for m in members]
     if not times:
         raise InputError("run_batch: no times selected.")
     if reference is None or isinstance(reference, str):
         reference = case.resolve_reference(reference)
-    ref = case.reference(reference) if isinstance(reference, str) else reference
-    pieces = None if pieces is None else [p.to_dict() if hasattr(p, "to_dict") else dict(p) for p in pieces]
+    if not isinstance(reference, str):
+        raise InputError("run_batch: give the reference as a name or the path of a climatology file.")
+    if pieces is None:
+        moist = "relative_humidity" in case.data or "specific_humidity" in case.data
+        pieces = standard_pieces(moist=moist, hemisphere=cyclonic_sign(case))
+    pieces = [p.to_dict() if hasattr(p, "to_dict") else dict(p) for p in pieces]
     jobs = [(ti, mi) for ti in times for mi in mems]
+    g = None
+    if store is not None:
+        store = str(store)
+        g = _open_store(store, case, range(case.times.size), mems_all, pieces, reference, path)
+        done = g["done"][...]
+        todo = [(ti, mi) for ti, mi in jobs if not done[ti, 0 if mi is None else mi]]
+    else:
+        todo = jobs
     from .cli import progress as _bar
 
     bar = _bar(total=len(jobs), desc="batch", unit="task", enabled=bool(progress))
+    bar.update(len(jobs) - len(todo))
+    results = {}
     try:
         if client is None:
-            tables = []
-            for ti, mi in jobs:
-                tables.append(_one(path, ti, mi, pieces, target, ref, options))
+            ref = (reference, case.reference(reference)) if todo else (reference, None)
+            for ti, mi in todo:
+                results[(ti, mi)] = _one(path, ti, mi, pieces, target, ref, options, store)
                 bar.update(1)
-        else:
+        elif todo:
             import time
 
-            ref_future = client.scatter(ref, broadcast=True)
-            futures = [client.submit(_one, path, ti, mi, pieces, target, ref_future, options, pure=False)
-                       for ti, mi in jobs]
+            ref_future = client.submit(_reference, path, options, reference, pure=False)
+            futures = [client.submit(_one, path, ti, mi, pieces, target, ref_future, options, store, pure=False)
+                       for ti, mi in todo]
+            start = bar.n
             while True:  # polls the futures' state (no extra tasks left behind by an interrupt)
-                done = sum(f.done() for f in futures)
-                bar.update(done - bar.n)
-                if done == len(futures) or any(f.status == "error" for f in futures):
+                done_n = sum(f.done() for f in futures)
+                bar.update(start + done_n - bar.n)
+                if done_n == len(futures) or any(f.status == "error" for f in futures):
                     break
                 time.sleep(0.2)
-            tables = client.gather(futures)
+            for key, res in zip(todo, client.gather(futures)):
+                results[key] = res
     finally:
         bar.close()
+    for note in dict.fromkeys(n for _, notes in results.values() for n in notes):
+        warnings.warn(note, stacklevel=2)
+    if g is not None:
+        tables = _from_store(g, case, jobs)
+    else:
+        tables = [results[j][0] for j in jobs]
     out = pd.concat(tables, ignore_index=True)
-    out.attrs.update(source=path, reference=str(reference) if isinstance(reference, str) else "dataset")
+    out.attrs.update(source=path, reference=str(reference))
     return out
 
 
@@ -129,7 +252,7 @@ def _scheduler_address(text):
 def main(argv=None):
     """``pvwb batch [CASE] [--region W,E,S,N] [--times SPEC] [--pieces FILE] [--target LON,LAT,HPA]
     [--reference R] [--scheduler ADDRESS [--connect-timeout S] | --local-cluster N] [-o CSV]
-    [--overwrite] [--quiet]``: arguments checked first, one-line errors, a progress bar."""
+    [--overwrite] [--store ZARR] [--quiet]``: arguments checked first, one-line errors, a progress bar."""
     from . import cli
     from .analysis import default_case_path
 
@@ -148,6 +271,8 @@ def main(argv=None):
     parser.add_argument("--connect-timeout", type=cli.positive_number("--connect-timeout"), default=5.0,
                         metavar="S", help="seconds to wait for --scheduler (default 5)")
     parser.add_argument("-o", "--output", help="write the joined table as CSV")
+    parser.add_argument("--store", metavar="ZARR", help="write each time/member into this Zarr store "
+                        "as it finishes; a rerun with the same settings skips the finished ones")
     parser.add_argument("--overwrite", action="store_true")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
     args = parser.parse_args(argv)
@@ -178,7 +303,8 @@ def main(argv=None):
         print(f"Dask: {client}")
     try:
         table = run_batch(path, pieces=pieces, target=target, reference=args.reference,
-                          client=client, options=options, progress=not args.quiet and cli.progress_enabled())
+                          client=client, options=options, progress=not args.quiet and cli.progress_enabled(),
+                          store=args.store)
     finally:
         if client is not None:
             client.close()
