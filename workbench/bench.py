@@ -194,7 +194,7 @@ def _table(records):
     return "\n".join(lines)
 
 
-def run(json_output=False, grids=None, references=True, repeat=9, stream=None):
+def run(json_output=False, grids=None, references=True, repeat=9, stream=None, tendency=False):
     """Run the benchmarks; print a table (or one JSON list) and return the list of records.
 
     ``grids``: names from :data:`GRIDS` (default all); ``references``: also time spsolve and
@@ -212,6 +212,10 @@ def run(json_output=False, grids=None, references=True, repeat=9, stream=None):
             raise InputError(f"bench: unknown grid {name!r}; choose from {', '.join(GRIDS)}.")
         records += bench_grid(name, GRIDS[name], repeat=repeat, with_references=references and name == "1deg",
                               log=log)
+    if tendency:  # tendency attribution and what-if records (workbench.whatif.bench_records)
+        from workbench.whatif import bench_records
+
+        records += bench_records(log=log)
     if json_output:
         print(json.dumps(records), file=stream)
     else:
@@ -230,8 +234,10 @@ def main(argv=None):
     ap.add_argument("--no-references", action="store_true", help="skip spsolve and PyAMG (the slow part)")
     ap.add_argument("--repeat", type=count(1, 1000, "--repeat"), default=9,
                     help="repeats for the medians, 1..1000 (default 9)")
+    ap.add_argument("--tendency", action="store_true", help="also time the tendency attribution and a 36 h what-if")
     args = ap.parse_args(argv)
-    run(json_output=args.json, grids=args.grid, references=not args.no_references, repeat=args.repeat)
+    run(json_output=args.json, grids=args.grid, references=not args.no_references, repeat=args.repeat,
+        tendency=args.tendency)
     return 0
 
 

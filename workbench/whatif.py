@@ -590,3 +590,86 @@ def main(argv=None) -> int:
         res.to_netcdf(args.output, overwrite=args.overwrite)
         print(f"wrote {args.output}")
     return 0
+
+
+# --------------------------------------------------------------------------- benchmarks
+
+
+def bench_records(large=False, hours=36.0, log=None):
+    """Time and peak memory (tracemalloc) of the tendency attribution (standard pieces) and of a
+    ``hours`` what-if (control + experiment) on the sample case; with ``large`` also on an
+    invented 0.5 degree grid of 26 x 121 x 201 points (attribution of 7 pieces + reference on
+    random fields; the what-if model timed over 1 h of steps and scaled to ``hours``, two runs).
+    Records follow ``pvwb bench --json``: grid, shape, method, median_s, peak_mem_mb, notes."""
+    import time
+    import tracemalloc
+
+    from .analysis import default_case_path
+    from .io import open_case
+    from .tendency import Budget, explain, target_weights, tendency_matrix
+
+    records = []
+
+    def measure(fn, peak_fn=None):
+        """Wall time of fn() untraced, then tracemalloc peak of peak_fn() (default fn) (MB)."""
+        t = time.perf_counter()
+        out = fn()
+        el = time.perf_counter() - t
+        tracemalloc.start()
+        (peak_fn or fn)()
+        peak = tracemalloc.get_traced_memory()[1] / 2 ** 20
+        tracemalloc.stop()
+        return out, el, peak
+
+    def rec(grid, shape, method, seconds, peak, notes=""):
+        r = dict(grid=grid, shape=list(shape), method=method, median_s=seconds, ratio_to_fft=float("nan"),
+                 max_rel_error=None, peak_mem_mb=peak, mem_ratio=peak / (np.prod(shape) * 8 / 2 ** 20), notes=notes)
+        records.append(r)
+        if log:
+            log(r)
+
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message=r"latitude: \|f\| varies")
+        case = open_case(default_case_path())
+        shape = (case.levels_hpa.size, case.data.sizes["latitude"], case.data.sizes["longitude"])
+        deepest = int(np.argmin(case.data["mslp"].min(("latitude", "longitude")).values))
+
+        def fresh():
+            case.clear_cache()
+            return explain(case, deepest)
+
+        ex, el, peak = measure(fresh)
+        rec("sample", shape, "explain", el, peak, f"{len(ex.budget.names)} pieces incl. reference, inversion included")
+        _, el2, peak2 = measure(lambda: explain(case, deepest))
+        rec("sample", shape, "explain_cached", el2, peak2, "inversion from the case cache")
+        _, el, peak = measure(lambda: run_whatif(case, "upper trough", 0.5, hours=hours),
+                              lambda: run_whatif(case, "upper trough", 0.5, hours=6.0))
+        rec("sample", shape, f"whatif_{hours:g}h", el, peak, "control + experiment, dry; peak of a 6 h run")
+        if large:
+            from .bench import make_grid
+
+            grid = make_grid((26, 121, 201))
+            rng = np.random.default_rng(1)
+            nz, ny, nx = grid.shape
+            n = 8
+            geom = Geometry.of_grid(grid)
+            psi = rng.standard_normal((n, nz, ny, nx)) * 1e6
+            pv = rng.standard_normal((n, nz + 2, ny, nx)) * 1e-5
+            budget = Budget(names=[f"p{i}" for i in range(n)], psi=psi, pv=pv, grid=grid, geom=geom)
+            w = target_weights(grid.lat, grid.lon, grid.pressure, (-10.0, 55.0, 950.0))
+            _, el, peak = measure(lambda: tendency_matrix(budget, w))
+            rec("0.5deg", grid.shape, "tendency_matrix", el, peak, "8 x 8 entries + total, invented fields")
+            del psi, pv, budget
+            width = np.deg2rad(8.0)  # an invented jet: u = U sech^2((lat - 50 N) / 8 deg)
+            lat = np.tanh(np.deg2rad(grid.lat - 50.0) / width) * width
+            phibar = (-grid.f0 * EARTH_RADIUS * 30.0 * np.linspace(0.2, 1.0, nz)[:, None] * lat[None, :])[:, :, None]
+            xbar = np.zeros((nz + 2, ny, 1))
+            model = QGModel(grid, phibar, xbar, step_minutes=7.5)
+            x = np.zeros((nz + 2, ny, nx))
+            x[:nz] = 1e-5 * np.exp(-((np.arange(ny)[:, None] - ny / 2) ** 2 + (np.arange(nx)[None, :] - nx / 2) ** 2)
+                                   / 200.0)[None]
+            _, el, peak = measure(lambda: model.run(x, 1.0, output_hours=1.0),
+                                  lambda: model.run(x, 0.25, output_hours=0.25))
+            rec("0.5deg", grid.shape, f"whatif_{hours:g}h_est", el * hours * 2, peak,
+                f"1 h of 7.5 min steps ({el:.2f} s) x {hours:g} x 2 runs")
+    return records
