@@ -56,7 +56,6 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.fft as sfft
 import xarray as xr
-from scipy.sparse.linalg import LinearOperator, gmres
 
 from workbench.errors import DomainError, InputError, PieceError
 from workbench.inversion.fields import _ATTRS, central_f0, hydrostatic_temperature, spatial_dims
@@ -310,6 +309,102 @@ def _jvp(grid, d, eta, clipped, dPhi, dpsi, dtb, dtt):
     return r1, r2
 
 
+class _Jacobian:
+    """The tangent-linear operator of :func:`_jvp` at one state, with its coefficients
+    precomputed: every product is a fixed set of shifted multiply-adds on the increments
+    (vertical three-point weights, horizontal coefficients folded with the metric factors)
+    instead of re-deriving all terms of the state.  Increments are zero on the lateral nodes
+    and the boundary theta is not perturbed (the Newton and piece solves)."""
+
+    def __init__(self, grid, d, eta, clipped):
+        g = self.g = grid
+        a = g.a
+        C = g.C[:, None, None]
+        D = np.gradient(np.eye(g.nz), g.pi, axis=0, edge_order=2)  # d/dpi as a matrix (np.gradient's weights)
+        self._dpi_rows = D
+        self._dpi_lo = np.diagonal(D, -1)[:-1].copy()  # interior levels k = 1..nz-2
+        self._dpi_md = np.diagonal(D)[1:-1].copy()
+        self._dpi_up = np.diagonal(D, 1)[1:].copy()
+        w0, w1, w2 = (w[:, None] for w in g._dphi_w)
+        v0, v1, v2 = (w[:, None] for w in g._d2phi_w)
+        self._uniform = bool(np.all(np.abs(g._dphi_w[1]) < 1e-12 * np.abs(g._dphi_w[0])))
+        inv_x = 1.0 / (2.0 * g.dlam * a * g.cos)  # raw centred lon difference -> d/dx
+        self.cE = C * eta
+        self.cS = C * (d["Spp"] if clipped is None else np.where(clipped, 0.0, d["Spp"]))
+        self.cspx = C * d["spx"] * inv_x
+        self.cPpx = C * d["Ppx"] * inv_x
+        self.cspy = [C * d["spy"] * (w / a) for w in (w0, w1, w2)]
+        self.cPpy = [C * d["Ppy"] * (w / a) for w in (w0, w1, w2)]
+        hxx, hyy, hxy = d["hxx"], d["hyy"], d["hxy"]
+        self.c_lap = -2.0 * hyy
+        c_d2 = -2.0 * (hxx - hyy) / a ** 2
+        c_lat = 2.0 * d["psy"] / a ** 3
+        c_xy = 4.0 * hxy / (a * a * g.cos * 2.0 * g.dlam)
+        c_lon = (4.0 * hxy * g.tan / (a * a * g.cos) + 2.0 * d["psx"] / (a ** 3 * g.cos)) / (2.0 * g.dlam)
+        self.kY = [c_d2 * v + c_lat * w for v, w in ((v0, w0), (v1, w1), (v2, w2))]
+        self.kD = [c_xy * w0, c_xy * w1 + c_lon, c_xy * w2]
+        self._X = np.zeros(g.shape)
+        self._Y = np.zeros(g.shape)
+
+    def _dlon(self, b):
+        """Raw centred longitude difference b[i+1] - b[i-1] at the interior longitudes."""
+        if self.g.periodic:
+            return np.roll(b, -1, axis=-1) - np.roll(b, 1, axis=-1)
+        return b[..., 2:] - b[..., :-2]
+
+    def _dpi(self, b, ends):
+        out = np.empty(b.shape)
+        out[1:-1] = self._dpi_lo[:, None, None] * b[:-2]
+        out[1:-1] += self._dpi_md[:, None, None] * b[1:-1]
+        out[1:-1] += self._dpi_up[:, None, None] * b[2:]
+        if ends:
+            D = self._dpi_rows
+            out[0] = D[0, 0] * b[0] + D[0, 1] * b[1] + D[0, 2] * b[2]
+            out[-1] = D[-1, -3] * b[-3] + D[-1, -2] * b[-2] + D[-1, -1] * b[-1]
+        else:
+            out[0] = 0.0
+            out[-1] = 0.0
+        return out
+
+    def _lat3(self, k, b):
+        """k[0] b[j-1] + k[1] b[j] + k[2] b[j+1] at the interior rows (b: all rows, interior lons)."""
+        out = k[0] * b[..., :-2, :]
+        out += k[2] * b[..., 2:, :]
+        if not self._uniform or k is self.kD or k is self.kY:
+            out += k[1] * b[..., 1:-1, :]
+        return out
+
+    def apply(self, x1, x2):
+        g = self.g
+        ls = g.ls
+        X, Y = self._X, self._Y
+        X[..., 1:-1, ls] = x1
+        Y[..., 1:-1, ls] = x2
+        # PV equation
+        grad = (X[1:] - X[:-1]) / g.dpi[:, None, None]
+        spp = np.empty(g.shape)
+        spp[1:-1] = grad[1:] - grad[:-1]
+        spp[0] = grad[0]
+        spp[-1] = -grad[-1]
+        spp /= g.hs[:, None, None]
+        lapY = g.lap(Y)
+        r1 = self.cE * g.interior(spp)
+        r1 += self.cS * lapY
+        Xp = self._dpi(X, False)
+        Yp = self._dpi(Y, True)
+        r1 -= self.cspx * self._dlon(Xp)[..., 1:-1, :]
+        r1 -= self.cPpx * self._dlon(Yp)[..., 1:-1, :]
+        r1 -= self._lat3(self.cspy, Xp[..., ls])
+        r1 -= self._lat3(self.cPpy, Yp[..., ls])
+        # balance equation
+        r2 = g.lap(X)
+        r2 -= g.div_f_grad(Y)
+        r2 += self.c_lap * lapY
+        r2 += self._lat3(self.kY, Y[..., ls])
+        r2 += self._lat3(self.kD, self._dlon(Y))
+        return r1, r2
+
+
 # ---------------------------------------------------------------------------
 # separable solves with latitude-dependent coefficients (the preconditioner)
 # ---------------------------------------------------------------------------
@@ -376,9 +471,20 @@ class _LatSeparable(SeparableSolver):
 
 
 class _Preconditioner:
-    """Approximate inverse of the Jacobian: the linearisation about rest with f(lat) and S(pi)."""
+    """Approximate inverse of the Jacobian: a linearisation with coefficients that depend on
+    pressure and latitude only, so that both solves are separable.
 
-    def __init__(self, grid: BalanceGrid, S):
+    ``S`` (nz,) is the level-mean ``Phi_pipi``; ``eta_rows`` (ny,) an absolute vorticity per
+    latitude row (default f: the linearisation about rest) and ``s_rows`` (ny-2,) a factor
+    of the stability per interior row (default 1).  With ``eta`` in place of f in both
+    equations (the balance linearised about a state of solid rotation has ``f + zeta`` as
+    its coefficient) the system ``C [eta dPhi_pipi + S s lap dpsi] = r1``,
+    ``lap dPhi - div(eta grad dpsi) = r2`` is approximated by
+    ``(lap + eta^2/(s S) D_pipi) dPhi = eta r1/(C S s) + r2`` and
+    ``div(eta grad dpsi) = lap dPhi - r2``.
+    """
+
+    def __init__(self, grid: BalanceGrid, S, eta_rows=None, s_rows=None):
         S = np.asarray(S, float)
         if not np.all(S > 0):
             raise DomainError(
@@ -387,19 +493,43 @@ class _Preconditioner:
                 "and cannot be inverted.")
         self.grid, self.S = grid, S
         hc = grid.hc
-        self.A = _LatSeparable(grid.qg, hc, w=grid.hpos * S, T=grid.T, cy=grid.f[1:-1] ** 2)
-        self.B = _LatSeparable(grid.qg, grid.divf, nv=1)
-        self.scale = (grid.fi[None] / (grid.C * S)[:, None, None])
+        eta = grid.f if eta_rows is None else np.asarray(eta_rows, float)
+        srow = np.ones(grid.ny - 2) if s_rows is None else np.asarray(s_rows, float)
+        eta_half = 0.5 * (eta[1:] + eta[:-1])
+        ei = eta[1:-1]
+        coeffs = dict(south=hc["south"] * eta_half[:-1], north=hc["north"] * eta_half[1:], zonal=hc["zonal"] * ei)
+        coeffs["merid_diag"] = -(coeffs["south"] + coeffs["north"])
+        self.A = _LatSeparable(grid.qg, hc, w=grid.hpos * S, T=grid.T, cy=ei ** 2 / srow)
+        self.B = _LatSeparable(grid.qg, coeffs, nv=1)
+        self.scale = (ei[:, None] / srow[:, None])[None] / (grid.C * S)[:, None, None]
         self.applications = 0
+        self._full = np.zeros(grid.shape)
 
     def apply(self, r1, r2):
         g = self.grid
         self.applications += 1
         dPhi = self.A.solve_interior(self.scale * r1 + r2)
-        full = np.zeros(g.shape)
+        full = self._full
         full[..., 1:-1, g.ls] = dPhi
         dpsi = self.B.solve_interior(g.lap(full) - r2)
         return dPhi, dpsi
+
+
+def _make_preconditioner(g, Spp, eta, mode="rows"):
+    """The preconditioner for the linearisation at a state with ``Phi_pipi`` = ``Spp`` and
+    absolute vorticity ``eta`` (interior nodes)."""
+    S = Spp.reshape(g.nz, -1).mean(axis=1)
+    if mode == "rest":
+        return _Preconditioner(g, S)
+    er = eta.mean(axis=(0, 2))
+    eta_rows = np.concatenate([[g.f[0]], er, [g.f[-1]]])
+    # keep the sign of f and at least a fraction of it (the floor's rule)
+    eta_rows = g.sign * np.maximum(g.sign * eta_rows, 0.05 * np.abs(g.f))
+    s_rows = None
+    if mode == "rows_s":
+        s_rows = (Spp.mean(axis=2) / S[:, None]).mean(axis=0)
+        s_rows = np.clip(s_rows, 0.2, 5.0)
+    return _Preconditioner(g, S, eta_rows=eta_rows, s_rows=s_rows)
 
 
 # ---------------------------------------------------------------------------
@@ -429,6 +559,74 @@ class BalanceResult:
 
 def _rms(a):
     return float(np.sqrt(np.mean(np.square(a)))) if a.size else 0.0
+
+
+def _gmres_right(matvec, precond, b, rtol, maxiter, restart=30):
+    """Right-preconditioned GMRES from x = 0: ``A M y = b``, ``x = M y``.
+
+    The residual it minimises is the true residual ``b - A x`` (right preconditioning), so
+    ``rtol`` means what the inexact Newton forcing asks for.  One operator product and one
+    preconditioner application per iteration, plus one preconditioner application per
+    cycle to form x; classical Gram-Schmidt with one re-orthogonalisation (BLAS products).
+    Returns (x, iterations, relative residual reached).  SciPy's ``gmres`` preconditions on the
+    left (its stopping test is on the preconditioned residual) and spends extra
+    preconditioner applications per call, which is why this small loop is used here.
+    """
+    n = b.size
+    beta0 = float(np.linalg.norm(b))
+    x = np.zeros(n)
+    if beta0 == 0.0:
+        return x, 0, 0.0
+    its = 0
+    r = b.copy()
+    beta = beta0
+    while True:
+        m = min(restart, maxiter - its)
+        V = np.empty((m + 1, n))
+        H = np.zeros((m + 1, m))
+        cs, sn = np.zeros(m), np.zeros(m)
+        gv = np.zeros(m + 1)
+        gv[0] = beta
+        V[0] = r / beta
+        k = 0
+        for k in range(m):
+            w = matvec(precond(V[k]))
+            its += 1
+            h = V[:k + 1] @ w
+            w -= h @ V[:k + 1]
+            h2 = V[:k + 1] @ w  # re-orthogonalise once (CGS2)
+            w -= h2 @ V[:k + 1]
+            h += h2
+            hn = float(np.linalg.norm(w))
+            H[:k + 1, k] = h
+            H[k + 1, k] = hn
+            if hn > 0.0:
+                V[k + 1] = w / hn
+            for i in range(k):  # previous rotations
+                t = cs[i] * H[i, k] + sn[i] * H[i + 1, k]
+                H[i + 1, k] = -sn[i] * H[i, k] + cs[i] * H[i + 1, k]
+                H[i, k] = t
+            den = float(np.hypot(H[k, k], H[k + 1, k]))
+            cs[k], sn[k] = (1.0, 0.0) if den == 0.0 else (H[k, k] / den, H[k + 1, k] / den)
+            H[k, k] = den
+            H[k + 1, k] = 0.0
+            gv[k + 1] = -sn[k] * gv[k]
+            gv[k] = cs[k] * gv[k]
+            if abs(gv[k + 1]) <= rtol * beta0 or hn == 0.0:
+                break
+        kk = k + 1
+        y = np.zeros(kk)
+        for i in range(kk - 1, -1, -1):  # back substitution on the rotated Hessenberg matrix
+            y[i] = (gv[i] - H[i, i + 1:kk] @ y[i + 1:]) / H[i, i]
+        x += precond(y @ V[:kk])
+        rel = abs(gv[kk]) / beta0
+        if rel <= rtol or its >= maxiter:
+            return x, its, rel
+        r = b - matvec(x)
+        beta = float(np.linalg.norm(r))
+        rel = beta / beta0
+        if rel <= rtol:
+            return x, its, rel
 
 
 def _where_text(grid, mask):
@@ -486,8 +684,8 @@ def harmonic_extension(grid: BalanceGrid, lateral):
 
 
 def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_lateral, *, guess=None,
-                  tol=DEFAULT_TOL, max_newton=20, floor=False, pv_floor=0.01, eta_floor=0.05,
-                  preconditioner_state=None, verbose=False):
+                  tol=DEFAULT_TOL, max_newton=20, max_gmres=120, floor=False, pv_floor=0.01, eta_floor=0.05,
+                  verbose=False):
     """Solve the nonlinear-balance system for Phi and psi.
 
     Parameters
@@ -540,11 +738,9 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
     qi = g.interior(q_used)
     qa = qi - qi.reshape(g.nz, -1).mean(axis=1)[:, None, None]
     bs = max(_rms(d0["lapPhi"]), _rms(d0["divf"]), g.f0 ** 2 * max(_rms(qa) / max(qs, 1e-300), 1e-6))
-    S_state = d0["Spp"] if preconditioner_state is None else preconditioner_state
-    S = S_state.reshape(g.nz, -1).mean(axis=1)
-    P = _Preconditioner(g, S)
+    _make_preconditioner(g, d0["Spp"], g.fi + d0["zeta"])  # refuses a statically unstable mean state
     n_int = int(np.prod(g.interior_shape))
-    counts = dict(gmres=0, res=0)
+    counts = dict(gmres=0, res=0, per_step=[], pc=0)
 
     def residual(Phi, psi):
         counts["res"] += 1
@@ -570,14 +766,12 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
             def split(v):
                 return v[:n_int].reshape(g.interior_shape), v[n_int:].reshape(g.interior_shape)
 
-            def full(x):
-                out = np.zeros(g.shape)
-                out[..., 1:-1, g.ls] = x
-                return out
+            Jk = _Jacobian(g, dd, ee, cc)
+            P = _make_preconditioner(g, dd["Spp"], ee)
 
             def matvec(v):
                 a, b = split(np.asarray(v).ravel())
-                j1, j2 = _jvp(g, dd, ee, cc, full(a), full(b), _zero2(g), _zero2(g))
+                j1, j2 = Jk.apply(a, b)
                 return np.concatenate([(j1 / qs).ravel(), (j2 / bs).ravel()])
 
             def precond(v):
@@ -585,16 +779,12 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
                 x1, x2 = P.apply(a * qs, b * bs)
                 return np.concatenate([x1.ravel(), x2.ravel()])
 
-            def cb(_):
-                counts["gmres"] += 1
-
-            N = 2 * n_int
-            J = LinearOperator((N, N), matvec=matvec, dtype=float)
-            M = LinearOperator((N, N), matvec=precond, dtype=float)
             rhs = -np.concatenate([(r1 / qs).ravel(), (r2 / bs).ravel()])
             rtol = min(0.5, max(eta_k, 0.5 * tol / max(history[-1], 1e-300)))
-            dx, _info = gmres(J, rhs, rtol=rtol, restart=40, maxiter=4, M=M, callback=cb,
-                              callback_type="pr_norm")
+            dx, n_it, _rel = _gmres_right(matvec, precond, rhs, rtol, maxiter=max_gmres)
+            counts["gmres"] += n_it
+            counts["per_step"].append(n_it)
+            counts["pc"] += P.applications
             dP, dS = split(dx)
             step = 1.0
             for _ in range(6):  # backtracking on the residual norm
@@ -611,7 +801,8 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
             Phi, psi, d, eta, clipped, r1, r2 = Pn, Sn, dn, en, cn, r1n, r2n
             history.append(rn)
             if verbose:
-                print(f"newton {newton}: relative residual {rn:.3e} (step {step:g}, gmres rtol {rtol:.2g})")
+                print(f"newton {newton}: relative residual {rn:.3e} (step {step:g}, gmres rtol {rtol:.2g}, "
+                      f"{n_it} GMRES)")
             ratio = rn / prev
             prev = rn
             eta_new = 0.9 * ratio ** 2
@@ -638,7 +829,7 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
     return BalanceResult(
         Phi=Phi, psi=psi, converged=bool(history[-1] <= tol), residual_history=history,
         newton_iterations=newton, gmres_iterations=counts["gmres"],
-        preconditioner_applications=P.applications, residual_evaluations=counts["res"],
+        preconditioner_applications=counts["pc"], residual_evaluations=counts["res"],
         seconds=_time.perf_counter() - t_start, tol=tol, floored=floored, n_pv_floored=n_pv,
         n_eta_floored=n_eta, scales=dict(q=qs, balance=bs))
 
@@ -655,7 +846,7 @@ def solve_tangent(grid, state, forcing, *, eta_floor=None, rtol=1e-10, P=None):
     d = _terms(g, Phi, psi, tb, tt)
     eta, clipped = _eta(g, d, eta_floor)
     if P is None:
-        P = _Preconditioner(g, d["Spp"].reshape(g.nz, -1).mean(axis=1))
+        P = _make_preconditioner(g, d["Spp"], eta)
     z2 = _zero2(g)
     bt = z2 if forcing.get("bottom_theta") is None else np.asarray(forcing["bottom_theta"], float)
     tt_ = z2 if forcing.get("top_theta") is None else np.asarray(forcing["top_theta"], float)
@@ -682,9 +873,11 @@ def solve_tangent(grid, state, forcing, *, eta_floor=None, rtol=1e-10, P=None):
         out[..., 1:-1, g.ls] = x
         return out
 
+    Jt = _Jacobian(g, d, eta, clipped)
+
     def matvec(v):
         a, b = split(np.asarray(v).ravel())
-        j1, j2 = _jvp(g, d, eta, clipped, full(a), full(b), z2, z2)
+        j1, j2 = Jt.apply(a, b)
         return np.concatenate([(j1 / qs).ravel(), (j2 / bs).ravel()])
 
     def precond(v):
@@ -692,18 +885,12 @@ def solve_tangent(grid, state, forcing, *, eta_floor=None, rtol=1e-10, P=None):
         x1, x2 = P.apply(a * qs, b * bs)
         return np.concatenate([x1.ravel(), x2.ravel()])
 
-    def cb(_):
-        it["n"] += 1
-
-    N = 2 * n_int
     rhs = np.concatenate([(r1 / qs).ravel(), (r2 / bs).ravel()])
     if not np.any(rhs):
         return bP, bS, 0
     with _blas_threads(1):
-        x, info = gmres(LinearOperator((N, N), matvec=matvec, dtype=float), rhs, rtol=rtol, restart=60,
-                        maxiter=20, M=LinearOperator((N, N), matvec=precond, dtype=float), callback=cb,
-                        callback_type="pr_norm")
-    if info != 0:
+        x, it["n"], rel = _gmres_right(matvec, precond, rhs, rtol, maxiter=400, restart=60)
+    if not rel <= rtol:
         raise DomainError(f"nonlinear balance: the tangent-linear piece solve did not reach rtol {rtol:g} "
                           f"in {it['n']} GMRES iterations; the full balanced state may be near the limit of "
                           "ellipticity (try floor=True).")
@@ -965,7 +1152,7 @@ def invert_nonlinear_pieces(case, pieces, time=None, member=None, reference=None
     forcings, (_q, _bt, _tt, lat_all) = _claims(plist, anomaly)
     state = (full.Phi, full.psi, st["tb"], st["tt"])
     d = _terms(g, full.Phi, full.psi, st["tb"], st["tt"])
-    P = _Preconditioner(g, d["Spp"].reshape(g.nz, -1).mean(axis=1))
+    P = _make_preconditioner(g, d["Spp"], g.fi + d["zeta"])
     ef = 0.05 if floor else None
     names, Ps, Ss, Bs, Ts, its = [], [], [], [], [], []
     for name, f in forcings:
