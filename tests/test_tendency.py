@@ -124,3 +124,15 @@ def test_explain_is_quiet_about_warnings(case):
         warnings.simplefilter("error", RuntimeWarning)
         ex = T.explain(case, 0, target=(-60.0, 45.0, 500.0))
     assert ex.target == (-60.0, 45.0, 500.0) and np.isfinite(ex.matrix.values).all()
+
+
+def test_briefing_page(case):
+    from workbench import brief
+
+    state = brief.standard_state(case, 6)
+    fig = brief._tendency_page(case, state)
+    texts = " ".join(t.get_text() for t in fig.texts)
+    assert "not a forecast" in texts and "QG height tendency at" in texts
+    ex = T.explain(case, 6, state.pieces or None, tuple(state.target), reference=state.reference)
+    cells = [c.get_text().get_text() for ax in fig.axes for tab in ax.tables for c in tab.get_celld().values()]
+    assert f"{ex.total:+.1f}" in cells and "upper trough" in cells

@@ -348,6 +348,53 @@ def _table_page(case, state):
     return fig, sentences
 
 
+def _tendency_page(case, state):
+    """The QG tendency attribution matrix at the target (workbench.tendency.explain) and its summary."""
+    from matplotlib.figure import Figure
+
+    from .errors import WorkbenchError
+    from .tendency import LABEL, explain
+
+    fig = Figure(figsize=PAGE)
+    inv = invented_label(case)
+    y = _text_page(fig, 0.95, "Why are the heights changing? QG tendency attribution", size=15,
+                   weight="bold")
+    y = _text_page(fig, y, LABEL, size=9.5, color="#8a3b00")
+    try:
+        ex = explain(case, state.time_index, state.pieces or None,
+                     tuple(state.target) if state.target is not None else None,
+                     member=state.member, reference=state.reference)
+    except WorkbenchError as exc:
+        _text_page(fig, y - 0.02, f"The tendency attribution could not be computed: {exc}", size=11)
+        _caution_band(fig, inv)
+        return fig
+    lon, lat, p = ex.target
+    y = _text_page(fig, y, f"Height tendency (m per 6 h) at {_fmt_lonlat(lon, lat)}, {p:g} hPa, {ex.time} UTC: "
+                          "row = the balanced wind of a piece, column = the PV (or boundary theta) it carries; "
+                          f"entries add up to the total {ex.total:+.1f} m per 6 h.", size=10)
+    for note in ex.notes:
+        y = _text_page(fig, y, note, size=9.5, color="#8a3b00")
+    m = ex.matrix
+    cols = ["wind of \\ PV of"] + [str(c) for c in m.columns] + ["row sum"]
+    rows = [[str(i)] + [f"{v:+.1f}" for v in m.loc[i].values] + [f"{m.loc[i].sum():+.1f}"] for i in m.index]
+    rows.append(["column sum"] + [f"{v:+.1f}" for v in m.sum(axis=0).values] + [f"{ex.total:+.1f}"])
+    h = min(0.045 * (len(rows) + 1), 0.45)
+    ax = fig.add_axes([0.03, y - 0.02 - h, 0.94, h])
+    ax.set_axis_off()
+    tab = ax.table(cellText=rows, colLabels=cols, loc="upper center", cellLoc="center", colLoc="center",
+                   bbox=[0, 0, 1, 1])
+    tab.auto_set_font_size(False)
+    tab.set_fontsize(7.5)
+    for (r, c), cell in tab.get_celld().items():
+        if r == 0 or c == 0:
+            cell.set_text_props(fontweight="bold")
+            cell.set_facecolor("#e8eef6")
+    y = _text_page(fig, y - 0.05 - h, "Summary", size=12, weight="bold")
+    _text_page(fig, y, "\n".join("- " + s for s in ex.summary), size=10.5)
+    _caution_band(fig, inv)
+    return fig
+
+
 def _notes(caught) -> list[str]:
     """The package's own warnings raised while the pages were made (deduplicated)."""
     out = []
@@ -360,7 +407,7 @@ def _notes(caught) -> list[str]:
     return out
 
 
-def briefing_figures(case, state, progress=None) -> list:
+def briefing_figures(case, state, progress=None, tendency=False) -> list:
     """The briefing's pages as matplotlib Figures (title, maps, sections, attribution).
 
     ``progress``: optional callable, called once per page made (the command line's bar).
@@ -396,16 +443,19 @@ def briefing_figures(case, state, progress=None) -> list:
             tick()
         fig, _ = _table_page(case, state)
         pages.append(fig)
+        if tendency:  # the QG tendency attribution matrix (pvwb brief --tendency)
+            pages.append(_tendency_page(case, state))
     return [_title_page(case, state, utc_now_iso(), _notes(caught))] + pages
 
 
 def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: bool = False,
-                  progress=None) -> Path:
+                  progress=None, tendency: bool = False) -> Path:
     """Write the briefing PDF of ``case`` with a State (or a session file/dict) to ``path``.
 
     Refuses (ExportError) an existing ``path`` unless ``overwrite=True``; the file
     appears only when complete. Returns the path. ``progress``: optional callable, called
-    once per page made and once per page written.
+    once per page made and once per page written. ``tendency``: add the QG tendency
+    attribution page (:mod:`workbench.tendency`).
     """
     from matplotlib.backends.backend_pdf import PdfPages
     import matplotlib
@@ -420,7 +470,7 @@ def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: b
             "it, or choose another name"
         )
     with matplotlib.rc_context({"pdf.fonttype": 42}):
-        pages = briefing_figures(case, state, progress=progress)
+        pages = briefing_figures(case, state, progress=progress, tendency=tendency)
         with atomic_target(path, overwrite=overwrite, error=ExportError, what="briefing") as tmp:
             meta = {
                 "Title": f"PV diagnosis briefing: {case.name}",
@@ -461,6 +511,7 @@ def main(argv=None) -> int:
                     help="use a session file that was changed after it was saved (or has no "
                          "body checksum); without this it is refused")
     ap.add_argument("--quiet", action="store_true", help="no progress bar")
+    ap.add_argument("--tendency", action="store_true", help="add the QG tendency attribution page")
     args = ap.parse_args(argv)
     try:
         from workbench.analysis import default_case_path
@@ -478,7 +529,7 @@ def main(argv=None) -> int:
         bar = cli.progress(desc="briefing", unit="page", enabled=False if args.quiet else None)
         try:
             out = make_briefing(case, session, args.output, overwrite=args.overwrite,
-                                progress=lambda: bar.update(1))
+                                progress=lambda: bar.update(1), tendency=args.tendency)
         finally:
             bar.close()
     except WorkbenchError as exc:
