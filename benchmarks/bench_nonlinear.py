@@ -3,8 +3,8 @@
     python benchmarks/bench_nonlinear.py [--grid 1deg 0.5deg 0.25deg] [--repeat N] [--json]
 
 Grids as ``workbench.bench.GRIDS``; the state is invented (``nonlinear.bench_problem``: a jet
-and a cut-off low, Rossby number about 0.3, first guess the harmonic extension of the lateral
-data). Records carry ``method="qg_balance"`` / ``"nonlinear_balance"``.
+and a cut-off low, Rossby number about 0.3; first guess the harmonic extension of the lateral
+data, or the analysed state as the Case paths do). Records carry ``method="qg_balance"`` / ``"nonlinear_balance"``.
 """
 from __future__ import annotations
 
@@ -31,7 +31,7 @@ def main(argv=None):
         for r in records:
             extra = ""
             if r["method"] == "nonlinear_balance":
-                extra = (f" = {r['qg_solves']:.0f} QG solves, Newton {r['newton_iterations']}, GMRES "
+                extra = (f" ({r['first_guess']}) = {r['qg_solves']:.0f} QG solves, Newton {r['newton_iterations']}, GMRES "
                          f"{r['gmres_iterations']}, residual {r['final_relative_residual']:.1e}")
             print(f"{r['grid']:7} {'x'.join(map(str, r['shape'])):>10} {r['method']:18} {r['median_s']:.4g} s{extra}")
     return records
