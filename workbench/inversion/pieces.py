@@ -65,6 +65,7 @@ def format_share(value, fmt=".1f") -> str:
     return format(v, fmt) if math.isfinite(v) else NO_SHARE
 
 KINDS = ("interior", "bottom", "top", "lateral", "remainder")
+FOLLOW_MODES = ("fixed", "anomaly")
 LAYER_COORDS = ("pressure", "theta")
 
 
@@ -85,11 +86,17 @@ class Piece:
         hemisphere. Cyclonic (trough) PV anomalies are positive in the northern hemisphere and
         negative in the southern, so an upper-trough piece there has sign -1
         (``workbench.analysis.cyclonic_sign``); a warm surface anomaly is cyclonic in both.
-    threshold : PVU, minimum |Ertel PV anomaly| of the sign (interior only)
+    threshold : PVU, minimum |Ertel PV anomaly| of the sign (interior only; a bottom/top piece
+        that follows its anomaly reads it as K of |theta'| for the tracking only)
     rh_min : % or None; a moist piece keeps points with RH >= rh_min
         (70-90 % is common practice)
     visible : bool (views only; invisible pieces still count in the sum)
     colour : str or None
+    follow : "fixed" (the outline stays in place at every time) or "anomaly" (at other times
+        the outline follows the connected region of the piece's anomaly; interior, bottom and
+        top pieces with a polygon; :mod:`workbench.tracking`)
+    follow_from : ISO valid time at which the outline was drawn (tracking starts there), or
+        None (the caller's time)
     """
 
     name: str
@@ -102,6 +109,8 @@ class Piece:
     rh_min: float | None = None
     visible: bool = True
     colour: str | None = None
+    follow: str = "fixed"
+    follow_from: str | None = None
 
     def __post_init__(self):
         self.validate()
@@ -162,6 +171,24 @@ class Piece:
         self.visible = bool(self.visible)
         if self.colour is not None and not isinstance(self.colour, str):
             raise PieceError(f"{who}: colour must be a text colour (e.g. '#cc3311') or None.")
+        if self.follow not in FOLLOW_MODES:
+            raise PieceError(f"{who}: follow {self.follow!r} must be 'fixed' (outline in place) or 'anomaly' "
+                             "(outline follows the anomaly).")
+        if self.follow == "anomaly":
+            if self.kind not in ("interior", "bottom", "top"):
+                raise PieceError(f"{who}: a {self.kind} piece cannot follow an anomaly; only interior, bottom "
+                                 "and top pieces can (set follow='fixed').")
+            if self.polygon is None:
+                raise PieceError(f"{who}: a piece that follows its anomaly needs an outline (polygon) at its "
+                                 "start time; draw one or set follow='fixed'.")
+        if self.follow_from is not None:
+            try:
+                np.datetime64(str(self.follow_from), "s")
+            except (TypeError, ValueError):
+                raise PieceError(f"{who}: follow_from {self.follow_from!r} must be an ISO valid time "
+                                 "(e.g. 2051-02-09T12:00) or None.") from None
+            if not isinstance(self.follow_from, str):
+                self.follow_from = str(np.datetime64(self.follow_from, "s"))
 
     def to_dict(self) -> dict:
         """Plain JSON types (lists, floats, str, bool, None)."""
