@@ -118,7 +118,8 @@ def above_ground_target(case, target, time=None, member=None):
     return (lon, lat, float(levels[k0])), note
 
 
-def analyse(case, time=None, member=None, pieces=None, target=None, reference=None, balance="qg"):
+def analyse(case, time=None, member=None, pieces=None, target=None, reference=None, balance="qg",
+            floor=False):
     """Invert ``pieces`` (default :func:`standard_pieces`) at one time and return
     ``(results, table, target)``: the balanced Datasets per piece, the attribution DataFrame
     at ``target`` = (lon, lat, pressure hPa) (default the storm centre at the lowest level
@@ -128,7 +129,9 @@ def analyse(case, time=None, member=None, pieces=None, target=None, reference=No
     target below the ground (given or default) is moved up to the first level above it
     (:func:`above_ground_target`). ``table.attrs["notes"]`` holds the sentences to show with
     the table (target moved, shares not given); ``table.attrs["reference"]`` names the
-    reference used."""
+    reference used; ``table.attrs["balance"]`` the balance.  ``floor=True`` (nonlinear
+    balance only) accepts the floor remedy where PV or absolute vorticity has the wrong sign;
+    the number of points floored is then one of the notes (``table.attrs["floored"]``)."""
     from .inversion.pieces import attribution
 
     reference = case.resolve_reference(reference)
@@ -141,13 +144,53 @@ def analyse(case, time=None, member=None, pieces=None, target=None, reference=No
         levels = case.levels_hpa
         target = (lon, lat, float(levels[1] if levels.size > 1 else levels[0]))
     target, moved = above_ground_target(case, target, time, member)
-    results = case.inversion(pieces, time, member, reference, balance=balance)
+    if floor and balance != "nonlinear":
+        raise InputError("floor applies to balance='nonlinear' only (the QG inversion needs no floor).")
+    results = case.inversion(pieces, time, member, reference, balance=balance,
+                             **({"floor": True} if floor else {}))
     table = attribution(results, *target)
     table.attrs["balance"] = balance
     ref_label = reference if isinstance(reference, str) else "climatology (dataset)"
     table.attrs["reference"] = ref_label
     table.attrs["notes"] = ([moved] if moved else []) + list(table.attrs.get("share_notes", []))
+    if balance == "nonlinear" and floor:
+        solver = json.loads(results["total"].attrs.get("solver", "{}")).get("full", {})
+        n_pv, n_eta = int(solver.get("n_pv_floored", 0)), int(solver.get("n_eta_floored", 0))
+        table.attrs["floored"] = dict(pv=n_pv, absolute_vorticity=n_eta)
+        table.attrs["notes"].append(
+            f"Floor remedy: PV raised to 0.01 PVU at {n_pv} point(s) and absolute vorticity to 5 % of f at "
+            f"{n_eta} point(s) (nonlinear balance is not elliptic where they have the wrong sign).")
     return results, table, tuple(float(x) for x in target)
+
+
+#: How the command line and the briefing name the balance each number comes from.
+BALANCE_LABELS = {"qg": "QG balance (constant f0)",
+                  "nonlinear": "nonlinear balance (f varying with latitude; pieces linearised, "
+                               "'nonlinear remainder' row)"}
+
+
+def print_balance_check(case, time, member=None, reference=None, floor=False):
+    """Print per level the RMS balanced-minus-analysed wind for QG and nonlinear balance
+    (:func:`workbench.inversion.nonlinear.balance_quality`) and the solver's figures."""
+    from .inversion.nonlinear import balance_quality
+
+    bq = balance_quality(case, time, member, reference, floor=floor)
+    solver = json.loads(bq.attrs.get("solver") or "{}")
+    print(f"balance check {bq.attrs['time'][:16]}: RMS of balanced minus analysed wind (m/s), "
+          f"{bq.attrs['weighting']}")
+    print(f"{'hPa':>7} {'RMS wind':>9} {'QG':>7} {'nonlinear':>10}")
+    for k, p in enumerate(bq["pressure"].values / 100.0):
+        print(f"{p:7g} {float(bq['rms_wind'][k]):9.2f} {float(bq['rms_difference_qg'][k]):7.2f} "
+              f"{float(bq['rms_difference_nonlinear'][k]):10.2f}")
+    if solver:
+        extra = ""
+        if floor:
+            extra = (f"; floored: PV {solver.get('n_pv_floored', 0)} point(s), absolute vorticity "
+                     f"{solver.get('n_eta_floored', 0)} point(s)")
+        print(f"nonlinear solve: {solver.get('newton_iterations')} Newton steps, {solver.get('gmres_iterations')} "
+              f"GMRES iterations, relative residual {solver['residual_history'][-1]:.1e}{extra}")
+    print()
+    return bq
 
 
 def _parse_target(text):
@@ -175,7 +218,8 @@ def load_pieces(path):
 
 def main(argv=None):
     """``pvwb info|invert [CASE] [--region W,E,S,N] [--times SPEC] [--time T] [--member M]
-    [--target LON,LAT,HPA] [--pieces FILE] [--reference R] [-o CSV [--overwrite]] [--quiet]``.
+    [--target LON,LAT,HPA] [--pieces FILE] [--reference R] [-o CSV [--overwrite]] [--quiet]
+    [--balance qg|nonlinear] [--floor] [--balance-check]``.
 
     Arguments are checked before the work (one-line errors: :mod:`workbench.cli`); the target
     and every piece polygon must lie inside the domain. A bar shows progress over the times.
@@ -199,7 +243,18 @@ def main(argv=None):
     parser.add_argument("-o", "--output", default=None, help="write the attribution table(s) as CSV")
     parser.add_argument("--overwrite", action="store_true", help="replace an existing output file")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
+    parser.add_argument("--balance", choices=["qg", "nonlinear"], default="qg",
+                        help="qg (constant f0, default) or nonlinear (nonlinear balance, f varying with latitude)")
+    parser.add_argument("--floor", action="store_true",
+                        help="nonlinear balance: accept the floor remedy where PV or absolute vorticity has the "
+                             "wrong sign (points counted)")
+    parser.add_argument("--balance-check", action="store_true",
+                        help="also print, per level, the RMS balanced-minus-analysed wind for QG and nonlinear balance")
     args = parser.parse_args(argv)
+    if args.floor and args.balance != "nonlinear" and not args.balance_check:
+        parser.error("--floor applies to --balance nonlinear or --balance-check only")
+    if args.balance_check and args.command != "invert":
+        parser.error("--balance-check applies to `pvwb invert` only")
     target = _parse_target(args.target)
     if args.output:
         cli.check_output(args.output, args.overwrite)
@@ -227,10 +282,11 @@ def main(argv=None):
     print("\nDiagnostic analysis of model/analysis data, not a forecast or warning. Decisions follow "
           "the official warnings of the responsible meteorological service and local procedures.\n")
     for t in cli.progress(times, desc="invert", unit="time", enabled=None if not args.quiet else False):
-        _, table, target_used = analyse(case, t, member, pieces, target, args.reference)
+        _, table, target_used = analyse(case, t, member, pieces, target, args.reference, balance=args.balance,
+                                        floor=args.floor and args.balance == "nonlinear")
         label = str(case.times[t])[:16]
         print(f"{label}  target {target_used[0]:.1f} E, {target_used[1]:.1f} N, {target_used[2]:g} hPa; "
-              f"reference {table.attrs['reference'].replace('_', ' ')}")
+              f"reference {table.attrs['reference'].replace('_', ' ')}; {BALANCE_LABELS[args.balance]}")
         for note in table.attrs.get("notes", []):
             print(f"note: {note}")
         with pd.option_context("display.width", 160, "display.max_columns", 20, "display.precision", 2):
@@ -238,7 +294,9 @@ def main(argv=None):
                 formatters={"relative_vorticity": "{:.2e}".format, "height_share_pct": format_share},
                 na_rep=format_share(None)))
         print()
-        tables.append(table.assign(time=label).reset_index())
+        if args.balance_check:
+            print_balance_check(case, t, member, args.reference, args.floor)
+        tables.append(table.assign(time=label, balance=args.balance).reset_index())
     if args.output:
         from .export import atomic_target
 

@@ -1085,6 +1085,14 @@ def _solve_state(g, st, tol, floor, **kw):
 
 
 def _require_converged(res, what):
+    if not res.converged and res.floored is not None and np.any(res.floored[-1] > 0):
+        h = res.residual_history
+        n = int(np.sum(res.floored[-1] > 0))
+        raise DomainError(
+            f"nonlinear balance: the {what} stalled at relative residual {h[-1]:.2e} because {n} floored "
+            "point(s) lie on the model top level, where theta is imposed and the floored PV can only be "
+            "met by flooring the absolute vorticity too (a non-smooth system); cut the top level off "
+            "(fewer levels) or use balance='qg'.")
     if not res.converged:
         h = res.residual_history
         raise DomainError(
