@@ -279,7 +279,7 @@ def _title_page(case, state, generated, notes=()):
     return fig
 
 
-def _table_page(case, state):
+def _table_page(case, state, balance="qg", floor=False):
     from matplotlib.figure import Figure
 
     fig = Figure(figsize=PAGE)
@@ -300,14 +300,23 @@ def _table_page(case, state):
     from .analysis import above_ground_target
 
     target, moved = above_ground_target(case, target, state.time_index, state.member)
-    table = state.attribution(target)
+    if balance == "nonlinear":  # the session's pieces inverted in nonlinear balance
+        from .analysis import analyse
+
+        _, table, _ = analyse(case, state.time_index, state.member, list(state.pieces), target,
+                              state.reference, balance="nonlinear", floor=floor)
+        extra = [n for n in table.attrs.get("notes", []) if n.startswith("Floor remedy")]
+    else:
+        table, extra = state.attribution(target), []
+    from .analysis import BALANCE_LABELS
     from .inversion.pieces import format_share
-    note = "\n".join(n for n in (note, moved, *table.attrs.get("share_notes", [])) if n) or None
+    note = "\n".join(n for n in (note, moved, *table.attrs.get("share_notes", []), *extra) if n) or None
     lon, lat, p = target
     valid = str(np.datetime_as_string(np.datetime64(case.times[state.time_index], "m"))).replace(
         "T", " ") + " UTC"
     y = _text_page(fig, y, f"Balanced fields of each piece at {_fmt_lonlat(lon, lat)}, {p:g} hPa; "
-                          f"valid {valid}; reference state {state.reference}", size=10.5)
+                          f"valid {valid}; reference state {state.reference}; {BALANCE_LABELS[balance]}",
+                   size=10.5)
     if note:
         y = _text_page(fig, y, note, size=9.5, color="#8a3b00")
     cols = ["piece", "Z' (m)", "u (m s-1)", "v (m s-1)", "speed (m s-1)",
@@ -333,17 +342,22 @@ def _table_page(case, state):
         if r == 0:
             cell.set_text_props(fontweight="bold")
             cell.set_facecolor("#e8eef6")
-        elif rows[r - 1][0] in ("sum of pieces", "full inversion"):
+        elif rows[r - 1][0] in ("sum of pieces", "full inversion", "nonlinear remainder"):
             cell.set_facecolor("#f2f2f2")
             cell.set_text_props(fontweight="bold")
     y = y - 0.05 - h
     sentences = piece_summaries(table, target)
     y = _text_page(fig, y, "Summary", size=12, weight="bold")
     y = _text_page(fig, y, "\n".join("- " + s for s in sentences), size=10.5)
-    _text_page(fig, y - 0.01,
-               "Shares are of the balanced (QG) height anomaly of the full inversion at the "
-               "target; pieces add up exactly because QG inversion is linear. Wind speeds do not "
-               "add (each row is the speed of its own wind).", size=8.5, color="#444444")
+    if balance == "nonlinear":
+        how = ("Shares are of the nonlinear-balance height anomaly of the full inversion at the target; "
+               "each piece is linearised about the full balanced state and the 'nonlinear remainder' "
+               "row (full minus the sum of the linear pieces) closes the sum.")
+    else:
+        how = ("Shares are of the balanced (QG) height anomaly of the full inversion at the "
+               "target; pieces add up exactly because QG inversion is linear.")
+    _text_page(fig, y - 0.01, how + " Wind speeds do not add (each row is the speed of its own wind).",
+               size=8.5, color="#444444")
     _caution_band(fig, inv)
     return fig, sentences
 
@@ -407,7 +421,7 @@ def _notes(caught) -> list[str]:
     return out
 
 
-def briefing_figures(case, state, progress=None, tendency=False) -> list:
+def briefing_figures(case, state, progress=None, tendency=False, balance="qg", floor=False) -> list:
     """The briefing's pages as matplotlib Figures (title, maps, sections, attribution).
 
     ``progress``: optional callable, called once per page made (the command line's bar).
@@ -441,7 +455,7 @@ def briefing_figures(case, state, progress=None, tendency=False) -> list:
             pages.append(static.draw_section(static.state_section_data(state, k), settings,
                                              page_size=PAGE))
             tick()
-        fig, _ = _table_page(case, state)
+        fig, _ = _table_page(case, state, balance=balance, floor=floor)
         pages.append(fig)
         if tendency:  # the QG tendency attribution matrix (pvwb brief --tendency)
             pages.append(_tendency_page(case, state))
@@ -449,13 +463,15 @@ def briefing_figures(case, state, progress=None, tendency=False) -> list:
 
 
 def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: bool = False,
-                  progress=None, tendency: bool = False) -> Path:
+                  progress=None, tendency: bool = False, balance: str = "qg", floor: bool = False) -> Path:
     """Write the briefing PDF of ``case`` with a State (or a session file/dict) to ``path``.
 
     Refuses (ExportError) an existing ``path`` unless ``overwrite=True``; the file
     appears only when complete. Returns the path. ``progress``: optional callable, called
     once per page made and once per page written. ``tendency``: add the QG tendency
-    attribution page (:mod:`workbench.tendency`).
+    attribution page (:mod:`workbench.tendency`). ``balance``: ``"qg"`` (the session's QG
+    attribution) or ``"nonlinear"`` (the session's pieces in nonlinear balance, ``floor`` the
+    floor remedy); the attribution page names the balance.
     """
     from matplotlib.backends.backend_pdf import PdfPages
     import matplotlib
@@ -470,7 +486,8 @@ def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: b
             "it, or choose another name"
         )
     with matplotlib.rc_context({"pdf.fonttype": 42}):
-        pages = briefing_figures(case, state, progress=progress, tendency=tendency)
+        pages = briefing_figures(case, state, progress=progress, tendency=tendency, balance=balance,
+                                 floor=floor)
         with atomic_target(path, overwrite=overwrite, error=ExportError, what="briefing") as tmp:
             meta = {
                 "Title": f"PV diagnosis briefing: {case.name}",
@@ -512,7 +529,13 @@ def main(argv=None) -> int:
                          "body checksum); without this it is refused")
     ap.add_argument("--quiet", action="store_true", help="no progress bar")
     ap.add_argument("--tendency", action="store_true", help="add the QG tendency attribution page")
+    ap.add_argument("--balance", choices=["qg", "nonlinear"], default="qg",
+                    help="balance of the attribution table: qg (default) or nonlinear")
+    ap.add_argument("--floor", action="store_true",
+                    help="nonlinear balance: accept the floor remedy where PV or absolute vorticity has the wrong sign")
     args = ap.parse_args(argv)
+    if args.floor and args.balance != "nonlinear":
+        ap.error("--floor applies to --balance nonlinear only")
     try:
         from workbench.analysis import default_case_path
         from workbench.io import open_case
@@ -529,7 +552,8 @@ def main(argv=None) -> int:
         bar = cli.progress(desc="briefing", unit="page", enabled=False if args.quiet else None)
         try:
             out = make_briefing(case, session, args.output, overwrite=args.overwrite,
-                                progress=lambda: bar.update(1), tendency=args.tendency)
+                                progress=lambda: bar.update(1), tendency=args.tendency,
+                                balance=args.balance, floor=args.floor)
         finally:
             bar.close()
     except WorkbenchError as exc:
