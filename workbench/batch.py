@@ -54,7 +54,7 @@ def _reference(path, options, reference):
     return reference, case.reference(reference)
 
 
-def _one(path, ti, mi, pieces, target, ref, options, store=None):
+def _one(path, ti, mi, pieces, target, ref, options, store=None, balance="qg", floor=False):
     from workbench.analysis import analyse
     from workbench.inversion.pieces import Piece
 
@@ -63,7 +63,7 @@ def _one(path, ti, mi, pieces, target, ref, options, store=None):
         warnings.simplefilter("always")
         case = _worker_case(path, options, ref_name, ref_ds)
         plist = None if pieces is None else [Piece.from_dict(p) for p in pieces]
-        _, table, tgt = analyse(case, ti, mi, plist, target, ref_name)
+        _, table, tgt = analyse(case, ti, mi, plist, target, ref_name, balance=balance, floor=floor)
     notes = list(dict.fromkeys(str(w.message) for w in caught))
     if store is not None:
         import zarr
@@ -128,7 +128,7 @@ def _from_store(g, case, jobs):
 
 
 def run_batch(path, *, pieces=None, times=None, members=None, target=None, reference=None,
-              client=None, options=None, progress=False, store=None) -> pd.DataFrame:
+              client=None, options=None, progress=False, store=None, balance="qg", floor=False) -> pd.DataFrame:
     """Attribution tables for every (time, member) of the case at ``path``.
 
     Parameters
@@ -184,13 +184,14 @@ def run_batch(path, *, pieces=None, times=None, members=None, target=None, refer
         if client is None:
             ref = (reference, case.reference(reference)) if todo else (reference, None)
             for ti, mi in todo:
-                results[(ti, mi)] = _one(path, ti, mi, pieces, target, ref, options, store)
+                results[(ti, mi)] = _one(path, ti, mi, pieces, target, ref, options, store, balance, floor)
                 bar.update(1)
         elif todo:
             import time
 
             ref_future = client.submit(_reference, path, options, reference, pure=False)
-            futures = [client.submit(_one, path, ti, mi, pieces, target, ref_future, options, store, pure=False)
+            futures = [client.submit(_one, path, ti, mi, pieces, target, ref_future, options, store, balance, floor,
+                                     pure=False)
                        for ti, mi in todo]
             start = bar.n
             while True:  # polls the futures' state (no extra tasks left behind by an interrupt)
@@ -275,7 +276,14 @@ def main(argv=None):
                         "as it finishes; a rerun with the same settings skips the finished ones")
     parser.add_argument("--overwrite", action="store_true")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
+    parser.add_argument("--balance", choices=["qg", "nonlinear"], default="qg",
+                        help="qg (default) or nonlinear balance (adds the 'nonlinear remainder' row)")
+    parser.add_argument("--floor", action="store_true", help="nonlinear balance: accept the floor remedy")
     args = parser.parse_args(argv)
+    if args.floor and args.balance != "nonlinear":
+        parser.error("--floor applies to --balance nonlinear only")
+    if args.store and args.balance != "qg":
+        parser.error("--store keeps QG runs only; leave out --store for --balance nonlinear")
     from .analysis import _parse_target, load_pieces
 
     target = _parse_target(args.target)
@@ -304,7 +312,7 @@ def main(argv=None):
     try:
         table = run_batch(path, pieces=pieces, target=target, reference=args.reference,
                           client=client, options=options, progress=not args.quiet and cli.progress_enabled(),
-                          store=args.store)
+                          store=args.store, balance=args.balance, floor=args.floor)
     finally:
         if client is not None:
             client.close()
