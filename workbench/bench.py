@@ -186,6 +186,10 @@ def _table(records):
             notes.append(f"setup {r['setup_s']:.3g} s")
         if r.get("fast_speedup") is not None:
             notes.append(f"fast solver {r['fast_speedup']:.0f}x faster")
+        if r.get("qg_solves") is not None:  # nonlinear balance (workbench.inversion.nonlinear.bench_nonlinear)
+            notes.append(f"{r['qg_solves']:.0f} QG solves, Newton {r['newton_iterations']}, GMRES "
+                         f"{r['gmres_iterations']}, residual {r['final_relative_residual']:.1e}, "
+                         f"first guess {r['first_guess']}")
         if r.get("peak_mem_mb") is not None:
             notes.append(f"peak {r['peak_mem_mb']:.0f} MB = {r['mem_ratio']:.1f} fields")
         err = "" if r["max_rel_error"] is None else f"{r['max_rel_error']:.1e}"
@@ -194,7 +198,7 @@ def _table(records):
     return "\n".join(lines)
 
 
-def run(json_output=False, grids=None, references=True, repeat=9, stream=None, tendency=False):
+def run(json_output=False, grids=None, references=True, repeat=9, stream=None, tendency=False, nonlinear=False):
     """Run the benchmarks; print a table (or one JSON list) and return the list of records.
 
     ``grids``: names from :data:`GRIDS` (default all); ``references``: also time spsolve and
@@ -212,6 +216,14 @@ def run(json_output=False, grids=None, references=True, repeat=9, stream=None, t
             raise InputError(f"bench: unknown grid {name!r}; choose from {', '.join(GRIDS)}.")
         records += bench_grid(name, GRIDS[name], repeat=repeat, with_references=references and name == "1deg",
                               log=log)
+    if nonlinear:  # nonlinear balance vs one QG solve, method "qg_balance" / "nonlinear_balance"
+        from workbench.inversion.nonlinear import bench_nonlinear
+
+        for name in names:
+            for r in bench_nonlinear(name, GRIDS[name], repeat=min(repeat, 3), log=log):
+                r.setdefault("ratio_to_fft", float("nan"))
+                r.setdefault("max_rel_error", None)
+                records.append(r)
     if tendency:  # tendency attribution and what-if records (workbench.whatif.bench_records)
         from workbench.whatif import bench_records
 
@@ -235,9 +247,11 @@ def main(argv=None):
     ap.add_argument("--repeat", type=count(1, 1000, "--repeat"), default=9,
                     help="repeats for the medians, 1..1000 (default 9)")
     ap.add_argument("--tendency", action="store_true", help="also time the tendency attribution and a 36 h what-if")
+    ap.add_argument("--nonlinear", action="store_true",
+                    help="also time the nonlinear-balance inversion against one QG solve (records by balance)")
     args = ap.parse_args(argv)
     run(json_output=args.json, grids=args.grid, references=not args.no_references, repeat=args.repeat,
-        tendency=args.tendency)
+        tendency=args.tendency, nonlinear=args.nonlinear)
     return 0
 
 
