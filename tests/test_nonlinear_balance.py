@@ -250,3 +250,35 @@ def sample_case_small():
     full = workbench.open_case(default_case_path())
     d = full.data.isel(latitude=slice(10, 40), longitude=slice(10, 50), pressure=slice(0, None, 2))
     return Case(d.load(), name="invented sample (cropped)")
+
+
+def test_precomputed_jacobian_is_the_tangent_linear_of_the_residual():
+    # the Jacobian product equals the directional derivative of the residual (central finite
+    # difference, common practice; the system is quadratic so the central difference is exact
+    # up to round-off)
+    g, q, tb, tt, Phi, psi = nl.bench_problem((6, 11, 13), amplitude=0.5)
+    rng = np.random.default_rng(5)
+    a = rng.standard_normal(g.interior_shape) * 50.0
+    b = rng.standard_normal(g.interior_shape) * 5.0e5
+    d = nl._terms(g, Phi, psi, tb, tt)
+    j1, j2 = nl._Jacobian(g, d, g.fi + d["zeta"], None).apply(a, b)
+    h = 1e-3
+    P1, S1, P2, S2 = Phi.copy(), psi.copy(), Phi.copy(), psi.copy()
+    P1[:, 1:-1, 1:-1] += h * a
+    S1[:, 1:-1, 1:-1] += h * b
+    P2[:, 1:-1, 1:-1] -= h * a
+    S2[:, 1:-1, 1:-1] -= h * b
+    rp, rm = nl.balance_residual(g, P1, S1, q, tb, tt), nl.balance_residual(g, P2, S2, q, tb, tt)
+    for j, x, y in ((j1, rp[0], rm[0]), (j2, rp[1], rm[1])):
+        fd = (x - y) / (2 * h)
+        assert np.abs(j - fd).max() <= 1e-7 * np.abs(fd).max()
+
+
+def test_floored_point_on_model_top_is_refused_clearly():
+    g, q, tb, tt, Phi, psi = nl.bench_problem((7, 13, 15), amplitude=0.5)
+    q = q.copy()
+    q[-1, 6, 7] = -0.05 * q[-1, 6, 7]
+    res = nl.solve_balance(g, q, tb, tt, Phi, psi, guess=(Phi, psi), floor=True)
+    assert not res.converged and res.n_pv_floored == 1
+    with pytest.raises(DomainError, match="model top level"):
+        nl._require_converged(res, "full inversion")
