@@ -222,3 +222,47 @@ def test_bad_input(advected):
     # round trip through the session form
     p = _blob_piece("anomaly")
     assert Piece.from_dict(p.to_dict()) == p
+
+
+def test_track_command_table_and_plot(tmp_path, capsys):
+    import json
+
+    import pandas as pd
+
+    from workbench.cli import main as pvwb
+
+    blobs = [[(-16.0 + STEP_DEG * k, 45.0, 350.0, AMP, 5.0)] for k in range(3)]
+    data, ref = blob_dataset(blobs)
+    data.to_netcdf(tmp_path / "case.nc")
+    ref.to_netcdf(tmp_path / "ref.nc")
+    (tmp_path / "pieces.json").write_text(json.dumps([_blob_piece("anomaly").to_dict()]))
+    args = ["--quiet", "track", str(tmp_path / "case.nc"), "--pieces", str(tmp_path / "pieces.json"),
+            "--reference", str(tmp_path / "ref.nc"), "--target", "centroid",
+            "-o", str(tmp_path / "shares.csv"), "--plot", str(tmp_path / "shares.png")]
+    assert pvwb(args) == 0
+    table = pd.read_csv(tmp_path / "shares.csv")
+    blob = table[table.piece == "blob"]
+    assert blob.status.tolist() == ["start", "tracked", "tracked"]
+    assert np.ptp(blob.height_share_pct) < 1.0
+    assert (tmp_path / "shares.png").stat().st_size > 10_000
+    assert "height share" in capsys.readouterr().out
+    assert pvwb(args) == 2  # exists, no --overwrite
+    assert "already exists" in capsys.readouterr().err
+    assert pvwb(["track", str(tmp_path / "case.nc"), "--pieces", str(tmp_path / "pieces.json"),
+                 "--target", "middle"]) == 2
+
+
+def test_tracked_shares_figure(advected):
+    from workbench.views.static import figure_text
+    from workbench.views.tracks import tracked_shares_figure
+
+    case, ref, n = advected
+    table = tracked_shares(case, [_blob_piece("anomaly"), Piece(
+        "blob fixed", layer=(600.0, 100.0), threshold=0.5, polygon=_box(-16.0, 45.0))],
+        target=(-10.0, 45.0, 300.0), reference=ref)
+    fig = tracked_shares_figure(table)
+    ax = fig.axes[0]
+    assert len([ln for ln in ax.get_lines() if len(ln.get_xdata()) == n]) == 2  # one line per piece
+    assert "follows its anomaly" in figure_text(fig)
+    with pytest.raises(InputError, match="no piece 'nope'"):
+        tracked_shares_figure(table, pieces=["nope"])

@@ -40,6 +40,8 @@ commands:
   bench [--json]            inversion benchmarks (solver vs FFT, spsolve, PyAMG)
   explain CASE --time T     QG tendency attribution: which piece's wind moves which piece's PV
   whatif CASE --piece NAME  QG what-if experiment (scale/remove/shift a piece), not a forecast
+  track CASE --pieces FILE  shares over time of pieces that follow their anomaly (table, plot)
+  animate CASE -o loop.gif  animated map loop over the case's times (GIF; MP4 with ffmpeg)
 
 global options (before the command):
   --debug                   show the full traceback of an error (also PVWB_DEBUG=1)
@@ -49,7 +51,8 @@ Run `pvwb <command> --help` for a command's options. CASE defaults to the bundle
 invented sample storm where a command accepts it."""
 
 COMMANDS = {"info": "analysis", "invert": "analysis", "brief": "brief", "serve": "app", "batch": "batch",
-            "sample": "sample", "bench": "bench", "explain": "tendency", "whatif": "whatif"}
+            "sample": "sample", "bench": "bench", "explain": "tendency", "whatif": "whatif",
+            "track": "track_cli", "animate": "animate"}
 
 #: set by ``pvwb --quiet`` (or a command's own ``--quiet``): no progress bars
 QUIET = False

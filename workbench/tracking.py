@@ -16,10 +16,11 @@ forwards and backwards:
 3. **Overlap**: the piece's footprint at the previous time (its mask there: outline x region
    field) against each region at the new time, measured as the area-weighted number of grid
    points they share (weight cos(latitude), summed over levels for 3-D regions).
-4. **Choice**: the region with the largest overlap is the piece at the new time. More than one
-   overlapping region = **split** (the others are reported with their overlaps). The chosen
-   region also covering points at the previous time that belonged to other regions of the field
-   (not the piece's own) = **merge** (reported). No overlapping region = **lost**: tracking stops
+4. **Choice**: the region with the largest overlap is the piece at the new time. Another
+   region overlapping at least ``MIN_FRACTION`` (5 %) as much = **split** (the others are
+   reported with their overlaps; smaller fragments are counted in the note). The chosen region
+   covering, at the previous time, points of other regions of the field (not the piece's own)
+   that make at least 5 % of its area there = **merge** (reported). No overlapping region = **lost**: tracking stops
    in that direction and the piece is left out of the later times (its forcing goes to the
    remainder), said in the note.
 5. **Outline**: the region's column footprint (any level) with its holes filled
@@ -48,6 +49,9 @@ from .errors import InputError, PieceError
 __all__ = ["TrackStep", "track_piece", "track_pieces", "tracked_shares", "region_field", "outline_polygon",
            "TARGET_RULES"]
 
+#: a second overlapping region counts as a split (and regions joined as a merge) from this fraction
+#: of the kept overlap (of the new region's area) on; smaller fragments are only counted in the note
+MIN_FRACTION = 0.05
 #: the target rules of :func:`tracked_shares` given by name
 TARGET_RULES = ("storm centre", "centroid")
 
@@ -239,21 +243,26 @@ def _track(case, piece, start, times, member=None, reference=None):
             best_ov, best_label = hit[0]
             region = labels == best_label
             notes, status = [], []
-            if len(hit) > 1:
+            parts = [ov for ov, _ in hit[1:] if ov >= MIN_FRACTION * best_ov]
+            small = len(hit) - 1 - len(parts)
+            if parts:
                 status.append("split")
-                others = ", ".join(f"{ov / best_ov:.0%}" for ov, _ in hit[1:6])
-                notes.append(f"split into {len(hit)} regions: kept the one with the largest overlap; the other "
-                             f"{len(hit) - 1} overlap {others} as much")
+                others = ", ".join(f"{ov / best_ov:.0%}" for ov in parts[:5])
+                notes.append(f"split into {len(parts) + 1} regions: kept the one with the largest overlap; the "
+                             f"other {len(parts)} overlap {others} as much")
+            if small:
+                notes.append(f"{small} fragment(s) overlapping less than {MIN_FRACTION:.0%} as much left aside")
             # merge: the new region covers, at the previous time, regions of the field that were not the piece's
             plabels, _ = _label(prev_field)
             own = set(np.unique(plabels[prev.region & (plabels > 0)]).tolist())
             covered = np.unique(plabels[region & (plabels > 0)])
             merged = [int(c) for c in covered if int(c) not in own]
             if merged:
-                status.append("merged")
                 share = float(np.sum(w * (region & np.isin(plabels, merged)))) / float(np.sum(w * region))
-                notes.append(f"merged with {len(merged)} other region(s) of {_iso(case, prev.time)} "
-                             f"({share:.0%} of the new region's area there)")
+                if share >= MIN_FRACTION:
+                    status.append("merged")
+                    notes.append(f"merged with {len(merged)} other region(s) of {_iso(case, prev.time)} "
+                                 f"({share:.0%} of the new region's area there)")
             poly = outline_polygon(region, a["longitude"].values, a["latitude"].values)
             new_piece = dataclasses.replace(piece, polygon=poly)
             foot = _footprint(new_piece, a, field)
