@@ -12,12 +12,18 @@ Pages, in order:
 5. the attribution table at the target point and one generated sentence per
    piece on its share of the balanced height anomaly there.
 
+The title page can carry a headline, a free-text summary box and the forecaster's name and
+office (plain text, never interpreted as markup); ``pages=`` chooses the pages after the
+title page and their order (:data:`PAGES`).
+
 Every page carries the caution line. The PDF is written to a temporary file
 and renamed (never overwritten without ``overwrite=True``).
 
 Command line (wired to ``pvwb brief``)::
 
-    pvwb brief CASE --session FILE -o brief.pdf [--overwrite]
+    pvwb brief CASE --session FILE -o brief.pdf [--overwrite] [--headline TEXT]
+        [--summary TEXT | --summary-file FILE] [--author NAME] [--office NAME]
+        [--pages map,attribution,...]
 """
 from __future__ import annotations
 
@@ -32,7 +38,8 @@ import numpy as np
 from workbench.errors import ExportError, InputError, WorkbenchError
 from workbench.export import CAUTION, atomic_target, invented_label, package_version, utc_now_iso
 
-__all__ = ["make_briefing", "briefing_figures", "piece_summaries", "main"]
+__all__ = ["make_briefing", "briefing_figures", "briefing_texts", "briefing_pages", "PAGES", "piece_summaries",
+           "main"]
 
 PAGE = (11.69, 8.27)  # A4 landscape, inches
 
@@ -193,17 +200,22 @@ def _default_target(state):
         "height anomaly of the full inversion at the overlay level.")
 
 
-def _text_page(fig, y, text, size=10, weight="normal", width=None, color="black", x=0.06):
-    """Write wrapped text at height y (figure fraction); return the next free y."""
+def _text_page(fig, y, text, size=10, weight="normal", width=None, color="black", x=0.06, plain=False):
+    """Write wrapped text at height y (figure fraction); return the next free y. ``plain``: the
+    text is shown as it is (no mathtext, no TeX), for the user's own texts."""
     if width is None:  # characters per line that fit the page at this font size
         width = int((1.0 - 2 * x) * fig.get_figwidth() * 72.0 / (0.56 * size))
     lines = []
     for para in str(text).split("\n"):
         lines.extend(textwrap.wrap(para, width=width) or [""])
+    extra = dict(usetex=False, parse_math=False) if plain else {}
     for line in lines:
-        fig.text(x, y, line, fontsize=size, fontweight=weight, va="top", ha="left", color=color)
+        fig.text(x, y, line, fontsize=size, fontweight=weight, va="top", ha="left", color=color, **extra)
         y -= size * 1.45 / 72.0 / fig.get_figheight()
     return y
+
+
+_write = _text_page
 
 
 def _caution_band(fig, invented):
@@ -212,8 +224,92 @@ def _caution_band(fig, invented):
     _caution(fig, None, invented)
 
 
-def _title_page(case, state, generated, notes=()):
+#: the pages a briefing can hold after the title page, in their default order
+PAGES = ("map", "tropopause", "sections", "attribution", "tendency")
+#: the most wrapped lines of the summary box on the title page
+SUMMARY_MAX_LINES = 10
+_SUMMARY_SIZE = 10.5
+
+
+def _plain_text(value, what, max_chars, one_line=True):
+    """A user's text for the title page: a str, at most ``max_chars`` characters, no control
+    characters (newlines only where ``one_line`` is false); InputError otherwise."""
+    if value is None:
+        return None
+    if not isinstance(value, str):
+        raise InputError(f"briefing {what} must be text, not {type(value).__name__}")
+    text = value.replace("\r\n", "\n").replace("\t", " ").strip()
+    if len(text) > max_chars:
+        raise InputError(f"briefing {what} has {len(text)} characters; at most {max_chars} fit, shorten it")
+    bad = [c for c in text if (ord(c) < 32 and c not in ("\n" if not one_line else "")) or ord(c) == 127]
+    if bad:
+        kind = "a line break" if "\n" in bad else f"the control character {ord(bad[0]):#04x}"
+        raise InputError(f"briefing {what} contains {kind}; "
+                         + ("give it on one line" if one_line else "remove it"))
+    return text or None
+
+
+def _summary_lines(summary, fig_width=PAGE[0]):
+    width = int((1.0 - 2 * 0.08) * fig_width * 72.0 / (0.56 * _SUMMARY_SIZE))
+    lines = []
+    for para in summary.split("\n"):
+        lines.extend(textwrap.wrap(para, width=width) or [""])
+    return lines
+
+
+def briefing_texts(headline=None, summary=None, author=None, office=None) -> dict:
+    """The title page's user texts checked (InputError naming the field and the fix): headline
+    (one line, at most 160 characters), summary (at most 1500 characters and
+    :data:`SUMMARY_MAX_LINES` wrapped lines), forecaster name and office (one line, 120 each)."""
+    out = dict(headline=_plain_text(headline, "headline", 160),
+               summary=_plain_text(summary, "summary", 1500, one_line=False),
+               author=_plain_text(author, "forecaster name", 120),
+               office=_plain_text(office, "office", 120))
+    if out["summary"]:
+        n = len(_summary_lines(out["summary"]))
+        if n > SUMMARY_MAX_LINES:
+            raise InputError(f"briefing summary fills {n} lines on the title page; at most {SUMMARY_MAX_LINES} "
+                             "fit, shorten it")
+    return out
+
+
+def briefing_pages(pages=None, tendency=False) -> list:
+    """The pages after the title page, in order: ``pages`` (names of :data:`PAGES`, as a list or
+    a comma-separated text) or the default order (the tendency page only with ``tendency``)."""
+    if pages is None:
+        return [p for p in PAGES if p != "tendency" or tendency]
+    if isinstance(pages, str):
+        pages = [p.strip() for p in pages.split(",") if p.strip()]
+    pages = list(pages)
+    unknown = [p for p in pages if p not in PAGES]
+    if unknown:
+        raise InputError(f"briefing page {unknown[0]!r} is unknown; choose from {', '.join(PAGES)}")
+    twice = sorted({p for p in pages if pages.count(p) > 1})
+    if twice:
+        raise InputError(f"briefing page {twice[0]!r} is listed twice; give each page once")
+    return pages
+
+
+def _title_page(case, state, generated, notes=(), texts=None):
+    """The title page; its type is made smaller (down to 60 %) until everything sits above the
+    caution box (a long summary and many pieces fill the page)."""
+    for scale in (1.0, 0.9, 0.8, 0.7, 0.6):
+        fig, lowest = _title_page_at(case, state, generated, notes, texts, scale)
+        if lowest >= 0.19:
+            break
+    return fig
+
+
+def _title_page_at(case, state, generated, notes, texts, scale):
     from matplotlib.figure import Figure
+
+    texts = texts or {}
+    low = [1.0]
+
+    def _text_page(fig, y, text, size=10, **kw):  # the module's writer, at this scale
+        y = _write(fig, y, text, size=size * scale, **kw)
+        low[0] = min(low[0], y)
+        return y
 
     fig = Figure(figsize=PAGE)
     inv = invented_label(case)
@@ -222,6 +318,23 @@ def _title_page(case, state, generated, notes=()):
     y = _text_page(fig, y - 0.01, str(case.name), size=16, weight="bold")
     if inv:
         y = _text_page(fig, y - 0.01, inv, size=13, weight="bold", color="#b03a00")
+    if texts.get("headline"):
+        y = _text_page(fig, y - 0.01, texts["headline"], size=15, weight="bold", color="#1f3a5f", plain=True)
+    who = ", ".join(t for t in (texts.get("author"), texts.get("office")) if t)
+    if who:
+        y = _text_page(fig, y - 0.005, f"Forecaster: {who}", size=10.5, plain=True)
+    if texts.get("summary"):
+        lines = _summary_lines(texts["summary"], PAGE[0] / scale)
+        step = scale * _SUMMARY_SIZE * 1.45 / 72.0 / PAGE[1]
+        top, height = y - 0.015, step * len(lines) + 0.025
+        from matplotlib.patches import FancyBboxPatch
+
+        fig.patches.append(FancyBboxPatch((0.06, top - height), 0.88, height, boxstyle="round,pad=0.004",
+                                          transform=fig.transFigure, fc="#f4f7fb", ec="#1f3a5f", lw=1.0))
+        fig.text(0.075, top - 0.004, "Summary", fontsize=8 * scale, color="#1f3a5f", va="bottom", ha="left",
+                 fontweight="bold")
+        _text_page(fig, top - 0.012, "\n".join(lines), size=_SUMMARY_SIZE, x=0.08, width=10_000, plain=True)
+        y = top - height - 0.005
     t = case.times
     valid = str(np.datetime_as_string(np.datetime64(case.times[state.time_index], "m"))).replace(
         "T", " ") + " UTC"
@@ -264,8 +377,8 @@ def _title_page(case, state, generated, notes=()):
             for k, s in enumerate(state.sections)), size=10)
     data_notes = [n for n in getattr(case, "notes", []) if n]
     if data_notes:  # right-hand column, beside the pieces and sections
-        yr = _text_page(fig, y_cols, "How the data were read", size=12, weight="bold", x=0.52, width=60)
-        width = int(0.44 * fig.get_figwidth() * 72.0 / (0.56 * 8.5))
+        yr = _text_page(fig, y_cols, "How the data were read", size=12, weight="bold", x=0.52, width=int(60 / scale))
+        width = int(0.44 * fig.get_figwidth() * 72.0 / (0.56 * 8.5 * scale))
         for n in data_notes[:10]:
             if yr < 0.24:
                 break
@@ -276,7 +389,7 @@ def _title_page(case, state, generated, notes=()):
     fig.text(0.5, 0.11, CAUTION, ha="center", va="bottom", fontsize=11, wrap=True,
              fontweight="bold",
              bbox=dict(boxstyle="round,pad=0.6", fc="#fff8dc", ec="#8a6d00", lw=1.2))
-    return fig
+    return fig, low[0]
 
 
 def _table_page(case, state, balance="qg", floor=False):
@@ -421,10 +534,13 @@ def _notes(caught) -> list[str]:
     return out
 
 
-def briefing_figures(case, state, progress=None, tendency=False, balance="qg", floor=False) -> list:
+def briefing_figures(case, state, progress=None, tendency=False, balance="qg", floor=False, pages=None,
+                     texts=None) -> list:
     """The briefing's pages as matplotlib Figures (title, maps, sections, attribution).
 
     ``progress``: optional callable, called once per page made (the command line's bar).
+    ``pages``: which pages follow the title page and in what order (:func:`briefing_pages`);
+    ``texts``: the title page's headline, summary, forecaster and office (:func:`briefing_texts`).
 
     Warnings the package raises while computing (e.g. a domain where constant-f0 QG is
     rough) are listed on the title page under "Notes from the computation"."""
@@ -434,36 +550,42 @@ def briefing_figures(case, state, progress=None, tendency=False, balance="qg", f
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
+        order = briefing_pages(pages, tendency)
         pages = []
         view = static.state_view(state)
         settings = dataclasses.replace(view["settings"], width_in=PAGE[0])
         view["settings"] = settings
         md_kwargs = {k: v for k, v in view.items() if k not in ("case", "sections")}
-        pages.append(static.draw_map(static.map_data(case, **md_kwargs), settings,
-                                     page_size=PAGE))
         tick = progress or (lambda: None)
-        tick()
-        if view["surface"] != "tropopause":
-            trop = dict(md_kwargs, field="potential_temperature", surface="tropopause")
-            trop_settings = dataclasses.replace(settings, contour_field=None, levels=None,
-                                                colour_map=None)
-            trop["settings"] = trop_settings
-            pages.append(static.draw_map(static.map_data(case, **trop), trop_settings,
-                                         page_size=PAGE))
-            tick()
-        for k in range(len(state.sections)):
-            pages.append(static.draw_section(static.state_section_data(state, k), settings,
+        for name in order:
+            if name == "map":
+                pages.append(static.draw_map(static.map_data(case, **md_kwargs), settings,
                                              page_size=PAGE))
-            tick()
-        fig, _ = _table_page(case, state, balance=balance, floor=floor)
-        pages.append(fig)
-        if tendency:  # the QG tendency attribution matrix (pvwb brief --tendency)
-            pages.append(_tendency_page(case, state))
-    return [_title_page(case, state, utc_now_iso(), _notes(caught))] + pages
+                tick()
+            elif name == "tropopause" and view["surface"] != "tropopause":
+                trop = dict(md_kwargs, field="potential_temperature", surface="tropopause")
+                trop_settings = dataclasses.replace(settings, contour_field=None, levels=None,
+                                                    colour_map=None)
+                trop["settings"] = trop_settings
+                pages.append(static.draw_map(static.map_data(case, **trop), trop_settings,
+                                             page_size=PAGE))
+                tick()
+            elif name == "sections":
+                for k in range(len(state.sections)):
+                    pages.append(static.draw_section(static.state_section_data(state, k), settings,
+                                                     page_size=PAGE))
+                    tick()
+            elif name == "attribution":
+                fig, _ = _table_page(case, state, balance=balance, floor=floor)
+                pages.append(fig)
+            elif name == "tendency":  # the QG tendency attribution matrix (pvwb brief --tendency)
+                pages.append(_tendency_page(case, state))
+    return [_title_page(case, state, utc_now_iso(), _notes(caught), texts)] + pages
 
 
 def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: bool = False,
-                  progress=None, tendency: bool = False, balance: str = "qg", floor: bool = False) -> Path:
+                  progress=None, tendency: bool = False, balance: str = "qg", floor: bool = False, *,
+                  headline=None, summary=None, author=None, office=None, pages=None) -> Path:
     """Write the briefing PDF of ``case`` with a State (or a session file/dict) to ``path``.
 
     Refuses (ExportError) an existing ``path`` unless ``overwrite=True``; the file
@@ -472,6 +594,12 @@ def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: b
     attribution page (:mod:`workbench.tendency`). ``balance``: ``"qg"`` (the session's QG
     attribution) or ``"nonlinear"`` (the session's pieces in nonlinear balance, ``floor`` the
     floor remedy); the attribution page names the balance.
+
+    ``headline`` (one line), ``summary`` (free text in a box), ``author`` and ``office`` (the
+    forecaster line) go on the title page as plain text (no markup: ``$`` and ``\\`` are shown as
+    they are); ``pages``: names of :data:`PAGES` after the title page, in that order (default:
+    map, tropopause, sections, attribution, and tendency with ``tendency=True``). Bad texts or
+    page names raise InputError before any work.
     """
     from matplotlib.backends.backend_pdf import PdfPages
     import matplotlib
@@ -479,6 +607,8 @@ def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: b
     path = Path(path)
     if path.suffix.lower() != ".pdf":
         raise ExportError(f"briefing file {path.name} must end in .pdf")
+    texts = briefing_texts(headline, summary, author, office)
+    order = briefing_pages(pages, tendency)
     state = _state_of(case, state_or_session)
     if path.exists() and not overwrite:  # refuse before the work, not after
         raise ExportError(
@@ -487,11 +617,11 @@ def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: b
         )
     with matplotlib.rc_context({"pdf.fonttype": 42}):
         pages = briefing_figures(case, state, progress=progress, tendency=tendency, balance=balance,
-                                 floor=floor)
+                                 floor=floor, pages=order, texts=texts)
         with atomic_target(path, overwrite=overwrite, error=ExportError, what="briefing") as tmp:
             meta = {
                 "Title": f"PV diagnosis briefing: {case.name}",
-                "Author": "PV Workbench",
+                "Author": ", ".join(t for t in (texts["author"], texts["office"]) if t) or "PV Workbench",
                 "Subject": CAUTION,
                 "Creator": f"PV Workbench {package_version()}",
                 "Keywords": "potential vorticity; piecewise inversion; diagnostic analysis",
@@ -533,10 +663,28 @@ def main(argv=None) -> int:
                     help="balance of the attribution table: qg (default) or nonlinear")
     ap.add_argument("--floor", action="store_true",
                     help="nonlinear balance: accept the floor remedy where PV or absolute vorticity has the wrong sign")
+    ap.add_argument("--headline", help="one-line headline on the title page (plain text)")
+    text = ap.add_mutually_exclusive_group()
+    text.add_argument("--summary", help="free-text summary in a box on the title page (plain text)")
+    text.add_argument("--summary-file", metavar="FILE", help="read the summary from a UTF-8 text file")
+    ap.add_argument("--author", help="forecaster's name on the title page")
+    ap.add_argument("--office", help="forecaster's office on the title page")
+    ap.add_argument("--pages", metavar="LIST",
+                    help=f"pages after the title page, in order, comma-separated from {','.join(PAGES)} "
+                         "(default: all but tendency; tendency with --tendency)")
     args = ap.parse_args(argv)
     if args.floor and args.balance != "nonlinear":
         ap.error("--floor applies to --balance nonlinear only")
     try:
+        summary = args.summary
+        if args.summary_file is not None:
+            try:
+                summary = Path(args.summary_file).expanduser().read_text(encoding="utf-8")
+            except (OSError, UnicodeDecodeError) as exc:
+                raise InputError(f"--summary-file {args.summary_file!r} cannot be read as UTF-8 text: "
+                                 f"{cli.one_line(exc)}") from None
+        texts = briefing_texts(args.headline, summary, args.author, args.office)
+        order = briefing_pages(args.pages, args.tendency)
         from workbench.analysis import default_case_path
         from workbench.io import open_case
 
@@ -553,7 +701,7 @@ def main(argv=None) -> int:
         try:
             out = make_briefing(case, session, args.output, overwrite=args.overwrite,
                                 progress=lambda: bar.update(1), tendency=args.tendency,
-                                balance=args.balance, floor=args.floor)
+                                balance=args.balance, floor=args.floor, pages=order, **texts)
         finally:
             bar.close()
     except WorkbenchError as exc:
