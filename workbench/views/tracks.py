@@ -32,7 +32,7 @@ def tracked_shares_figure(table, pieces=None, title=None, column="height_share_p
     times = list(dict.fromkeys(table["time"]))
     x = {t: k for k, t in enumerate(times)}
     fig = Figure(figsize=(10, 5.5), dpi=120)
-    ax = fig.add_axes([0.08, 0.2, 0.66, 0.68])
+    ax = fig.add_axes([0.08, 0.2, 0.6, 0.68])
     for k, name in enumerate(names):
         rows = table[table["piece"] == name]
         xs = np.array([x[t] for t in rows["time"]])
@@ -53,7 +53,7 @@ def tracked_shares_figure(table, pieces=None, title=None, column="height_share_p
                    "vorticity_share_pct": "share of the balanced relative vorticity (%)"}.get(column, column))
     ax.grid(alpha=0.3)
     ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8, frameon=False)
-    fig.text(0.76, 0.45, "markers: o tracked, \u25bc split, \u25b2 merged,\n\u00d7 lost (no share)",
+    fig.text(0.7, 0.45, "markers: o tracked, \u25bc split, \u25b2 merged,\n\u00d7 lost (no share)",
              fontsize=7.5, va="top")
     tgt = table.attrs.get("target")
     fig.text(0.08, 0.94, title or "Shares over time of pieces carried through the case", fontsize=12,
