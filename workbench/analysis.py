@@ -266,10 +266,7 @@ def main(argv=None):
         return 0
     cli.check_target(case, target)
     cli.check_pieces(case, pieces)
-    member = args.member
-    if member is not None and str(member).isdigit():
-        member = int(member)
-    case.member_index(member)
+    member = cli.member_arg(case, args.member)
     times = range(case.times.size) if args.time is None else [
         int(args.time) if str(args.time).lstrip("-").isdigit() else args.time]
     times = [case.time_index(t) for t in times]  # checked before the work

@@ -517,3 +517,22 @@ def _main(argv) -> int:
 
 if __name__ == "__main__":
     sys.exit(main())
+
+
+def member_arg(case, text):
+    """The ``--member`` value as the case's member index or label (checked, one-line error)."""
+    member = text
+    if member is not None and str(member).isdigit():
+        member = int(member)
+    case.member_index(member)
+    return member
+
+
+def time_arg(case, text):
+    """The ``--time`` value as an index or ISO time (checked against the case, one-line error);
+    None stays None."""
+    if text is None:
+        return None
+    time = int(text) if str(text).lstrip("-").isdigit() else text
+    case.time_index(time)
+    return time

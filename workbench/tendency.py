@@ -450,12 +450,8 @@ def main(argv=None) -> int:
     case = wb.open_case(args.case or default_case_path(), **cli.selection_options(args))
     cli.check_target(case, target)
     cli.check_pieces(case, pieces)
-    member = args.member
-    if member is not None and str(member).isdigit():
-        member = int(member)
-    case.member_index(member)
-    time = None if args.time is None else (int(args.time) if str(args.time).lstrip("-").isdigit() else args.time)
-    case.time_index(time)
+    member = cli.member_arg(case, args.member)
+    time = cli.time_arg(case, args.time)
     ex = explain(case, time, pieces, target, member=member, reference=args.reference, top=not args.hold_lid)
     print(f"{LABEL}\n")
     print(f"{ex.time}  target {ex.target[0]:.1f} E, {ex.target[1]:.1f} N, {ex.target[2]:g} hPa; "

@@ -64,10 +64,7 @@ def main(argv=None) -> int:
     if isinstance(target, tuple):
         cli.check_target(case, target)
     cli.check_pieces(case, pieces)
-    member = args.member
-    if member is not None and str(member).isdigit():
-        member = int(member)
-    case.member_index(member)
+    member = cli.member_arg(case, args.member)
     start = args.start
     if start is not None and str(start).lstrip("-").isdigit():
         start = int(start)

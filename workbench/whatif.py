@@ -556,12 +556,8 @@ def main(argv=None) -> int:
     pieces = load_pieces(args.pieces) if args.pieces else None
     case = wb.open_case(args.case or default_case_path(), **cli.selection_options(args))
     cli.check_pieces(case, pieces)
-    member = args.member
-    if member is not None and str(member).isdigit():
-        member = int(member)
-    case.member_index(member)
-    time = None if args.time is None else (int(args.time) if str(args.time).lstrip("-").isdigit() else args.time)
-    case.time_index(time)
+    member = cli.member_arg(case, args.member)
+    time = cli.time_arg(case, args.time)
     bar = cli.progress(desc="whatif", unit="6 h", enabled=False if args.quiet else None)
 
     def progress(n, total):
