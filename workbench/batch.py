@@ -48,6 +48,12 @@ def _worker_case(path, options, ref_name, ref):
     return case
 
 
+def forget_cases():
+    """Drop the cases this process keeps open (``client.run(forget_cases)`` on every worker)."""
+    with _CASES_LOCK:
+        _CASES.clear()
+
+
 def _reference(path, options, reference):
     """(name, Dataset): the reference state on the case grid, computed once."""
     case = _worker_case(path, options, None, None)

@@ -232,8 +232,25 @@ def selection_options(args) -> dict:
     return out
 
 
+def check_inversion_domain(case):
+    """Refuse (DomainError) before any work a domain that reaches the equator (constant-f0 QG),
+    naming the cut that fixes it (``--region W,E,S,N``)."""
+    from .errors import DomainError
+
+    d = case.domain
+    if d["lat_min"] <= 0.0 <= d["lat_max"]:
+        south = d["lat_max"] > -d["lat_min"]
+        cut = (f"{d['lon_min']:g},{d['lon_max']:g},{5 if south else d['lat_min']:g},"
+               f"{d['lat_max'] if south else -5:g}")
+        raise DomainError(f"the domain spans {d['lat_min']:g}..{d['lat_max']:g} N and reaches the equator, "
+                          "where QG inversion with a constant f0 does not hold; cut it to one hemisphere, "
+                          f"e.g. --region {cut}")
+
+
 def check_target(case, target):
-    """Refuse (InputError) a target (lon, lat, hPa) outside the case's domain or levels."""
+    """Refuse (InputError) a target (lon, lat, hPa) outside the case's domain or levels, and
+    (DomainError) a domain the inversion cannot take (:func:`check_inversion_domain`)."""
+    check_inversion_domain(case)
     if target is None:
         return target
     lon, lat, p = target

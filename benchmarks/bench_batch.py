@@ -1,0 +1,106 @@
+"""Batch benchmark: serial vs a 1-worker and a 2-worker Dask LocalCluster, in one run.
+
+``python benchmarks/bench_batch.py [--repeat N] [--json]``. The case is built here: the invented
+sample storm (``sample_cases/``) interpolated to 0.5 degree, 8 times, float32, written to a
+temporary netCDF file. The three modes run interleaved (serial, 1 worker, 2 workers, then again)
+so that they share the machine's load; each cluster is started before its timing (start-up is
+reported apart). Also reported: the per-task cost (serial seconds per time) and the peak memory of
+one task (tracemalloc, one analyse of one time of the case), the figures behind the cluster
+estimate in DEVELOPERS.md.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import statistics
+import sys
+import tempfile
+import time
+import tracemalloc
+import warnings
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+
+def build_case(folder, step=0.5, ntimes=8):
+    import xarray as xr
+
+    from workbench.analysis import default_case_path
+
+    ds = xr.open_dataset(default_case_path()).isel(time=slice(0, ntimes)).load()
+    lat = np.arange(float(ds.latitude.min()), float(ds.latitude.max()) + 1e-9, step)
+    lon = np.arange(float(ds.longitude.min()), float(ds.longitude.max()) + 1e-9, step)
+    ds = ds.interp(latitude=lat, longitude=lon)
+    ds = ds.astype({v: "float32" for v in ds.data_vars})
+    path = Path(folder) / f"bench_{step:g}deg_{ntimes}t.nc"
+    ds.to_netcdf(path)
+    inp = sum(ds[v].isel(time=0).nbytes for v in ds.data_vars if "pressure" in ds[v].dims)
+    return path, dict(ds.sizes), inp
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(prog="bench_batch")
+    parser.add_argument("--repeat", type=int, default=2)
+    parser.add_argument("--json", action="store_true")
+    args = parser.parse_args(argv)
+    warnings.simplefilter("ignore")
+    from dask.distributed import Client, LocalCluster
+
+    import workbench as wb
+    from workbench.analysis import analyse
+    from workbench.batch import forget_cases, run_batch
+
+    out = {}
+    with tempfile.TemporaryDirectory() as tmp:
+        path, sizes, inp = build_case(tmp)
+        out["case"] = dict(sizes=sizes, input_mb_per_time=inp / 1e6)
+        case = wb.open_case(path)
+        case.reference()
+        tracemalloc.start()
+        t0 = time.perf_counter()
+        analyse(case, 0)
+        task_s = time.perf_counter() - t0
+        out["task"] = dict(peak_mb=tracemalloc.get_traced_memory()[1] / 1e6, seconds=task_s)
+        tracemalloc.stop()
+        del case
+        clusters, times = {}, {"serial": [], "1 worker": [], "2 workers": []}
+        for n in (1, 2):
+            t0 = time.perf_counter()
+            cl = LocalCluster(n_workers=n, threads_per_worker=1, host="127.0.0.1", dashboard_address=None,
+                              processes=True)
+            clusters[n] = (cl, Client(cl))
+            out[f"startup_{n}_s"] = time.perf_counter() - t0
+        try:
+            for _ in range(args.repeat):
+                forget_cases()  # the serial run opens the case like a fresh process would
+                t0 = time.perf_counter()
+                run_batch(path)
+                times["serial"].append(time.perf_counter() - t0)
+                for n, label in ((1, "1 worker"), (2, "2 workers")):
+                    clusters[n][1].run(forget_cases)
+                    t0 = time.perf_counter()
+                    run_batch(path, client=clusters[n][1])
+                    times[label].append(time.perf_counter() - t0)
+        finally:
+            for cl, client in clusters.values():
+                client.close()
+                cl.close()
+    out["runs_s"] = times
+    med = {k: statistics.median(v) for k, v in times.items()}
+    out["median_s"] = med
+    out["speedup_2_vs_1"] = med["1 worker"] / med["2 workers"]
+    out["1_worker_vs_serial"] = med["1 worker"] / med["serial"]
+    out["serial_per_task_s"] = med["serial"] / 8
+    if args.json:
+        print(json.dumps(out, indent=1))
+    else:
+        for k, v in out.items():
+            print(f"{k}: {v}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
