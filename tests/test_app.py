@@ -86,8 +86,8 @@ def test_section_target_and_attribution(bench):
     bench.lasso_piece(TROUGH)
     bench.draw_section((-30.0, 40.0), (20.0, 52.0))
     assert len(st.sections) == 1
-    names = [getattr(o, "name", "") for o in bench.section.pane.objects]
-    assert names.count("pvwb-section-figure") == 2  # section and the pieces' balanced flow
+    shown = [o.name for o in bench.section.pane.objects if o.visible]
+    assert shown == ["pvwb-section-plot", "pvwb-section-pieces-plot"]  # and the pieces' flow
     bench.pick_target(-5.0, 46.0)
     table = bench.attr_table.value
     rows = table.set_index("piece")
@@ -119,8 +119,17 @@ def test_field_and_surface_changes_keep_the_figure(bench):
     assert bench.map.colorbar.title.startswith("potential temperature")
     after = bench.map.src["field"].data["image"][0]
     assert after.shape == before.shape and not np.allclose(after, before, equal_nan=True)
+    # the switch is said, not silent, and the field box agrees with the map
+    assert st.status_level == "info" and "instead of PV" in st.status
+    assert bench.field.value == "potential_temperature"
+    assert "ertel_pv" not in bench.field.options.values()
     bench._guard(bench._set_state, "field", "ertel_pv")
     assert st.status_level == "error" and st.field == "potential_temperature"
+    assert "threshold value everywhere" in st.status
+    bench.surface.value = 320.0
+    assert "ertel_pv" in bench.field.options.values()
+    bench.field.value = "ertel_pv"
+    assert st.field == "ertel_pv" and bench.map.colorbar.title.startswith("PV")
     bench.time.value = 1
     assert st.time_index == 1 and bench.map.figure is fig
 
@@ -129,3 +138,24 @@ def test_displays_inline(bench):
     bundle = bench._repr_mimebundle_()
     data = bundle[0] if isinstance(bundle, tuple) else bundle
     assert any("html" in k or "bokeh" in k for k in data)
+
+
+def test_page_objects_stay_flat_over_time_steps_with_a_section(bench):
+    """The page's Bokeh models are counted in a document (what the browser receives): drawing
+    the section adds its figures once; 20 time steps afterwards add nothing."""
+    from bokeh.document import Document
+
+    doc = Document()
+    doc.add_root(bench.layout.get_root(doc))
+    bench.lasso_piece(TROUGH)
+    bench.draw_section((-30.0, 40.0), (20.0, 52.0))
+    counts = []
+    n = len(bench.state.case.times)
+    for k in range(20):
+        bench.state.time_index = (bench.state.time_index + 1) % n
+        counts.append(len(doc.models))
+    assert counts[0] > 100
+    assert bench.section.main_pane.visible and bench.section.pieces_pane.visible
+    assert len(set(counts)) == 1, counts
+    titles = [m.title.text for m in doc.models if getattr(m, "name", None) == "pvwb-section-plot"]
+    assert len(titles) == 1 and titles[0].startswith("Section A")

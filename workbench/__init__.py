@@ -62,4 +62,8 @@ def __getattr__(name):  # lazy: keep `import workbench` light and free of plotti
         from .state import State
 
         return State
+    if name == "panels":  # the page's panels (wb.panels.MapPanel(state))
+        import importlib
+
+        return importlib.import_module(".panels", __name__)
     raise AttributeError(f"module 'workbench' has no attribute {name!r}")

@@ -23,7 +23,8 @@ import xarray as xr
 from .errors import InputError, PieceError, WorkbenchError
 from .sections import Section
 
-__all__ = ["State", "Section", "BOUNDARY_PIECES", "parse_surface", "surface_label"]
+__all__ = ["State", "PageChoices", "Section", "BOUNDARY_PIECES", "parse_surface", "surface_label", "fields_for",
+           "PV_FIELDS"]
 
 #: The boundary pieces one call away: State.add_boundary_piece(kind).
 BOUNDARY_PIECES = {
@@ -112,21 +113,96 @@ class FigureSettingsDict(param.Dict):
         super().__set__(obj, _figure_settings_dict(val))
 
 
+#: Map fields that make no sense on the dynamic tropopause (PV is the threshold there).
+PV_FIELDS = ("ertel_pv", "ertel_pv_anomaly")
+#: What the map shows instead when the surface becomes the dynamic tropopause with a PV field.
+TROPOPAUSE_FIELD = "potential_temperature"
+_PV_NAMES = {"ertel_pv": "PV", "ertel_pv_anomaly": "the PV anomaly"}
+
+
+def fields_for(surface, fields) -> list:
+    """The map fields of ``fields`` that can be drawn on ``surface`` (no PV on the tropopause)."""
+    if surface == "tropopause":
+        return [f for f in fields if f not in PV_FIELDS]
+    return list(fields)
+
+
 class Surface(param.Parameter):
-    """A map surface parameter (validated and normalised by :func:`parse_surface`)."""
+    """A map surface parameter (validated and normalised by :func:`parse_surface`).
+
+    On a :class:`State`, choosing the dynamic tropopause while the field is PV switches the
+    field to potential temperature in the same change (watchers see one consistent pair)
+    and says so in the status line."""
 
     def _validate(self, val):
         super()._validate(val)
         parse_surface(val)
 
     def __set__(self, obj, val):
-        super().__set__(obj, parse_surface(val))
+        val = parse_surface(val)
+        if isinstance(obj, State) and val == "tropopause" and obj.field in PV_FIELDS:
+            with param.parameterized.batch_call_watchers(obj):
+                old = obj.field
+                obj.param.field._set_unchecked(obj, TROPOPAUSE_FIELD)
+                super().__set__(obj, val)
+                obj.set_status(f"PV is the threshold value everywhere on the dynamic tropopause, "
+                               f"so the map shows potential temperature there instead of "
+                               f"{_PV_NAMES.get(old, old)}.", "info")
+            return
+        super().__set__(obj, val)
+
+
+class MapField(param.Selector):
+    """The map field: one of the case's map fields, refused with a clear message where the
+    surface cannot carry it (PV on the dynamic tropopause)."""
+
+    def _set_unchecked(self, obj, val):
+        param.Selector.__set__(self, obj, val)
+
+    def __set__(self, obj, val):
+        if isinstance(obj, State) and val in PV_FIELDS and obj.surface == "tropopause":
+            raise InputError("PV is the threshold value everywhere on the dynamic tropopause; "
+                             "map θ, pressure, height or wind there, or pick an isentropic "
+                             "surface for PV")
+        super().__set__(obj, val)
 
 
 def _piece_api():
     from .inversion import pieces
 
     return pieces
+
+
+class PageChoices(param.Parameterized):
+    """What the page's controls hold between gestures (not saved in sessions): the mouse mode,
+    the settings of the next lasso, the annotation text and colour, the last click, and the
+    folders the page may read from and write to. Lives at ``State.page`` so that every panel
+    needs only the State."""
+
+    mouse_mode = param.Selector(default="lasso", objects=["pan", "lasso", "section", "target",
+                                                          "label"],
+                                doc="What a drag or click on the map does.")
+    lasso_makes = param.Selector(default="interior", objects=["interior", "bottom", "top",
+                                                              "region"],
+                                 doc="A lasso makes an interior PV piece, a surface/lid θ′ "
+                                     "piece or a highlighted region (annotation).")
+    layer_coord = param.Selector(default="pressure", objects=["pressure", "theta"])
+    layer = param.NumericTuple(default=None, length=2, allow_None=True,
+                               doc="Layer of the next interior piece (hPa or K); None: all.")
+    sign = param.Selector(default=1, objects=[1, -1, 0],
+                          doc="Sign of the next piece's anomaly: 1 positive, -1 negative, 0 both.")
+    min_anomaly = param.Number(default=0.0, bounds=(0.0, None),
+                               doc="Minimum |PV anomaly| (PVU) of the next interior piece.")
+    rh_min = param.Number(default=None, allow_None=True, bounds=(0.0, 100.0),
+                          doc="Moist only: minimum relative humidity (%), None: any.")
+    piece_name = param.String(default="", doc="Name of the next piece (blank: automatic).")
+    label_text = param.String(default="", doc="Text of the next label / region label.")
+    label_colour = param.String(default="black", doc="Colour of the next annotation.")
+    last_click = param.NumericTuple(default=None, length=2, allow_None=True,
+                                    doc="(lon, lat) of the last click on the map.")
+    data_dirs = param.List(default=[], doc="Folders the page may open files from.")
+    output_dir = param.String(default=None, allow_None=True,
+                              doc="The folder sessions and exports are written to.")
 
 
 class State(param.Parameterized):
@@ -143,7 +219,7 @@ class State(param.Parameterized):
     member = param.Integer(default=None, allow_None=True, bounds=(0, None),
                            doc="Ensemble member index (None when the case has no members).")
     surface = Surface(default=320.0, doc="Map surface: theta (K), 'tropopause' or 'NNNhPa'.")
-    field = param.Selector(default="ertel_pv", objects=["ertel_pv", "ertel_pv_anomaly",
+    field = MapField(default="ertel_pv", objects=["ertel_pv", "ertel_pv_anomaly",
                            "potential_temperature", "pressure", "wind_speed",
                            "geopotential_height", "u", "v"], doc="Map field (case.MAP_FIELDS).")
     overlay_level = param.Number(default=850.0, bounds=(1.0, 1100.0),
@@ -167,9 +243,12 @@ class State(param.Parameterized):
     status = param.String(default="", doc="Status message for the user.")
     status_level = param.Selector(default="info", objects=["info", "success", "warning", "error"])
     busy = param.Boolean(default=False, doc="True while a computation runs.")
+    page = param.ClassSelector(class_=PageChoices, default=None, allow_None=True,
+                               doc="The page's control settings (PageChoices; not saved).")
 
     def __init__(self, case=None, **params):
         params["figure_settings"] = _figure_settings_dict(params.get("figure_settings"))
+        params.setdefault("page", PageChoices())
         super().__init__(case=case, **params)
         if case is not None:
             self._fit_to_case()
@@ -235,6 +314,11 @@ class State(param.Parameterized):
             self.set_status(f"Unexpected {type(exc).__name__}: {exc}", "error")
 
     # ------------------------------------------------------------------ map fields
+    def available_fields(self, surface=None) -> list:
+        """The map fields the (given or current) surface can carry."""
+        return fields_for(self.surface if surface is None else surface,
+                          self.param.field.objects)
+
     def map_field(self):
         """The 2-D field of the map (read from the case; cached there)."""
         return self.case.map_field(self.field, self.surface, reference=self.reference,

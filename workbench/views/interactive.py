@@ -22,15 +22,17 @@ perceptually uniform, colour-blind safe), so the app and the briefing figures ag
 """
 from __future__ import annotations
 
+import logging
 import math
 from functools import lru_cache
 
 import numpy as np
 import panel as pn
 from bokeh.events import SelectionGeometry, Tap
+from bokeh.core.property.vectorization import value
 from bokeh.models import (BoxZoomTool, ColorBar, ColumnDataSource, FreehandDrawTool, HoverTool,
-                          Label, LassoSelectTool, LinearColorMapper, PanTool, Range1d,
-                          ResetTool, SaveTool, TapTool, WheelZoomTool)
+                          Label, LassoSelectTool, Legend, LegendItem, LinearColorMapper, PanTool,
+                          Range1d, ResetTool, SaveTool, TapTool, WheelZoomTool)
 from bokeh.plotting import figure
 
 from ..export import CAUTION, invented_label
@@ -39,7 +41,7 @@ from ..sections import great_circle_path
 from ..state import surface_label
 from ..textsafe import escape
 
-__all__ = ["MapView", "SectionView", "palette", "field_style", "coastline_lines", "FIELD_LABELS",
+__all__ = ["MapView", "SectionView", "TextHTML", "TextMarkdown", "lon_label", "lat_label", "palette", "field_style", "coastline_lines", "FIELD_LABELS",
            "MODES"]
 
 #: field -> (short label, display units, colour-map key, diverging), from views.fields
@@ -100,6 +102,33 @@ def field_style(field: str, values: np.ndarray):
 # --------------------------------------------------------------------------- coastlines
 
 
+#: Notices of the coastline reader (pyshp's conversion notes) go here, never into a cell.
+COAST_LOG = logging.getLogger("workbench.coastlines")
+COAST_LOG.addHandler(logging.NullHandler())
+
+
+class _ToLog(logging.Handler):
+    def emit(self, record):
+        COAST_LOG.info("%s", record.getMessage())
+
+
+def _read_coastlines(path):
+    """Coastline geometries of a shapefile; the reader's notices are logged at INFO level on
+    ``workbench.coastlines`` instead of being printed (we draw outlines only, so a ring
+    stored as a hole draws the same coastline)."""
+    from cartopy.io import shapereader
+
+    log = logging.getLogger("shapefile")
+    handler, propagate = _ToLog(), log.propagate
+    log.addHandler(handler)
+    log.propagate = False
+    try:
+        return list(shapereader.Reader(str(path)).geometries())
+    finally:
+        log.removeHandler(handler)
+        log.propagate = propagate
+
+
 @lru_cache(maxsize=8)
 def coastline_lines(lon_min, lon_max, lat_min, lat_max):
     """Coastline segments clipped to a lon/lat box: (xs, ys, description).
@@ -119,9 +148,7 @@ def coastline_lines(lon_min, lon_max, lat_min, lat_max):
             return [], [], ("no coastline data on this machine (looked in cartopy's data "
                             "folders); map drawn without coastlines")
         label, path = src
-        from cartopy.io import shapereader
-
-        geoms = list(shapereader.Reader(str(path)).geometries())
+        geoms = _read_coastlines(path)
     except Exception as exc:  # never let map data stop the app
         return [], [], f"coastlines unavailable ({exc}); map drawn without them"
     pad = 1.0
@@ -204,6 +231,25 @@ def _centroid(poly):
     return float(a[:, 0].mean()), float(a[:, 1].mean())
 
 
+class _TextOnlyUpdates:
+    """A pane whose updates send only its text. Panel re-sends a pane's every property on an
+    update, stylesheets included, and in a notebook those are links to a CDN; the page
+    already holds them (inlined when it was rendered), so they are left out."""
+
+    def _update(self, ref, model):
+        props = self._get_properties(model.document)
+        props.pop("stylesheets", None)
+        model.update(**props)
+
+
+class TextHTML(_TextOnlyUpdates, pn.pane.HTML):
+    """``pn.pane.HTML`` whose updates never fetch stylesheets (see :class:`_TextOnlyUpdates`)."""
+
+
+class TextMarkdown(_TextOnlyUpdates, pn.pane.Markdown):
+    """``pn.pane.Markdown`` whose updates never fetch stylesheets."""
+
+
 # --------------------------------------------------------------------------- the map
 
 
@@ -233,7 +279,9 @@ class MapView:
         if height > max_height:
             width, height = int(width * max_height / height), max_height
         self._build(width, max(height, 240))
-        self.pane = pn.pane.Bokeh(self.figure, sizing_mode="fixed")
+        # the map scales with its column (aspect kept), never wider than ``width``
+        self.pane = pn.pane.Bokeh(self.figure, sizing_mode="scale_width", max_width=width,
+                                  min_width=280)
         for names, fn in ((["case", "time_index", "member", "surface", "field", "reference",
                             "threshold"], self.refresh_field),
                           (["pieces", "overlay_level", "time_index", "member", "reference"],
@@ -269,6 +317,7 @@ class MapView:
             target=TapTool(description="Pick the attribution target point"),
         )
         fig = figure(name="pvwb-map", width=width, height=height, x_range=x_range,
+                     sizing_mode="scale_width", max_width=width, min_width=280,
                      y_range=y_range, tools=list(self.tools.values()), toolbar_location="above",
                      x_axis_label="longitude (°E)", y_axis_label="latitude (°N)",
                      output_backend="canvas")
@@ -417,6 +466,9 @@ class MapView:
         if event.x is None or event.y is None:
             return
         self.last_click = (float(event.x), float(event.y))
+        page = getattr(self.state, "page", None)
+        if page is not None:
+            page.last_click = self.last_click
         mode = getattr(self, "mode", "pan")
         if mode == "target" and self.on_tap is not None:
             self.on_tap(*self.last_click)
@@ -637,10 +689,13 @@ class SectionView:
 
     Top panel: PV shaded (same colours as the map), potential temperature contours (every
     5 K), section-normal wind (m s-1, positive into the page to the left of A->B; solid
-    positive, dashed negative) and the dynamic tropopause. Bottom panel, once pieces exist:
-    the visible pieces' summed balanced temperature anomaly (shaded), balanced normal wind
-    and the QG omega attributable to them (ascent dashed). Rebuilt when its line, the time
-    or the pieces change (the map is never rebuilt).
+    positive, dashed negative) and the dynamic tropopause. Bottom panel, shown once pieces
+    exist: the visible pieces' summed balanced temperature anomaly (shaded), balanced normal
+    wind and the QG omega attributable to them (ascent dashed).
+
+    Both figures (Bokeh names ``pvwb-section-plot`` and ``pvwb-section-pieces-plot``) are
+    built once per case; a new line, time, piece or threshold replaces their sources' data
+    and ranges in place, and the panes are shown or hidden, so the page never gains objects.
     """
 
     def __init__(self, state, width=820, defer=None):
@@ -648,8 +703,19 @@ class SectionView:
         self.width = width
         self.defer = defer or (lambda fn: fn())
         self.dataset = None
-        self.pane = pn.Column(self._placeholder(), sizing_mode="stretch_width",
-                              name="pvwb-section", css_classes=["pvwb-section"])
+        self.hint = TextMarkdown(
+            "**Section.** Choose *Draw a section* and drag a line across the map "
+            "(from A to B).", styles={"color": "#555"}, name="pvwb-section-hint")
+        self._build()
+        # (a Bokeh pane gives its name to its figure)
+        self.main_pane = pn.pane.Bokeh(self.main, name="pvwb-section-plot", visible=False,
+                                       sizing_mode="scale_width", max_width=self.width)
+        self.pieces_pane = pn.pane.Bokeh(self.lower, name="pvwb-section-pieces-plot",
+                                         visible=False, sizing_mode="scale_width",
+                                         max_width=self.width)
+        self.pane = pn.Column(self.hint, self.main_pane, self.pieces_pane,
+                              sizing_mode="stretch_width", name="pvwb-section",
+                              css_classes=["pvwb-section"])
         self._watchers = [state.param.watch(lambda *ev: self.defer(self.refresh), [
             "sections", "active_section", "time_index", "member", "pieces", "reference",
             "threshold"])]
@@ -660,142 +726,229 @@ class SectionView:
             self.state.param.unwatch(w)
         self._watchers = []
 
-    def _placeholder(self):
-        return pn.pane.Markdown(
-            "**Section.** Choose *Draw a section* and drag a line across the map "
-            "(from A to B).", styles={"color": "#555"}, name="pvwb-section-hint")
-
-    def refresh(self):
-        st = self.state
-        if st.active_section is None or not st.sections:
-            self.pane.objects = [self._placeholder()]
-            return
-        try:
-            sec = st.section()
-        except Exception as exc:
-            st.report(exc)
-            self.pane.objects = [self._placeholder()]
-            return
-        figs = [self._main_figure(sec)]
-        if "balanced_normal_wind" in sec:
-            figs.append(self._pieces_figure(sec, figs[0]))
-        self.dataset = sec
-        self.pane.objects = [pn.pane.Bokeh(f, name="pvwb-section-figure") for f in figs]
-
-    def _frame(self, sec, title, height, x_range=None, name="pvwb-section-plot"):
-        d = sec["distance"].values
-        p = sec["pressure"].values / 100.0
-        kw = dict(x_range=x_range) if x_range is not None else dict(x_range=(float(d[0]), float(d[-1])))
+    # ---------------------------------------------------------------- build (once)
+    def _frame(self, title, height, x_range, name):
+        p = np.asarray(self.state.case.levels_hpa, float)
         fig = figure(width=self.width, height=height, y_axis_type="log",
-                     y_range=(float(p.max()), float(p.min())), title=title,
-                     x_axis_label="distance from A (km)", y_axis_label="pressure (hPa)",
-                     tools="pan,wheel_zoom,box_zoom,reset,save", toolbar_location="above",
-                     name=name, **kw)
+                     sizing_mode="scale_width", max_width=self.width, min_width=280,
+                     y_range=Range1d(float(p.max()), float(p.min())), x_range=x_range,
+                     title=title, x_axis_label="distance from A (km)",
+                     y_axis_label="pressure (hPa)", tools="pan,wheel_zoom,box_zoom,reset,save",
+                     toolbar_location="above", name=name)
         fig.toolbar.logo = None
         fig.title.text_font_size = "13px"
-        ticks = [x for x in (1000, 925, 850, 700, 500, 400, 300, 250, 200, 150, 100, 70, 50)
-                 if p.min() <= x <= p.max()]
-        fig.yaxis.ticker = ticks
-        return fig, d, p
+        fig.yaxis.ticker = [x for x in (1000, 925, 850, 700, 500, 400, 300, 250, 200, 150, 100,
+                                        70, 50) if p.min() <= x <= p.max()]
+        return fig
 
-    def _add_lines(self, fig, d, p, z, levels, colour, dash="solid", width=1.2, labels=True,
-                   at=0.5):
-        """Contour lines (display only) and one label per level, ``at`` a fraction along the
-        level's longest line."""
+    def _lines(self, fig, key, colour, dash="solid", width=1.2):
+        self.src[key] = ColumnDataSource(dict(xs=[], ys=[]), name=f"pvwb-section-{key}")
+        fig.multi_line("xs", "ys", source=self.src[key], line_color=colour, line_width=width,
+                       line_dash=dash)
+
+    def _labels(self, fig, key, colour):
+        self.src[key] = ColumnDataSource(dict(x=[], y=[], text=[]), name=f"pvwb-section-{key}")
+        fig.text("x", "y", text="text", source=self.src[key], text_color=colour,
+                 text_font_size="10px", text_align="center", text_baseline="middle",
+                 background_fill_color="white", background_fill_alpha=0.6)
+
+    def _cells(self, fig, key, mapper):
+        self.src[key] = ColumnDataSource(dict(left=[], right=[], bottom=[], top=[], value=[]),
+                                         name=f"pvwb-section-{key}")
+        fig.quad(left="left", right="right", bottom="bottom", top="top", source=self.src[key],
+                 fill_color={"field": "value", "transform": mapper},
+                 line_color={"field": "value", "transform": mapper}, line_width=0.6)
+
+    def _build(self):
+        self.src = {}
+        x_range = Range1d(0.0, 1.0)
+        top = self._frame("Section", 330, x_range, "pvwb-section-plot")
+        self.pv_mapper = LinearColorMapper(palette=list(palette("pv")), low=0, high=8,
+                                           nan_color=(0, 0, 0, 0))
+        self._cells(top, "pv", self.pv_mapper)
+        self.pv_bar = ColorBar(color_mapper=self.pv_mapper, title="PV (PVU)", width=12,
+                               title_text_font_size="11px")
+        top.add_layout(self.pv_bar, "right")
+        self._lines(top, "theta", "#3c3c3c", width=0.9)
+        self._labels(top, "theta_labels", "#3c3c3c")
+        self._lines(top, "vn_pos", "#8c2d04", width=1.4)
+        self._lines(top, "vn_neg", "#8c2d04", dash="dashed", width=1.4)
+        self._labels(top, "vn_labels", "#8c2d04")
+        self.src["trop"] = ColumnDataSource(dict(x=[], y=[]), name="pvwb-section-tropopause")
+        trop = top.line("x", "y", source=self.src["trop"], line_color="black", line_width=3)
+        th = top.line([], [], line_color="#3c3c3c")
+        vn = top.line([], [], line_color="#8c2d04")
+        self.top_legend = Legend(items=[
+            LegendItem(label="dynamic tropopause", renderers=[trop]),
+            LegendItem(label="θ every 5 K", renderers=[th]),
+            LegendItem(label="normal wind every 10 m/s (+ left of A→B)", renderers=[vn])])
+        _legend_below(top, self.top_legend)
+        low = self._frame("Balanced flow of the visible pieces", 260, x_range,
+                          "pvwb-section-pieces-plot")
+        self.ta_mapper = LinearColorMapper(palette=list(palette("anomaly")), low=-1, high=1,
+                                           nan_color=(0, 0, 0, 0))
+        self._cells(low, "ta", self.ta_mapper)
+        low.add_layout(ColorBar(color_mapper=self.ta_mapper, title="balanced T′ (K)", width=12,
+                                title_text_font_size="11px"), "right")
+        self._lines(low, "bw_pos", "#000000", width=1.5)
+        self._lines(low, "bw_neg", "#000000", dash="dashed", width=1.5)
+        self._labels(low, "bw_labels", "#000000")
+        self._lines(low, "om_up", "#cc79a7", dash="dashed", width=2)
+        self._lines(low, "om_down", "#cc79a7", width=1.2)
+        bw = low.line([], [], line_color="#000000")
+        om = low.line([], [], line_color="#cc79a7", line_width=2)
+        self.low_legend = Legend(items=[LegendItem(label="balanced normal wind", renderers=[bw]),
+                                        LegendItem(label="QG ω due to the pieces", renderers=[om])])
+        _legend_below(low, self.low_legend)
+        self.main, self.lower, self.x_range = top, low, x_range
+
+    # ---------------------------------------------------------------- data (in place)
+    def refresh(self):
+        st = self.state
+        sec = None
+        if st.active_section is not None and st.sections:
+            try:
+                sec = st.section()
+            except Exception as exc:  # noqa: BLE001
+                st.report(exc)
+        self.dataset = sec
+        if sec is None:
+            self._show(False, False)
+            return
+        self._fill_main(sec)
+        has_pieces = "balanced_normal_wind" in sec
+        if has_pieces:
+            self._fill_pieces(sec)
+        self._show(True, has_pieces)
+
+    def _show(self, main, pieces):
+        # (a Bokeh pane's model is the figure itself: its visibility is set there too)
+        self.hint.visible = not main
+        self.main.visible, self.lower.visible = main, pieces
+        self.main_pane.visible, self.pieces_pane.visible = main, pieces
+        _push(self.pane)
+
+    def _set_lines(self, key, d, p, z, levels):
         xs, ys = _contour_lines(d, p, z, levels)
-        if xs and width > 0:
-            fig.multi_line(xs, ys, line_color=colour, line_width=width, line_dash=dash)
-        if labels:
-            # one label per level at the line's midpoint
-            lx, ly, lt = [], [], []
-            for lev in levels:
-                segs = _contour_lines(d, p, z, [lev])
-                if segs[0]:
-                    longest = max(range(len(segs[0])), key=lambda i: len(segs[0][i]))
-                    m = min(len(segs[0][longest]) - 1, int(at * len(segs[0][longest])))
-                    lx.append(segs[0][longest][m])
-                    ly.append(segs[1][longest][m])
-                    lt.append(f"{lev:g}")
-            if lx:
-                fig.text(lx, ly, text=lt, text_color=colour, text_font_size="10px",
-                         text_align="center", text_baseline="middle",
-                         background_fill_color="white", background_fill_alpha=0.6)
+        self.src[key].data = dict(xs=xs, ys=ys)
 
-    def _main_figure(self, sec):
+    @staticmethod
+    def _label_data(d, p, z, levels, at=0.5):
+        """One label per level, ``at`` a fraction along the level's longest line."""
+        lx, ly, lt = [], [], []
+        for lev in levels:
+            segs = _contour_lines(d, p, z, [lev])
+            if segs[0]:
+                k = max(range(len(segs[0])), key=lambda i: len(segs[0][i]))
+                m = min(len(segs[0][k]) - 1, int(at * len(segs[0][k])))
+                lx.append(segs[0][k][m])
+                ly.append(segs[1][k][m])
+                lt.append(f"{lev:g}")
+        return lx, ly, lt
+
+    def _fill_main(self, sec):
         st = self.state
         s = st.sections[st.active_section]
-        title = (f"Section A ({s.start[0]:.1f}°E, {s.start[1]:.1f}°N) → B ({s.end[0]:.1f}°E, "
-                 f"{s.end[1]:.1f}°N), valid {st.time_labels[st.time_index]}")
-        fig, d, p = self._frame(sec, title, 330)
+        d = sec["distance"].values
+        p = sec["pressure"].values / 100.0
+        self.x_range.update(start=float(d[0]), end=float(d[-1]))
+        self.main.title.text = (
+            f"Section A ({lon_label(s.start[0])}, {lat_label(s.start[1])}) → B "
+            f"({lon_label(s.end[0])}, {lat_label(s.end[1])}), valid "
+            f"{st.time_labels[st.time_index]}")
         pv = sec["ertel_pv"].transpose("pressure", "distance").values
         pal, lo, hi, ctitle, _ = field_style("ertel_pv", pv)
-        mapper = LinearColorMapper(palette=list(pal), low=lo, high=hi, nan_color=(0, 0, 0, 0))
-        # PV shaded as cells (pressure levels are not evenly spaced)
-        _shade_cells(fig, d, p, pv, mapper)
-        fig.add_layout(ColorBar(color_mapper=mapper, title=ctitle, width=12,
-                                title_text_font_size="11px"), "right")
+        self.pv_mapper.update(palette=list(pal), low=lo, high=hi)
+        self.pv_bar.title = ctitle
+        self.src["pv"].data = _cell_data(d, p, pv)
         th = sec["potential_temperature"].transpose("pressure", "distance").values
         lo5 = 5 * math.floor(np.nanmin(th) / 5)
-        tlev = np.concatenate([np.arange(lo5, 360.0, 5.0), np.arange(360.0, np.nanmax(th) + 20, 20.0)])
-        self._add_lines(fig, d, p, th, tlev, "#3c3c3c", width=0.9, labels=False)
-        self._add_lines(fig, d, p, th, tlev[(tlev % 10 == 0) & (tlev <= 360)], "#3c3c3c",
-                        width=0.0, labels=True, at=0.12)
+        tlev = np.concatenate([np.arange(lo5, 360.0, 5.0),
+                               np.arange(360.0, np.nanmax(th) + 20, 20.0)])
+        self._set_lines("theta", d, p, th, tlev)
+        lx, ly, lt = self._label_data(d, p, th, tlev[(tlev % 10 == 0) & (tlev <= 360)], at=0.12)
+        self.src["theta_labels"].data = dict(x=lx, y=ly, text=lt)
         vn = sec["normal_wind"].transpose("pressure", "distance").values
         vmax = float(np.nanmax(np.abs(vn))) if np.isfinite(vn).any() else 0
         vlev = np.arange(10.0, vmax + 10, 10.0)
-        self._add_lines(fig, d, p, vn, vlev, "#8c2d04", width=1.4, labels=True)
-        self._add_lines(fig, d, p, vn, -vlev, "#8c2d04", dash="dashed", width=1.4, labels=True)
-        tp = sec["tropopause_pressure"].values / 100.0
-        fig.line(d, tp, line_color="black", line_width=3, legend_label=
-                 f"dynamic tropopause ({st.threshold:g} PVU)")
-        fig.line([], [], line_color="#3c3c3c", legend_label="θ every 5 K")
-        fig.line([], [], line_color="#8c2d04", legend_label="normal wind every 10 m/s (+ left of A→B)")
-        _legend_below(fig)
-        return fig
+        self._set_lines("vn_pos", d, p, vn, vlev)
+        self._set_lines("vn_neg", d, p, vn, -vlev)
+        a = self._label_data(d, p, vn, vlev)
+        b = self._label_data(d, p, vn, -vlev)
+        self.src["vn_labels"].data = dict(x=a[0] + b[0], y=a[1] + b[1], text=a[2] + b[2])
+        self.src["trop"].data = dict(x=d.tolist(),
+                                     y=(sec["tropopause_pressure"].values / 100.0).tolist())
+        self.top_legend.items[0].label = value(f"dynamic tropopause ({st.threshold:g} PVU)")
 
-    def _pieces_figure(self, sec, top):
+    def _fill_pieces(self, sec):
+        d = sec["distance"].values
+        p = sec["pressure"].values / 100.0
         names = [str(n) for n in sec["piece"].values]
-        fig, d, p = self._frame(sec, "Balanced flow of the visible pieces: " + ", ".join(names),
-                                260, x_range=top.x_range, name="pvwb-section-pieces-plot")
-        ta = sec["balanced_temperature_anomaly"].sum("piece").transpose("pressure", "distance").values
+        self.lower.title.text = "Balanced flow of the visible pieces: " + ", ".join(names)
+        ta = sec["balanced_temperature_anomaly"].sum("piece").transpose("pressure",
+                                                                         "distance").values
         m = _nice(float(np.nanmax(np.abs(ta))) if np.isfinite(ta).any() else 1.0)
-        mapper = LinearColorMapper(palette=list(palette("anomaly")), low=-m, high=m,
-                                   nan_color=(0, 0, 0, 0))
-        _shade_cells(fig, d, p, ta, mapper)
-        fig.add_layout(ColorBar(color_mapper=mapper, title="balanced T′ (K)", width=12,
-                                title_text_font_size="11px"), "right")
+        self.ta_mapper.update(low=-m, high=m)
+        self.src["ta"].data = _cell_data(d, p, ta)
         vn = sec["balanced_normal_wind"].sum("piece").transpose("pressure", "distance").values
         vmax = float(np.nanmax(np.abs(vn))) if np.isfinite(vn).any() else 0.0
         step = _nice(vmax / 4) if vmax > 0 else 1.0
         lev = np.arange(step, vmax + step, step)
-        self._add_lines(fig, d, p, vn, lev, "#000000", width=1.5)
-        self._add_lines(fig, d, p, vn, -lev, "#000000", dash="dashed", width=1.5)
-        fig.line([], [], line_color="#000000", legend_label=f"balanced normal wind every {step:g} m/s")
+        self._set_lines("bw_pos", d, p, vn, lev)
+        self._set_lines("bw_neg", d, p, vn, -lev)
+        a = self._label_data(d, p, vn, lev)
+        b = self._label_data(d, p, vn, -lev)
+        self.src["bw_labels"].data = dict(x=a[0] + b[0], y=a[1] + b[1], text=a[2] + b[2])
+        self.low_legend.items[0].label = value(f"balanced normal wind every {step:g} m/s")
+        empty = dict(xs=[], ys=[])
+        self.src["om_up"].data, self.src["om_down"].data = empty, dict(empty)
+        text = "QG ω due to the pieces: none"
         if "piece_qg_omega" in sec:
             om = sec["piece_qg_omega"].sum("piece").transpose("pressure", "distance").values
             omax = float(np.nanmax(np.abs(om))) if np.isfinite(om).any() else 0.0
             if omax > 0:
                 ostep = _nice(omax / 3)
                 olev = np.arange(ostep, omax + ostep, ostep)
-                self._add_lines(fig, d, p, om, -olev, "#cc79a7", dash="dashed", width=2, labels=False)
-                self._add_lines(fig, d, p, om, olev, "#cc79a7", width=1.2, labels=False)
-                fig.line([], [], line_color="#cc79a7", line_width=2, legend_label=
-                         f"QG ω due to the pieces every {ostep:g} Pa/s (dashed: ascent)")
-        _legend_below(fig)
-        return fig
+                self._set_lines("om_up", d, p, om, -olev)
+                self._set_lines("om_down", d, p, om, olev)
+                text = f"QG ω due to the pieces every {ostep:g} Pa/s (dashed: ascent)"
+        self.low_legend.items[1].label = value(text)
 
 
-def _legend_below(fig):
-    if not fig.legend:
-        return
-    leg = fig.legend[0]
-    fig.center = [c for c in fig.center if c is not leg]
-    leg.orientation = "horizontal"
-    leg.label_text_font_size = "11px"
-    leg.border_line_color = None
-    leg.margin = 2
-    leg.padding = 2
-    fig.add_layout(leg, "below")
+def _legend_below(fig, legend):
+    legend.orientation = "horizontal"
+    legend.label_text_font_size = "11px"
+    legend.border_line_color = None
+    legend.margin = 2
+    legend.padding = 2
+    fig.add_layout(legend, "below")
+
+
+def lon_label(lon: float, digits: int = 1) -> str:
+    """A longitude as °E / °W (0 and 180 without a letter), e.g. ``-43.5`` -> ``43.5°W``."""
+    x = (float(lon) + 180.0) % 360.0 - 180.0
+    if abs(x) < 0.5 * 10 ** -digits or abs(abs(x) - 180.0) < 0.5 * 10 ** -digits:
+        return f"{abs(x):.{digits}f}°"
+    return f"{abs(x):.{digits}f}°{'E' if x > 0 else 'W'}"
+
+
+def lat_label(lat: float, digits: int = 1) -> str:
+    """A latitude as °N / °S, e.g. ``-33`` -> ``33.0°S``."""
+    y = float(lat)
+    if abs(y) < 0.5 * 10 ** -digits:
+        return f"{0:.{digits}f}°"
+    return f"{abs(y):.{digits}f}°{'N' if y > 0 else 'S'}"
+
+
+def _cell_data(d, p, values):
+    """(pressure, distance) values as cells around each node: edges at the geometric mean of
+    neighbouring pressures and the mid-point of neighbouring distances (levels are uneven)."""
+    pb = np.concatenate([[p[0]], np.sqrt(p[:-1] * p[1:]), [p[-1]]])
+    db = np.concatenate([[d[0]], 0.5 * (d[:-1] + d[1:]), [d[-1]]])
+    left, bottom = np.meshgrid(db[:-1], pb[:-1])
+    right, top = np.meshgrid(db[1:], pb[1:])
+    return dict(left=left.ravel(), right=right.ravel(), bottom=bottom.ravel(), top=top.ravel(),
+                value=np.asarray(values, float).ravel())
 
 
 def caution_html(case) -> str:
@@ -803,17 +956,3 @@ def caution_html(case) -> str:
     inv = invented_label(case)
     extra = f" <b>{escape(inv)}</b>" if inv else ""
     return f"<span style='font-size:12px;color:#6b4e00'>⚠ {escape(CAUTION)}{extra}</span>"
-
-
-def _shade_cells(fig, d, p, values, mapper):
-    """Shade (pressure, distance) values as cells around each node: edges at the geometric
-    mean of neighbouring pressures and the mid-point of neighbouring distances."""
-    pb = np.concatenate([[p[0]], np.sqrt(p[:-1] * p[1:]), [p[-1]]])
-    db = np.concatenate([[d[0]], 0.5 * (d[:-1] + d[1:]), [d[-1]]])
-    left, bottom = np.meshgrid(db[:-1], pb[:-1])
-    right, top = np.meshgrid(db[1:], pb[1:])
-    cells = ColumnDataSource(dict(left=left.ravel(), right=right.ravel(), bottom=bottom.ravel(),
-                                  top=top.ravel(), value=np.asarray(values).ravel()))
-    fig.quad(left="left", right="right", bottom="bottom", top="top", source=cells,
-             fill_color={"field": "value", "transform": mapper},
-             line_color={"field": "value", "transform": mapper}, line_width=0.6)

@@ -1,0 +1,68 @@
+"""The page's panels on one State, each used alone as in a notebook beside the user's own
+cells: they take the State only, watch only what they show and update in place."""
+import pytest
+from bokeh.document import Document
+
+from workbench import panels
+from workbench.errors import InputError
+from workbench.state import State
+
+TROUGH = [(-20.0, 38.0), (5.0, 38.0), (5.0, 55.0), (-20.0, 55.0)]
+
+
+@pytest.fixture
+def state(small_case):
+    return State(small_case)
+
+
+def _watched(panel):
+    names = set()
+    for obj, w in panel._watchers:
+        if obj is panel.state:
+            names.update(w.parameter_names)
+    return names
+
+
+def test_map_panel_alone_lassoes_with_the_page_settings(state):
+    mp = panels.MapPanel(state)
+    doc = Document()
+    doc.add_root(mp.layout.get_root(doc))
+    fig, src = mp.view.figure, mp.view.src["bal"]
+    state.page.param.update(layer=(100.0, 500.0), piece_name="upper")
+    piece = mp.lasso(TROUGH)
+    assert piece.name == "upper" and state.piece_names == ["upper"]
+    assert len(src.data["x0"]) > 0 and mp.view.figure is fig and mp.view.src["bal"] is src
+    state.page.lasso_makes = "region"
+    region = mp.lasso(TROUGH)
+    assert region.kind == "region" and len(state.pieces) == 1
+    n = len(doc.models)
+    for k in range(5):
+        state.time_index = k % len(state.case.times)
+    assert len(doc.models) == n
+    bundle = mp._repr_mimebundle_()
+    assert bundle  # displays by itself
+
+
+def test_panels_follow_one_state(state):
+    attr = panels.AttributionPanel(state)
+    pieces = panels.PiecesPanel(state)
+    controls = panels.CaseControls(state)
+    state.add_piece(name="upper", polygon=TROUGH, layer=(100.0, 500.0))
+    assert list(pieces.pieces_table.value["name"]) == ["upper"]
+    assert list(pieces.pieces_table.value["sign"]) == ["positive"]
+    state.set_target(-5.0, 46.0, 850.0)
+    assert "full inversion" in list(attr.attr_table.value["piece"])
+    assert "°W" in attr.attr_title.object and "°N" in attr.attr_title.object
+    controls.surface.value = "tropopause"
+    assert state.field == "potential_temperature" == controls.field.value
+    with pytest.raises(InputError, match="threshold value everywhere"):
+        state.field = "ertel_pv"
+
+
+def test_each_panel_watches_only_what_it_shows(state):
+    assert _watched(panels.PiecesPanel(state)) == {"pieces"}
+    assert _watched(panels.AnnotationPanel(state)) == {"annotations"}
+    assert _watched(panels.StatusPanel(state)) == {"status", "status_level", "busy"}
+    assert _watched(panels.AttributionPanel(state)) == {"pieces", "target", "time_index",
+                                                       "member", "reference"}
+    assert "pieces" not in _watched(panels.CaseControls(state))

@@ -1,0 +1,146 @@
+"""The common ground of the page's panels: each takes the shared State only, watches the
+parameters it shows, and reports every error in the State's status line."""
+from __future__ import annotations
+
+import time
+
+import panel as pn
+
+__all__ = ["StatePanel", "offline_extension"]
+
+_CSS = """
+.pvwb-header h2 {margin: 0 0 2px 0; font-size: 20px;}
+.pvwb-side {background: #f7f7f5; border-radius: 6px; padding: 4px;}
+"""
+
+
+def offline_extension(comms=None):
+    """Load Panel's extension with every JavaScript and stylesheet resource taken from the
+    installed packages (``pn.config.inline``), never from a CDN: forecast networks often have
+    no internet. ``comms``: Panel's notebook transport ("default", or "ipywidgets" for front
+    ends that only host ipywidgets, through jupyter_bokeh); None keeps Panel's detection."""
+    kw = {} if comms is None else {"comms": comms}
+    doc = pn.state.curdoc
+    if doc is None or getattr(doc, "session_context", None) is None:
+        # a notebook: the page's resources travel inside the cell outputs (a served page
+        # gets them from the server's own static routes)
+        pn.config.inline = True
+        kw["inline"] = True
+    pn.extension("tabulator", raw_css=[_CSS], notifications=False, **kw)
+
+
+class StatePanel:
+    """A piece of the page on one :class:`~workbench.state.State`.
+
+    Subclasses build ``self.layout`` (a Panel object) in :meth:`build` and register their
+    watchers with :meth:`watch` (so :meth:`detach` can drop them). Display one alone in a
+    notebook (``MapPanel(state)`` as the last line of a cell, or ``pn.panel(...)``).
+    """
+
+    #: State parameters that make the panel rebuild itself (a new case means a new grid)
+    rebuild_on = ("case",)
+
+    def __init__(self, state):
+        offline_extension()
+        self.state = state
+        self._watchers = []
+        self.layout = pn.Column(sizing_mode="stretch_width")
+        self._case_watcher = state.param.watch(lambda *ev: self._guard(self._rebuild),
+                                               list(self.rebuild_on))
+        self._rebuild()
+
+    # ---------------------------------------------------------------- life cycle
+    def _rebuild(self):
+        self.detach(keep_case=True)
+        objs = self.build()
+        if objs is not None:
+            self.layout[:] = list(objs) if isinstance(objs, (list, tuple)) else [objs]
+
+    def build(self):
+        """Return the panel's contents (a list of Panel objects) for the current case."""
+        raise NotImplementedError
+
+    def watch(self, fn, names, obj=None):
+        """Call ``fn`` (errors go to the status line) when ``names`` of the State (or of
+        ``obj``) change."""
+        obj = self.state if obj is None else obj
+        w = obj.param.watch(lambda *ev: self._guard(fn, *ev), list(names))
+        self._watchers.append((obj, w))
+        return w
+
+    def detach(self, keep_case=False):
+        """Stop following the State (before the panel is dropped)."""
+        for obj, w in self._watchers:
+            obj.param.unwatch(w)
+        self._watchers = []
+        if not keep_case and self._case_watcher is not None:
+            self.state.param.unwatch(self._case_watcher)
+            self._case_watcher = None
+
+    # ---------------------------------------------------------------- helpers
+    def _guard(self, fn, *args, **kwargs):
+        """Run ``fn``; any error goes to the status line (the page never dies)."""
+        try:
+            return fn(*args, **kwargs)
+        except Exception as exc:  # noqa: BLE001
+            self.state.report(exc)
+            return None
+
+    @staticmethod
+    def _doc():
+        doc = pn.state.curdoc
+        if doc is not None and getattr(doc, "session_context", None) is not None:
+            return doc
+        return None
+
+    def later(self, fn):
+        """Run ``fn`` after the current changes reached the browser (served), or now."""
+        doc = self._doc()
+        if doc is None:
+            self._guard(fn)
+        else:
+            doc.add_next_tick_callback(lambda: self._guard(fn))
+
+    def work(self, label, fn, done=None):
+        """Long work: the busy indicator and ``label`` first, then ``fn``; the status line
+        says "done (n s)" or the error."""
+        st = self.state
+        st.busy = True
+        st.set_status(label + " …", "info")
+
+        def run():
+            t0 = time.perf_counter()
+            try:
+                fn()
+                msg = done() if callable(done) else (done or "Done")
+            except Exception as exc:  # noqa: BLE001
+                st.report(exc)
+            else:
+                st.set_status(f"{msg} ({time.perf_counter() - t0:.1f} s)", "success")
+            finally:
+                st.busy = False
+
+        doc = self._doc()
+        if doc is None:
+            run()
+        else:
+            doc.add_next_tick_callback(run)
+
+    @staticmethod
+    def to_widget(widget, value):
+        """Show a State value in a widget (no echo back when it already shows it)."""
+        if widget.value != value:
+            try:
+                widget.value = value
+            except Exception:  # noqa: BLE001
+                pass
+
+    # ---------------------------------------------------------------- display
+    def __panel__(self):
+        return self.layout
+
+    def _repr_mimebundle_(self, include=None, exclude=None):
+        return self.layout._repr_mimebundle_(include, exclude)
+
+    def servable(self, title="PV Workbench"):
+        return self.layout.servable(title=title)
