@@ -52,9 +52,13 @@ def test_export_writes_cf_variables_with_provenance(state, tmp_path):
     assert not any(v.startswith("surface") for v in ds.data_vars)
     # CF standard names (from memory of the CF standard-name table) and units that a units
     # library (pint, through MetPy's registry) reads as the right dimensions
-    assert ds["upper_u"].attrs["standard_name"] == "eastward_wind"
-    assert ds["upper_v"].attrs["standard_name"] == "northward_wind"
-    assert ds["upper_relative_vorticity"].attrs["standard_name"] == "atmosphere_relative_vorticity"
+    # a piece's fields are partial fields: long_name only, never an analysed standard_name;
+    # the full inversion's QG winds are geostrophic winds
+    assert not any("standard_name" in ds[v].attrs for v in ds.data_vars if v.startswith("upper_"))
+    assert "attributed to the piece" in ds["upper_u"].attrs["long_name"]
+    assert ds["total_u"].attrs["standard_name"] == "geostrophic_eastward_wind"
+    assert ds["total_v"].attrs["standard_name"] == "geostrophic_northward_wind"
+    assert ds["total_relative_vorticity"].attrs["standard_name"] == "atmosphere_relative_vorticity"
     assert units(ds["upper_u"].attrs["units"].replace("s-1", "s**-1")).check("[velocity]")
     assert units(ds["upper_height_anomaly"].attrs["units"]).check("[length]")
     assert ds["upper_u"].attrs["piece"] == "upper"

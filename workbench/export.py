@@ -292,18 +292,19 @@ def atomic_target(
 # --------------------------------------------------------------------------- netCDF export
 
 #: CF metadata of the balanced variables (standard names from the CF standard-name table
-#: where one exists; anomalies have none and carry long_name only).
+#: where one exists; anomalies have none and carry long_name only). Only the full inversion
+#: keeps a standard_name; each piece's variables carry a long_name only.
 BALANCED_CF: dict[str, dict[str, str]] = {
     "geopotential_anomaly": {"units": "m2 s-2", "long_name": "balanced geopotential anomaly"},
     "height_anomaly": {"units": "m", "long_name": "balanced geopotential height anomaly"},
     "u": {
         "units": "m s-1",
-        "standard_name": "eastward_wind",
+        "standard_name": "geostrophic_eastward_wind",
         "long_name": "balanced (geostrophic) eastward wind of the piece",
     },
     "v": {
         "units": "m s-1",
-        "standard_name": "northward_wind",
+        "standard_name": "geostrophic_northward_wind",
         "long_name": "balanced (geostrophic) northward wind of the piece",
     },
     "relative_vorticity": {
@@ -455,8 +456,11 @@ def export_balanced(
     variables : list of str, optional
         Balanced variables to write (default every variable present).
 
-    Each piece's variable ``X`` becomes ``<piece>_X`` with its CF units,
-    standard_name (where CF has one), long_name and a ``piece`` attribute.
+    Each piece's variable ``X`` becomes ``<piece>_X`` with its CF units, a long_name that
+    says it is the part attributed to the piece (no standard_name: a partial field is not
+    the analysed quantity) and a ``piece`` attribute; the full inversion (``total_X``) keeps
+    its CF standard_name (the QG winds as ``geostrophic_eastward_wind`` /
+    ``geostrophic_northward_wind``).
     Global attributes: Conventions, title, history, source case and checksum,
     workbench_version, export_time_utc, settings (JSON), caution, and the
     invented-case label when the case is invented.
@@ -487,8 +491,14 @@ def export_balanced(
             da.attrs = {k: v for k, v in da.attrs.items() if isinstance(v, (str, int, float))}
             da.attrs.update(BALANCED_CF.get(var, {}))
             da.attrs["piece"] = str(name)
-            if "long_name" in da.attrs:
-                da.attrs["long_name"] = f"{da.attrs['long_name']} ({name})"
+            if name != "total":
+                # a piece's field is a part of the balanced field, not a quantity CF names:
+                # long_name only (the full inversion keeps the CF name)
+                da.attrs.pop("standard_name", None)
+                da.attrs["long_name"] = (f"part of the {da.attrs.get('long_name', var)} "
+                                         f"attributed to the piece ({name})")
+            elif "long_name" in da.attrs:
+                da.attrs["long_name"] = f"{da.attrs['long_name']} (full inversion)"
             out[f"{_safe_name(name)}_{var}"] = da
     for c, attrs in _COORD_CF.items():
         if c in out.coords:
