@@ -74,7 +74,7 @@ class CaseControls(StatePanel):
             label="Reference state", width=120, options=_REFERENCE_LABELS,
             value=st.reference if st.reference in REFERENCE_KINDS else
             getattr(case, "default_reference", "time_mean"))
-        self.threshold = pn.widgets.FloatInput(label="Tropopause (PVU)", value=st.threshold,
+        self.threshold = pn.widgets.FloatInput(label="Tropopause threshold (PVU)", value=st.threshold,
                                                step=0.5, start=0.5, end=10, width=120)
         self.mode = pn.widgets.RadioButtonGroup(
             label="Mouse", options=list(MODE_LABELS), orientation="vertical", width=250,

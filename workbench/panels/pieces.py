@@ -58,8 +58,8 @@ class LassoPanel(StatePanel):
         self.p_sign = pn.widgets.RadioButtonGroup(label="Sign", value=pg.sign, width=250,
                                                   options={"positive": 1, "negative": -1,
                                                            "both": 0})
-        self.p_threshold = pn.widgets.FloatInput(label="Min. |PV anomaly| (PVU)", start=0.0,
-                                                 value=float(pg.min_anomaly), step=0.1, width=120)
+        self.p_threshold = pn.widgets.FloatInput(label="Piece's minimum |PV anomaly| (PVU)", start=0.0,
+                                                 value=float(pg.min_anomaly), step=0.1, width=250)
         self.p_moist = pn.widgets.Checkbox(label="moist only (RH ≥)", value=pg.rh_min is not None,
                                            width=120, margin=(28, 5, 5, 10))
         self.p_rh = pn.widgets.IntInput(label="RH (%)", value=int(pg.rh_min or 80), start=0,

@@ -30,7 +30,8 @@ import numpy as np
 import panel as pn
 from bokeh.events import SelectionGeometry, Tap
 from bokeh.core.property.vectorization import value
-from bokeh.models import (BoxZoomTool, ColorBar, ColumnDataSource, FreehandDrawTool, HoverTool,
+from bokeh.models import (BoxZoomTool, ColorBar, ColumnDataSource, CustomJSTickFormatter,
+                          FreehandDrawTool, HoverTool,
                           Label, LassoSelectTool, Legend, LegendItem, LinearColorMapper, PanTool,
                           Range1d, ResetTool, SaveTool, TapTool, WheelZoomTool)
 from bokeh.plotting import figure
@@ -319,9 +320,16 @@ class MapView:
         fig = figure(name="pvwb-map", width=width, height=height, x_range=x_range,
                      sizing_mode="scale_width", max_width=width, min_width=280,
                      y_range=y_range, tools=list(self.tools.values()), toolbar_location="above",
-                     x_axis_label="longitude (°E)", y_axis_label="latitude (°N)",
+                     x_axis_label="longitude", y_axis_label="latitude",
                      output_backend="canvas")
         fig.toolbar.logo = None
+        # longitudes as °E/°W and latitudes as °N/°S, as in the figures and the briefing
+        fig.xaxis.formatter = CustomJSTickFormatter(code=(
+            "const x = ((tick + 180) % 360 + 360) % 360 - 180;"
+            "return Math.abs(x) < 1e-9 || Math.abs(Math.abs(x) - 180) < 1e-9 ? "
+            "Math.abs(x) + '°' : Math.abs(x) + (x > 0 ? '°E' : '°W');"))
+        fig.yaxis.formatter = CustomJSTickFormatter(code=(
+            "return Math.abs(tick) < 1e-9 ? '0°' : Math.abs(tick) + (tick > 0 ? '°N' : '°S');"))
         fig.toolbar.active_scroll = self.tools["wheel"]
         fig.toolbar.active_drag = self.tools["pan"]
         fig.title.text_font_size = "13px"
@@ -951,8 +959,29 @@ def _cell_data(d, p, values):
                 value=np.asarray(values, float).ravel())
 
 
+def f0_caveat(case) -> str:
+    """The constant-f0 caveat of the QG inversion for this case's domain (plain text)."""
+    lat = np.asarray(case.data["latitude"].values, float)
+    f0 = float(case.f0)
+    from ..units import OMEGA
+
+    phi0 = math.degrees(math.asin(max(-1.0, min(1.0, f0 / (2 * float(OMEGA))))))
+    s = np.abs(np.sin(np.radians([lat.min(), lat.max()])))
+    ratio = float(s.max() / max(s.min(), 1e-6))
+    text = (f"The QG inversion uses one Coriolis parameter, f0 at {lat_label(phi0)}; "
+            f"|f| varies by a factor {ratio:.1f} over this domain")
+    return text + (", so balanced fields far from that latitude are rough." if ratio > 2
+                   else ".")
+
+
 def caution_html(case) -> str:
-    """The caution line (and the invented-case label) for the page header."""
+    """The caution line (and the invented-case label) for the page header, and the
+    constant-f0 caveat of the inversion."""
     inv = invented_label(case)
     extra = f" <b>{escape(inv)}</b>" if inv else ""
-    return f"<span style='font-size:12px;color:#6b4e00'>⚠ {escape(CAUTION)}{extra}</span>"
+    try:
+        f0_line = f"<br><span class='pvwb-f0'>ⓘ {escape(f0_caveat(case))}</span>"
+    except Exception:  # noqa: BLE001  (a header must never fail)
+        f0_line = ""
+    return (f"<span style='font-size:12px;color:#6b4e00'>⚠ {escape(CAUTION)}{extra}"
+            f"{f0_line}</span>")
