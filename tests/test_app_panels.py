@@ -66,3 +66,46 @@ def test_each_panel_watches_only_what_it_shows(state):
     assert _watched(panels.AttributionPanel(state)) == {"pieces", "target", "time_index",
                                                        "member", "reference"}
     assert "pieces" not in _watched(panels.CaseControls(state))
+
+
+def test_projected_case_drawn_in_its_projection_with_a_switch(tmp_path):
+    """A Lambert conformal file: the map's axes are the projection plane (pyproj checks the
+    corner), a lasso drawn there reaches the State as lon/lat, and the switch redraws the map
+    on longitude-latitude."""
+    import numpy as np
+    import pyproj
+
+    import workbench as wb
+    import forecast_files as ff
+
+    path = tmp_path / "lambert.nc"
+    ff.write_cf_netcdf(path, "lambert", grid_relative=True)
+    case = wb.open_case(path)
+    state = State(case)
+    mp = panels.MapPanel(state)
+    fig = mp.view.figure
+    crs = pyproj.CRS.from_wkt(case.data.attrs["native_crs"])
+    to_xy = pyproj.Transformer.from_crs("EPSG:4326", crs, always_xy=True)
+    d = case.domain
+    lon0, lat0 = 0.5 * (d["lon_min"] + d["lon_max"]), 0.5 * (d["lat_min"] + d["lat_max"])
+    x0, y0 = to_xy.transform(lon0, lat0)
+    assert fig.x_range.start < x0 < fig.x_range.end and fig.y_range.start < y0 < fig.y_range.end
+    assert fig.x_range.end - fig.x_range.start > 1e5  # metres, not degrees
+    ring = [(x0 + 3e5 * np.cos(t), y0 + 3e5 * np.sin(t)) for t in np.linspace(0, 2 * np.pi, 24)]
+    lonlat = [to_xy.transform(x, y, direction="INVERSE") for x, y in ring]
+    from bokeh.events import SelectionGeometry
+
+    xs, ys = zip(*ring)  # the gesture as the browser reports it, in the plane's metres
+    fig._trigger_event(SelectionGeometry(fig, geometry=dict(type="poly", x=list(xs),
+                                                            y=list(ys)), final=True))
+    assert len(state.pieces) == 1, state.status
+    piece = state.pieces[0]
+    np.testing.assert_allclose(np.asarray(piece.polygon), np.asarray(lonlat), atol=1e-6)
+    img = mp.view.src["field"].data["image"][0]
+    assert np.isfinite(img).mean() > 0.5  # the field fills most of the plane's box
+    state.page.map_projection = "lonlat"
+    flat = mp.view.figure
+    assert flat is not fig and flat.x_range.end - flat.x_range.start < 360
+    assert len(mp.view.src["pieces"].data["xs"]) == 1
+    np.testing.assert_allclose(mp.view.src["pieces"].data["xs"][0],
+                               [p[0] for p in piece.polygon])

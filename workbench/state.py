@@ -179,6 +179,9 @@ class PageChoices(param.Parameterized):
     folders the page may read from and write to. Lives at ``State.page`` so that every panel
     needs only the State."""
 
+    map_projection = param.Selector(default="native", objects=["native", "lonlat"],
+                                    doc="Draw the map in the data's own projection (when the "
+                                        "case has one) or on longitude-latitude.")
     mouse_mode = param.Selector(default="lasso", objects=["pan", "lasso", "section", "target",
                                                           "label"],
                                 doc="What a drag or click on the map does.")

@@ -71,11 +71,11 @@ class CaseControls(StatePanel):
                                        options={f"{p:g} hPa": float(p) for p in case.levels_hpa},
                                        value=float(st.overlay_level))
         self.reference = pn.widgets.Select(
-            label="Reference state", width=120, options=_REFERENCE_LABELS,
+            label="Reference state", width=250, options=_REFERENCE_LABELS,
             value=st.reference if st.reference in REFERENCE_KINDS else
             getattr(case, "default_reference", "time_mean"))
         self.threshold = pn.widgets.FloatInput(label="Tropopause threshold (PVU)", value=st.threshold,
-                                               step=0.5, start=0.5, end=10, width=120)
+                                               step=0.5, start=0.5, end=10, width=250)
         self.mode = pn.widgets.RadioButtonGroup(
             label="Mouse", options=list(MODE_LABELS), orientation="vertical", width=250,
             value={v: k for k, v in MODE_LABELS.items()}[st.page.mouse_mode],
@@ -103,8 +103,15 @@ class CaseControls(StatePanel):
                    obj=self.mode)
         self.watch(lambda *ev: self.to_widget(self.mode, {v: k for k, v in MODE_LABELS.items()}
                                               [st.page.mouse_mode]), ["mouse_mode"], obj=st.page)
+        self.map_projection = pn.widgets.RadioButtonGroup(
+            label="Map drawn in", width=250, value=st.page.map_projection,
+            options={"the data's projection": "native", "longitude–latitude": "lonlat"},
+            visible=bool(case.data.attrs.get("native_crs")), css_classes=["pvwb-projection"])
+        self.watch(lambda ev: setattr(st.page, "map_projection", ev.new), ["value"],
+                   obj=self.map_projection)
         return [TextMarkdownOnce("**Map**"), pn.Row(self.time, self.prev_t, self.next_t),
-                self.surface, self.field, pn.Row(self.threshold, self.reference),
+                self.surface, self.field, self.map_projection,
+                self.threshold, self.reference,
                 pn.layout.Divider(margin=(4, 5)),
                 TextMarkdownOnce("**Mouse on the map**"), self.mode,
                 pn.Row(self.level)]

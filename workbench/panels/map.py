@@ -19,6 +19,8 @@ class MapPanel(StatePanel):
     """The map (:class:`~workbench.views.interactive.MapView`, built once per case and
     updated in place). Usable alone: ``MapPanel(state)`` in a notebook cell; the mouse mode
     and the next lasso's settings are ``state.page`` (``state.page.mouse_mode = "section"``).
+    A case on a projected grid is drawn in its own projection unless
+    ``state.page.map_projection = "lonlat"`` (lasso outlines come back as lon/lat).
     """
 
     def __init__(self, state, width=820):
@@ -36,13 +38,15 @@ class MapPanel(StatePanel):
             self.view = None
         if st.case is None:
             return []
-        self.view = mv = MapView(st, width=self.width)
+        self.view = mv = MapView(st, width=self.width, projection=st.page.map_projection)
         mv.on_lasso = lambda poly: self._guard(lasso, st, poly)
         mv.on_section = lambda a, b: self._guard(draw_section, st, a, b)
         mv.on_tap = lambda x, y: self._guard(pick_target, st, x, y)
         mv.on_label = lambda x, y: self._guard(place_label, st, x, y)
         mv.set_mode(st.page.mouse_mode)
         self.watch(lambda *ev: mv.set_mode(st.page.mouse_mode), ["mouse_mode"], obj=st.page)
+        # the projection switch rebuilds the map (a new plane), like a new case
+        self.watch(lambda *ev: self._rebuild(), ["map_projection"], obj=st.page)
         notes = ["grey arrows: wind on the map surface", "black line: the tropopause "
                  "threshold on PV maps", mv.coast_note]
         return [mv.pane, TextMarkdown(" · ".join(notes), margin=(0, 10),

@@ -216,6 +216,16 @@ def _empty_vectors():
     return dict(x0=[], y0=[], x1=[], y1=[], speed=[]), dict(x=[], y=[], angle=[])
 
 
+def _lonlat_axes(fig):
+    """Longitudes as °E/°W and latitudes as °N/°S, as in the figures and the briefing."""
+    fig.xaxis.formatter = CustomJSTickFormatter(code=(
+        "const x = ((tick + 180) % 360 + 360) % 360 - 180;"
+        "return Math.abs(x) < 1e-9 || Math.abs(Math.abs(x) - 180) < 1e-9 ? "
+        "Math.abs(x) + '°' : Math.abs(x) + (x > 0 ? '°E' : '°W');"))
+    fig.yaxis.formatter = CustomJSTickFormatter(code=(
+        "return Math.abs(tick) < 1e-9 ? '0°' : Math.abs(tick) + (tick > 0 ? '°N' : '°S');"))
+
+
 def _push(pane):
     """In a notebook (no server), send in-place model changes to the page."""
     doc = pn.state.curdoc
@@ -261,7 +271,7 @@ class MapView:
     updates data sources in place. ``pane`` is the Panel pane to put in a layout.
     """
 
-    def __init__(self, state, width=820, max_height=640):
+    def __init__(self, state, width=820, max_height=640, projection=None):
         self.state = state
         self.on_lasso = None
         self.on_section = None
@@ -275,8 +285,13 @@ class MapView:
         lon = case.data["longitude"].values
         self.lon, self.lat = lon, lat
         self.coslat0 = math.cos(math.radians(0.5 * (lat.min() + lat.max())))
-        dlon, dlat = float(lon.max() - lon.min()), float(lat.max() - lat.min())
-        height = int(width * dlat / max(dlon * self.coslat0, 1e-6))
+        self._setup_projection(case, projection)
+        if self.native:
+            (x0, x1), (y0, y1) = self.bounds
+            height = int(width * (y1 - y0) / max(x1 - x0, 1e-6))
+        else:
+            dlon, dlat = float(lon.max() - lon.min()), float(lat.max() - lat.min())
+            height = int(width * dlat / max(dlon * self.coslat0, 1e-6))
         if height > max_height:
             width, height = int(width * max_height / height), max_height
         self._build(width, max(height, 240))
@@ -300,15 +315,98 @@ class MapView:
             self.state.param.unwatch(w)
         self._watchers = []
 
+    # ---------------------------------------------------------------- projection
+    def _setup_projection(self, case, projection):
+        """Display in the data's own projection (``case.data.attrs["native_crs"]``, WKT) when
+        ``projection`` is "native" or None and the case has one; else on longitude-latitude.
+        pyproj transforms display coordinates only; gestures come back as (lon, lat)."""
+        wkt = case.data.attrs.get("native_crs")
+        self.native = bool(wkt) and projection in (None, "native")
+        self._angles = {}
+        if not self.native:
+            self.bounds = None
+            return
+        import pyproj
+
+        crs = pyproj.CRS.from_wkt(wkt)
+        self._fwd_t = pyproj.Transformer.from_crs("EPSG:4326", crs, always_xy=True)
+        self._inv_t = pyproj.Transformer.from_crs(crs, "EPSG:4326", always_xy=True)
+        # the plane's box around the domain's outline, and a display grid inside it
+        lon, lat = self.lon, self.lat
+        edge_lon = np.concatenate([lon, np.full(len(lat), lon[-1]), lon[::-1], np.full(len(lat), lon[0])])
+        edge_lat = np.concatenate([np.full(len(lon), lat[0]), lat, np.full(len(lon), lat[-1]), lat[::-1]])
+        ex, ey = self._fwd_t.transform(edge_lon, edge_lat)
+        self.bounds = ((float(np.min(ex)), float(np.max(ex))), (float(np.min(ey)), float(np.max(ey))))
+        (x0, x1), (y0, y1) = self.bounds
+        nx = int(min(400, max(len(lon), len(lat)) * 1.5))
+        ny = max(2, int(round(nx * (y1 - y0) / max(x1 - x0, 1e-6))))
+        self._gx = np.linspace(x0, x1, nx)
+        self._gy = np.linspace(y0, y1, ny)
+        GX, GY = np.meshgrid(self._gx, self._gy)
+        glon, glat = self._inv_t.transform(GX, GY)
+        # longitudes of the display grid on the data's branch (domains may pass 180)
+        glon = np.where(glon < lon.min() - 180.0, glon + 360.0, glon)
+        glon = np.where(glon > lon.max() + 180.0, glon - 360.0, glon)
+        self._glonlat = (glat, glon)
+
+    def fwd(self, lon, lat):
+        """(lon, lat) -> display (x, y): the projection plane (m) or lon/lat itself."""
+        lon, lat = np.asarray(lon, float), np.asarray(lat, float)
+        if not self.native or lon.size == 0:
+            return lon, lat
+        return self._fwd_t.transform(lon, lat)
+
+    def inv(self, x, y):
+        """Display (x, y) -> (lon, lat)."""
+        x, y = np.asarray(x, float), np.asarray(y, float)
+        if not self.native or x.size == 0:
+            return x, y
+        lon, lat = self._inv_t.transform(x, y)
+        lon = np.where(lon < self.lon.min() - 180.0, lon + 360.0, lon)
+        lon = np.where(lon > self.lon.max() + 180.0, lon - 360.0, lon)
+        return lon, lat
+
+    def _set(self, key, data):
+        """Replace a source's data, its (lon, lat) columns moved to the display plane."""
+        if self.native:
+            data = dict(data)
+            if "xs" in data:
+                xs, ys = [], []
+                for a, b in zip(data["xs"], data["ys"]):
+                    px, py = self.fwd(a, b)
+                    xs.append(np.asarray(px).tolist())
+                    ys.append(np.asarray(py).tolist())
+                data["xs"], data["ys"] = xs, ys
+            for kx, ky in (("x", "y"), ("x0", "y0"), ("x1", "y1")):
+                if kx in data:
+                    px, py = self.fwd(data[kx], data[ky])
+                    data[kx], data[ky] = np.asarray(px).tolist(), np.asarray(py).tolist()
+        self.src[key].data = data
+
+    def _set_vectors(self, key, shafts, heads, head_key=None):
+        """Arrow shafts and heads; in the projection plane the heads point along the
+        projected shafts."""
+        head_key = head_key or f"{key}_head"
+        self._set(key, shafts)
+        if self.native and len(shafts.get("x0", [])):
+            d = self.src[key].data
+            dx = np.asarray(d["x1"], float) - np.asarray(d["x0"], float)
+            dy = np.asarray(d["y1"], float) - np.asarray(d["y0"], float)
+            heads = dict(heads, angle=(np.arctan2(dy, dx) - np.pi / 2).tolist())
+        self._set(head_key, heads)
+
     # ---------------------------------------------------------------- build (once)
     def _build(self, width, height):
         lon, lat = self.lon, self.lat
-        pad_x = 0.5 * float(lon[1] - lon[0]) if len(lon) > 1 else 0.5
-        pad_y = 0.5 * float(abs(lat[1] - lat[0])) if len(lat) > 1 else 0.5
-        x_range = Range1d(float(lon.min()) - pad_x, float(lon.max()) + pad_x,
-                          bounds=(float(lon.min()) - pad_x, float(lon.max()) + pad_x))
-        y_range = Range1d(float(lat.min()) - pad_y, float(lat.max()) + pad_y,
-                          bounds=(float(lat.min()) - pad_y, float(lat.max()) + pad_y))
+        if self.native:
+            (xa, xb), (ya, yb) = self.bounds
+        else:
+            pad_x = 0.5 * float(lon[1] - lon[0]) if len(lon) > 1 else 0.5
+            pad_y = 0.5 * float(abs(lat[1] - lat[0])) if len(lat) > 1 else 0.5
+            xa, xb = float(lon.min()) - pad_x, float(lon.max()) + pad_x
+            ya, yb = float(lat.min()) - pad_y, float(lat.max()) + pad_y
+        x_range = Range1d(xa, xb, bounds=(xa, xb))
+        y_range = Range1d(ya, yb, bounds=(ya, yb))
         self.tools = dict(
             pan=PanTool(), wheel=WheelZoomTool(), box=BoxZoomTool(), reset=ResetTool(),
             save=SaveTool(),
@@ -323,13 +421,14 @@ class MapView:
                      x_axis_label="longitude", y_axis_label="latitude",
                      output_backend="canvas")
         fig.toolbar.logo = None
-        # longitudes as °E/°W and latitudes as °N/°S, as in the figures and the briefing
-        fig.xaxis.formatter = CustomJSTickFormatter(code=(
-            "const x = ((tick + 180) % 360 + 360) % 360 - 180;"
-            "return Math.abs(x) < 1e-9 || Math.abs(Math.abs(x) - 180) < 1e-9 ? "
-            "Math.abs(x) + '°' : Math.abs(x) + (x > 0 ? '°E' : '°W');"))
-        fig.yaxis.formatter = CustomJSTickFormatter(code=(
-            "return Math.abs(tick) < 1e-9 ? '0°' : Math.abs(tick) + (tick > 0 ? '°N' : '°S');"))
+        if self.native:  # distances on the projection plane
+            fig.xaxis.axis_label = "x on the data's projection (km)"
+            fig.yaxis.axis_label = "y (km)"
+            km = CustomJSTickFormatter(code="return (tick / 1000).toFixed(0);")
+            fig.xaxis.formatter = km
+            fig.yaxis.formatter = CustomJSTickFormatter(code="return (tick / 1000).toFixed(0);")
+        else:
+            _lonlat_axes(fig)
         fig.toolbar.active_scroll = self.tools["wheel"]
         fig.toolbar.active_drag = self.tools["pan"]
         fig.title.text_font_size = "13px"
@@ -420,8 +519,10 @@ class MapView:
                            nonselection_alpha=0.0, selection_alpha=0.0, name="pvwb-grid-points")
         self.tools["lasso"].renderers = [grid]
         self.tools["target"].renderers = [grid]
-        fig.add_tools(HoverTool(renderers=[self.image], tooltips=[
-            ("lon", "$x{0.00}"), ("lat", "$y{0.00}"), ("value", "@image{0.00}")]))
+        tips = ([("x, y (m)", "$x{0,0}, $y{0,0}")] if self.native else
+                [("lon", "$x{0.00}"), ("lat", "$y{0.00}")])
+        fig.add_tools(HoverTool(renderers=[self.image], tooltips=tips + [("value",
+                                                                          "@image{0.00}")]))
         self.key = Label(x=6, y=6, x_units="screen", y_units="screen", text="",
                          text_font_size="11px", background_fill_color="white",
                          background_fill_alpha=0.8, name="pvwb-overlay-key")
@@ -432,10 +533,10 @@ class MapView:
         # lasso hit-test points: a coarse grid (display only)
         step = max(1, int(round(len(lon) / 40)))
         gx, gy = np.meshgrid(lon[::step], self.lat[::step])
-        src["grid"].data = dict(x=gx.ravel().tolist(), y=gy.ravel().tolist())
+        self._set("grid", dict(x=gx.ravel().tolist(), y=gy.ravel().tolist()))
         d = self.state.case.domain
         xs, ys, note = coastline_lines(d["lon_min"], d["lon_max"], d["lat_min"], d["lat_max"])
-        src["coast"].data = dict(xs=xs, ys=ys)
+        self._set("coast", dict(xs=xs, ys=ys))
         self.coast_note = note
 
     # ---------------------------------------------------------------- modes and events
@@ -467,13 +568,15 @@ class MapView:
         xs, ys = g.get("x"), g.get("y")
         if xs is None or len(xs) < 3:
             return
-        poly = [(float(x), float(y)) for x, y in zip(xs, ys)]
+        lon, lat = self.inv(xs, ys)  # the State holds (lon, lat), whatever the display
+        poly = [(float(x), float(y)) for x, y in zip(lon, lat)]
         self.on_lasso(poly)
 
     def _tap_event(self, event):
         if event.x is None or event.y is None:
             return
-        self.last_click = (float(event.x), float(event.y))
+        lon, lat = self.inv([event.x], [event.y])
+        self.last_click = (float(lon[0]), float(lat[0]))
         page = getattr(self.state, "page", None)
         if page is not None:
             page.last_click = self.last_click
@@ -491,7 +594,8 @@ class MapView:
         self.src["stroke"].data = dict(xs=[], ys=[])
         if len(x) < 2 or self.on_section is None:
             return
-        self.on_section((float(x[0]), float(y[0])), (float(x[-1]), float(y[-1])))
+        lon, lat = self.inv([x[0], x[-1]], [y[0], y[-1]])
+        self.on_section((float(lon[0]), float(lat[0])), (float(lon[1]), float(lat[1])))
 
     # ---------------------------------------------------------------- refresh
     def _safe(self, fn):
@@ -514,16 +618,33 @@ class MapView:
         z = np.asarray(da.transpose("latitude", "longitude").values, float)
         pal, lo, hi, title, scale = field_style(st.field, z)
         img = z * scale
-        if len(lat) > 2 and np.ptp(np.diff(lat)) > 1e-6 * abs(lat[-1] - lat[0]):
+        if self.native:
+            # display only: the field sampled (bilinear in lon/lat) at a regular grid of the
+            # projection plane
+            from scipy.interpolate import RegularGridInterpolator
+
+            glat, glon = self._glonlat
+            f = RegularGridInterpolator((lat, lon), img, bounds_error=False, fill_value=np.nan)
+            pimg = f(np.stack([glat.ravel(), glon.ravel()], axis=-1)).reshape(glat.shape)
+            gx, gy = self._gx, self._gy
+            dx, dy = float(gx[1] - gx[0]), float(gy[1] - gy[0])
+            self.src["field"].data = dict(image=[pimg], x=[float(gx[0]) - dx / 2],
+                                          y=[float(gy[0]) - dy / 2], dw=[dx * len(gx)],
+                                          dh=[dy * len(gy)])
+            img = None
+        if img is None:
+            pass
+        elif len(lat) > 2 and np.ptp(np.diff(lat)) > 1e-6 * abs(lat[-1] - lat[0]):
             # display on a uniform latitude grid (the image glyph needs one)
             ulat = np.linspace(lat.min(), lat.max(), len(lat))
             img = np.array([np.interp(ulat, lat, img[:, i]) for i in range(img.shape[1])]).T
             lat = ulat
-        dx = float(lon[1] - lon[0]) if len(lon) > 1 else 1.0
-        dy = float(lat[1] - lat[0]) if len(lat) > 1 else 1.0
-        self.src["field"].data = dict(image=[img], x=[float(lon[0]) - dx / 2],
-                                      y=[float(lat[0]) - dy / 2], dw=[dx * len(lon)],
-                                      dh=[dy * len(lat)])
+        if img is not None:
+            dx = float(lon[1] - lon[0]) if len(lon) > 1 else 1.0
+            dy = float(lat[1] - lat[0]) if len(lat) > 1 else 1.0
+            self.src["field"].data = dict(image=[img], x=[float(lon[0]) - dx / 2],
+                                          y=[float(lat[0]) - dy / 2], dw=[dx * len(lon)],
+                                          dh=[dy * len(lat)])
         self.mapper.update(palette=list(pal), low=lo, high=hi)
         self.colorbar.title = title
         if st.field == "ertel_pv":  # the threshold contour: the dynamic tropopause's trace
@@ -531,7 +652,7 @@ class MapView:
                 np.nanmean(st.case.data["latitude"].values))])
         else:
             xs, ys = [], []
-        self.src["trop"].data = dict(xs=xs, ys=ys)
+        self._set("trop", dict(xs=xs, ys=ys))
         self._refresh_wind()
         t = st.time_labels[st.time_index]
         label, units = FIELD_LABELS.get(st.field, (st.field, ""))[:2]
@@ -547,7 +668,7 @@ class MapView:
             v = st.case.map_field("v", st.surface, reference=st.reference,
                                   threshold=st.threshold, **st._sel())
         except Exception:
-            self.src["wind"].data, self.src["wind_head"].data = _empty_vectors()
+            self._set_vectors("wind", *_empty_vectors())
             return
         stride = max(1, int(round(len(self.lon) / 22)))
         spacing = stride * float(abs(self.lat[1] - self.lat[0]) if len(self.lat) > 1 else 1.0)
@@ -556,17 +677,16 @@ class MapView:
                                      u.transpose("latitude", "longitude").values,
                                      v.transpose("latitude", "longitude").values,
                                      stride, scale, self.coslat0, min_speed=1.0)
-        self.src["wind"].data = shafts
-        self.src["wind_head"].data = heads
+        self._set_vectors("wind", shafts, heads)
 
     def refresh_overlay(self):
         """Balanced flow of the visible pieces: vectors and height-anomaly contours, in place."""
         st = self.state
         ov = st.overlay() if st.pieces else None
         if ov is None:
-            self.src["bal"].data, self.src["bal_head"].data = _empty_vectors()
-            self.src["zpos"].data = dict(xs=[], ys=[])
-            self.src["zneg"].data = dict(xs=[], ys=[])
+            self._set_vectors("bal", *_empty_vectors())
+            self._set("zpos", dict(xs=[], ys=[]))
+            self._set("zneg", dict(xs=[], ys=[]))
             self.key.text = "" if not st.pieces else "no visible piece (show one in the list)"
             return
         lon, lat = ov["longitude"].values, ov["latitude"].values
@@ -580,15 +700,14 @@ class MapView:
         spacing = stride * float(abs(lat[1] - lat[0]) if len(lat) > 1 else 1.0)
         shafts, heads = _vector_data(lon, lat, u, v, stride, 1.1 * spacing / ref, self.coslat0,
                                      min_speed=0.05 * ref)
-        self.src["bal"].data = shafts
-        self.src["bal_head"].data = heads
+        self._set_vectors("bal", shafts, heads)
         zmax = float(np.nanmax(np.abs(z))) if np.isfinite(z).any() else 0.0
         step = _nice(zmax / 5.0) if zmax > 0 else 1.0
         levels = np.arange(step, zmax + step, step)
         xs, ys = _contour_lines(lon, lat, z, levels)
-        self.src["zpos"].data = dict(xs=xs, ys=ys)
+        self._set("zpos", dict(xs=xs, ys=ys))
         xs, ys = _contour_lines(lon, lat, z, -levels)
-        self.src["zneg"].data = dict(xs=xs, ys=ys)
+        self._set("zneg", dict(xs=xs, ys=ys))
         names = ", ".join(ov.attrs["pieces"])
         self.key.text = (f"balanced flow at {ov.attrs['level_hpa']:g} hPa of {names}: "
                          f"arrow ≈ {ref:g} m/s per spacing; Z′ every {step:g} m "
@@ -612,8 +731,8 @@ class MapView:
             ly.append(cy)
             lt.append(p.name if p.visible else f"{p.name} (hidden)")
             lc.append(c)
-        self.src["pieces"].data = dict(xs=xs, ys=ys, colour=col, name=names, alpha=alpha)
-        self.src["piece_labels"].data = dict(x=lx, y=ly, text=lt, colour=lc)
+        self._set("pieces", dict(xs=xs, ys=ys, colour=col, name=names, alpha=alpha))
+        self._set("piece_labels", dict(x=lx, y=ly, text=lt, colour=lc))
 
     def refresh_sections(self):
         st = self.state
@@ -630,12 +749,12 @@ class MapView:
                 ex += [float(lon[0]), float(lon[-1])]
                 ey += [float(lat[0]), float(lat[-1])]
                 et += ["A", "B"]
-        self.src["sections"].data = dict(xs=xs, ys=ys, width=w, alpha=al)
-        self.src["section_ends"].data = dict(x=ex, y=ey, text=et)
+        self._set("sections", dict(xs=xs, ys=ys, width=w, alpha=al))
+        self._set("section_ends", dict(x=ex, y=ey, text=et))
 
     def refresh_target(self):
         t = self.state.target
-        self.src["target"].data = dict(x=[] if t is None else [t[0]], y=[] if t is None else [t[1]])
+        self._set("target", dict(x=[] if t is None else [t[0]], y=[] if t is None else [t[1]]))
 
     def refresh_annotations(self):
         """The state's map annotations: labels (their colour, size and box), arrows (shaft
@@ -683,10 +802,9 @@ class MapView:
                 if a.label:
                     cx, cy = a.centroid()
                     put(cx, cy, a.label, a.colour)
-        self.src["ann_text"].data = text
-        self.src["ann_poly"].data = poly
-        self.src["ann_arrow"].data = arrow
-        self.src["ann_head"].data = head
+        self._set("ann_text", text)
+        self._set("ann_poly", poly)
+        self._set_vectors("ann_arrow", arrow, head, head_key="ann_head")
 
 
 # --------------------------------------------------------------------------- the section
@@ -980,7 +1098,7 @@ def caution_html(case) -> str:
     inv = invented_label(case)
     extra = f" <b>{escape(inv)}</b>" if inv else ""
     try:
-        f0_line = f"<br><span class='pvwb-f0'>ⓘ {escape(f0_caveat(case))}</span>"
+        f0_line = f"<br><span class='pvwb-f0'>Note: {escape(f0_caveat(case))}</span>"
     except Exception:  # noqa: BLE001  (a header must never fail)
         f0_line = ""
     return (f"<span style='font-size:12px;color:#6b4e00'>⚠ {escape(CAUTION)}{extra}"
