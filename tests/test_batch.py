@@ -26,13 +26,52 @@ def test_batch_serial_matches_single_analyses(small_case_path):
 
 
 def test_batch_on_local_dask_cluster(small_case_path):
+    import os
+
     distributed = pytest.importorskip("dask.distributed")
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, host="127.0.0.1", processes=True,
-                                  dashboard_address=None) as cluster, distributed.Client(cluster) as client:
+    from workbench.batch import local_cluster
+
+    with local_cluster(2) as cluster, distributed.Client(cluster) as client:
         assert all(addr.startswith("tcp://127.0.0.1") for addr in client.scheduler_info()["workers"])
+        # the nanny's default MALLOC_TRIM_THRESHOLD_ (which doubles a task's time) is not set
+        assert set(client.run(lambda: os.environ.get("MALLOC_TRIM_THRESHOLD_")).values()) == {None}
         par = run_batch(small_case_path, client=client)
     ser = run_batch(small_case_path)
     pd.testing.assert_frame_equal(par.reset_index(drop=True), ser.reset_index(drop=True), rtol=1e-10)
+
+
+def test_tasks_on_one_single_thread_worker_do_not_deadlock(small_case_path):
+    # two tasks queued on one single-thread worker, the case not yet open there: the first
+    # opens it (computing Dask arrays), the second waits for it. Computing through the worker's
+    # client would secede and never get the thread back (deadlock); tasks compute locally.
+    distributed = pytest.importorskip("dask.distributed")
+    from workbench.batch import _task, local_cluster
+
+    with local_cluster(1) as cluster, distributed.Client(cluster) as client:
+        futures = [client.submit(_task, str(small_case_path), ti, None, None, None, ("time_mean", None), {},
+                                 pure=False) for ti in (0, 1)]
+        distributed.wait(futures, timeout=60)  # raises TimeoutError on a deadlock
+        tables = [f.result()[0] for f in futures]
+    assert [t["time"].nunique() for t in tables] == [1, 1]
+    assert tables[0]["time"][0] != tables[1]["time"][0]
+
+
+def test_reference_from_partial_sums_is_the_time_mean(small_case_path):
+    # the cluster's time-mean reference (partial sums per worker, then combined) against
+    # numpy's nanmean over the complete fields of every time (outside check: NumPy)
+    from workbench.batch import _reference_combine, _reference_part
+
+    case = wb.open_case(small_case_path)
+    n = case.times.size
+    parts = [_reference_part(str(small_case_path), {}, [(ti, None)]) for ti in range(n)]
+    name, ref = _reference_combine("time_mean", parts)
+    assert name == "time_mean"
+    own = case.reference("time_mean")
+    for v in ("temperature", "geopotential", "u", "v"):
+        stack = np.stack([case._complete(ti, None, store=False)[0][v].values for ti in range(n)])
+        np.testing.assert_allclose(ref[v].values, np.nanmean(stack, axis=0), rtol=1e-13)
+        np.testing.assert_allclose(ref[v].values, own[v].values, rtol=1e-13)
+        assert ref[v].dims == own[v].dims and ref[v].attrs == own[v].attrs
 
 
 def test_batch_cli_writes_table(small_case_path, tmp_path, capsys):

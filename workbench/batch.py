@@ -1,13 +1,20 @@
 """Batch: the same pieces over every time and ensemble member, serially or on a Dask cluster.
 
 What each task needs is sent once: the case is opened once per worker process (kept by path and
-options, :func:`_worker_case`), the reference state is computed once (serially on the client, or
-as one task on the cluster whose result Dask keeps and hands to every task) and put in that
-case's cache, so no task re-reads every time or re-interpolates a climatology. Tasks are the
+options, :func:`_worker_case`), the reference state is computed once (serially on the client; on
+a cluster the time mean as one partial sum per worker, combined by one task, other references
+as one task; Dask keeps the result and hands it to every task) and put in that case's cache, so
+no task re-reads every time or re-interpolates a climatology. Tasks are the
 (time, member) pairs; each runs :func:`workbench.analysis.analyse` and, with ``store=``, writes
 its attribution table into its own region of a Zarr store (``done`` flag last), so a rerun skips
 finished work. Warnings raised in a task come back with its result and are re-issued on the
 client once each (the CLI shows them as one-line notes). Computation only.
+
+Dask arrays of the case are computed inside the task, in the task's own thread (Dask's
+synchronous scheduler; :func:`_local_dask`), never handed back to the cluster: a task that
+computes through the worker's client secedes from the worker's thread pool and must later rejoin
+it, and with one thread per worker a second task holding the slot (waiting for the case this one
+is opening) deadlocks the worker. It also saves a scheduler round trip per array read.
 """
 from __future__ import annotations
 
@@ -21,7 +28,7 @@ import pandas as pd
 
 from .errors import InputError
 
-__all__ = ["run_batch", "main", "COLUMNS"]
+__all__ = ["run_batch", "local_cluster", "main", "COLUMNS"]
 
 #: the attribution columns kept per piece row
 COLUMNS = ("height_anomaly", "u", "v", "wind_speed", "relative_vorticity", "height_share_pct",
@@ -29,6 +36,20 @@ COLUMNS = ("height_anomaly", "u", "v", "wind_speed", "relative_vorticity", "heig
 
 _CASES: dict = {}
 _CASES_LOCK = threading.Lock()
+_LOCAL_DASK_SET = False
+
+
+def _local_dask():
+    """Compute Dask arrays in the calling thread from now on in this worker process (Dask's
+    synchronous scheduler), instead of through the worker's client; see the module docstring.
+    Set once per process and left set (``dask.config`` is process-wide, so a per-task context
+    would race between a worker's threads)."""
+    global _LOCAL_DASK_SET
+    if not _LOCAL_DASK_SET:
+        import dask
+
+        dask.config.set(scheduler="synchronous")
+        _LOCAL_DASK_SET = True
 
 
 def _worker_case(path, options, ref_name, ref):
@@ -55,9 +76,66 @@ def forget_cases():
 
 
 def _reference(path, options, reference):
-    """(name, Dataset): the reference state on the case grid, computed once."""
+    """(name, Dataset): the reference state on the case grid, computed once (a cluster task)."""
+    _local_dask()
     case = _worker_case(path, options, None, None)
     return reference, case.reference(reference)
+
+
+_REF_VARS = ["temperature", "geopotential", "u", "v"]
+
+
+def _reference_part(path, options, pairs):
+    """Partial sums of the time-mean reference over some (time, member) pairs: (total, count),
+    NaN skipped as in :meth:`Case.reference` (a cluster task; opens the case on its worker)."""
+    _local_dask()
+    case = _worker_case(path, options, None, None)
+    total = n = None
+    for ti, mi in pairs:
+        ds = case._complete(ti, mi, store=False)[0][_REF_VARS]
+        ok = ds.notnull().astype("float64")
+        total = ds.fillna(0.0) if total is None else total + ds.fillna(0.0)
+        n = ok if n is None else n + ok
+    for v in _REF_VARS:
+        total[v].attrs = dict(case.data[v].attrs)
+    return total, n
+
+
+def _reference_combine(name, parts):
+    """(name, Dataset): the time-mean reference from the partial sums of :func:`_reference_part`
+    (the same mean as :meth:`Case.reference`, summed in another order)."""
+    total = n = None
+    for t, c in parts:
+        total = t if total is None else total + t
+        n = c if n is None else n + c
+    mean = total / n.where(n > 0)
+    mean = mean.drop_vars([c for c in mean.coords if c not in ("pressure", "latitude", "longitude")])
+    for v in _REF_VARS:
+        mean[v].attrs = dict(parts[0][0][v].attrs)
+    return name, mean.transpose("pressure", "latitude", "longitude")
+
+
+def _submit_reference(client, path, options, reference, case):
+    """The future of (name, reference Dataset) on the cluster. The time mean is split into one
+    partial sum per worker (each opens the case on its worker meanwhile), then combined; other
+    references are one task."""
+    if reference != "time_mean":
+        return client.submit(_reference, path, options, reference, pure=False)
+    mems = [None] if case.members is None else range(case.members.size)
+    pairs = [(ti, mi) for ti in range(case.times.size) for mi in mems]
+    workers = list(client.scheduler_info(n_workers=-1)["workers"]) or [None]
+    k = max(1, min(len(workers), len(pairs)))
+    bounds = np.linspace(0, len(pairs), k + 1).round().astype(int)
+    parts = [client.submit(_reference_part, path, options, pairs[a:b], pure=False,
+                           workers=None if w is None else [w], allow_other_workers=True)
+             for a, b, w in zip(bounds[:-1], bounds[1:], workers)]
+    return client.submit(_reference_combine, reference, parts, pure=False)
+
+
+def _task(*args):
+    """:func:`_one` as a cluster task (Dask arrays computed in the task's thread)."""
+    _local_dask()
+    return _one(*args)
 
 
 def _one(path, ti, mi, pieces, target, ref, options, store=None, balance="qg", floor=False):
@@ -151,6 +229,18 @@ def run_batch(path, *, pieces=None, times=None, members=None, target=None, refer
     store : path of a Zarr store: each (time, member) writes its region there; a rerun with the
         same settings skips the finished ones (resumable)
     """
+    import dask
+
+    # this process computes its own arrays with Dask's default local scheduler even when a
+    # distributed Client is the default (the serial run must not ship its reads to a cluster)
+    with dask.config.set(scheduler="threads"):
+        return _run_batch(path, pieces=pieces, times=times, members=members, target=target,
+                          reference=reference, client=client, options=options, progress=progress,
+                          store=store, balance=balance, floor=floor)
+
+
+def _run_batch(path, *, pieces, times, members, target, reference, client, options, progress, store,
+               balance, floor):
     from .analysis import cyclonic_sign, standard_pieces
 
     options = dict(options or {})
@@ -195,8 +285,8 @@ def run_batch(path, *, pieces=None, times=None, members=None, target=None, refer
         elif todo:
             import time
 
-            ref_future = client.submit(_reference, path, options, reference, pure=False)
-            futures = [client.submit(_one, path, ti, mi, pieces, target, ref_future, options, store, balance, floor,
+            ref_future = _submit_reference(client, path, options, reference, case)
+            futures = [client.submit(_task, path, ti, mi, pieces, target, ref_future, options, store, balance, floor,
                                      pure=False)
                        for ti, mi in todo]
             start = bar.n
@@ -211,7 +301,7 @@ def run_batch(path, *, pieces=None, times=None, members=None, target=None, refer
     finally:
         bar.close()
     for note in dict.fromkeys(n for _, notes in results.values() for n in notes):
-        warnings.warn(note, stacklevel=2)
+        warnings.warn(note, stacklevel=3)
     if g is not None:
         tables = _from_store(g, case, jobs)
     else:
@@ -219,6 +309,30 @@ def run_batch(path, *, pieces=None, times=None, members=None, target=None, refer
     out = pd.concat(tables, ignore_index=True)
     out.attrs.update(source=path, reference=str(reference))
     return out
+
+
+def local_cluster(n_workers, **kwargs):
+    """A Dask ``LocalCluster`` of ``n_workers`` worker processes on 127.0.0.1 for batch runs: one
+    thread per worker (a task is single-threaded numerical work), no dashboard, worker logs at
+    ERROR only, and the workers' C allocator left at its defaults.
+
+    Dask's nanny sets ``MALLOC_TRIM_THRESHOLD_=65536`` in each worker's environment by default;
+    setting it switches off glibc's adaptive mmap threshold, so every array over 128 KiB is
+    mapped and unmapped afresh (page faults, zeroing): an analyse task took twice as long and
+    half its time was system time. Here the variable is unset for the workers (the config
+    value None). Workers started elsewhere (``--scheduler``) should do the same: Dask config
+    ``distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_: null``.
+    ``kwargs`` go to ``LocalCluster`` (they override these settings)."""
+    import logging
+
+    import dask
+    from dask.distributed import LocalCluster
+
+    opts = dict(n_workers=n_workers, threads_per_worker=1, processes=True, host="127.0.0.1",
+                dashboard_address=None, silence_logs=logging.ERROR)
+    opts.update(kwargs)
+    with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None}):
+        return LocalCluster(**opts)
 
 
 def _connect(address, timeout_s):
@@ -309,10 +423,9 @@ def main(argv=None):
         if args.scheduler:
             client = _connect(args.scheduler, args.connect_timeout)
         else:
-            from dask.distributed import Client, LocalCluster
+            from dask.distributed import Client
 
-            cluster = LocalCluster(n_workers=args.local_cluster, threads_per_worker=1, host="127.0.0.1",
-                                   dashboard_address=None, processes=True)
+            cluster = local_cluster(args.local_cluster)
             client = Client(cluster)
         print(f"Dask: {client}")
     try:
