@@ -33,8 +33,11 @@ NOTEBOOKS = sorted((ROOT / "notebooks").glob("*.ipynb"))
 #: the time index and map surface of the workbench each notebook shows at its end
 SHOWN = {"01_quick_start.ipynb": (0, 320.0), "02_piecewise_inversion.ipynb": (6, 320.0)}
 # (a fresh JupyterLab workspace per notebook: the last one's tabs are not restored)
+# "lab-ipywidgets": JupyterLab with Panel's ipywidgets route (jupyter_bokeh), the route of
+# front ends that host ipywidgets only (PANEL_COMMS=ipywidgets in the kernel's environment)
 FRONT_ENDS = {"lab": ("jupyterlab", "lab/workspaces/{stem}/tree/{name}"),
-              "notebook": ("notebook", "notebooks/{name}")}
+              "notebook": ("notebook", "notebooks/{name}"),
+              "lab-ipywidgets": ("jupyterlab", "lab/workspaces/w{stem}/tree/{name}")}
 
 #: the Bokeh document holding the workbench's map (a notebook page may hold several)
 JS_DOC = """(() => { if (!window.Bokeh) return null;
@@ -98,7 +101,13 @@ def chromium():
         browser.close()
 
 
-@pytest.fixture(scope="module", params=list(FRONT_ENDS))
+@pytest.fixture(scope="module", params=[
+    "lab", "notebook",
+    # Panel's ipywidgets route renders the page and the lasso updates it in place, but Panel
+    # still links its stylesheets to its CDN there (17 requests, blocked; the page works
+    # without them): a known gap, strict so that the fix shows
+    pytest.param("lab-ipywidgets", marks=pytest.mark.xfail(
+        strict=True, reason="Panel's ipywidgets route links its stylesheets to a CDN"))])
 def jupyter(request, tmp_path_factory):
     """A Jupyter server of one front end on 127.0.0.1 over a copy of notebooks/."""
     module, _ = FRONT_ENDS[request.param]
@@ -115,6 +124,8 @@ def jupyter(request, tmp_path_factory):
                JUPYTERLAB_SETTINGS_DIR=str(base / "settings"),
                JUPYTERLAB_WORKSPACES_DIR=str(base / "workspaces"),
                PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    if request.param == "lab-ipywidgets":
+        env["PANEL_COMMS"] = "ipywidgets"
     cmd = [sys.executable, "-m", module, "--no-browser", "--ServerApp.ip=127.0.0.1",
            f"--ServerApp.port={port}", "--ServerApp.port_retries=0",
            f"--IdentityProvider.token={token}", f"--ServerApp.root_dir={root}",
