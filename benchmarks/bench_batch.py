@@ -6,9 +6,12 @@ temporary netCDF file. The three modes run interleaved (serial, 1 worker, 2 work
 so that they share the machine's load; each cluster is started, and its workers import the
 workbench, before its timing (start-up is reported apart); one untimed round of the three
 warms every process up (lazy imports, first-call costs); every run opens the case afresh
-(``forget_cases`` in every process). Clusters come from :func:`workbench.batch.local_cluster`. The load average is reported before and after. Also reported: the per-task cost (serial seconds per time) and the peak memory of
-one task (tracemalloc, one analyse of one time of the case), the figures behind the cluster
-estimate in DEVELOPERS.md.
+(``forget_cases`` in every process). Clusters come from :func:`workbench.batch.local_cluster`.
+Also reported: the load average (before, after, each round), the CPU seconds of every process of
+each run (client + workers) and the cores that gives per wall second (tells a slow parallel run
+from a machine busy with other work), the per-task cost (serial seconds per time) and the peak
+memory of one task (tracemalloc, one analyse of one time of the case), the figures behind the
+cluster estimate in DEVELOPERS.md.
 """
 from __future__ import annotations
 
@@ -41,6 +44,11 @@ def build_case(folder, step=0.5, ntimes=8):
     ds.to_netcdf(path)
     inp = sum(ds[v].isel(time=0).nbytes for v in ds.data_vars if "pressure" in ds[v].dims)
     return path, dict(ds.sizes), inp
+
+
+def _cpu():
+    """CPU seconds (user + system) of this process so far, children excluded."""
+    return time.process_time()
 
 
 def _warm():
@@ -76,6 +84,8 @@ def main(argv=None):
         tracemalloc.stop()
         del case
         clusters, times = {}, {"serial": [], "1 worker": [], "2 workers": []}
+        cpu = {k: [] for k in times}  # CPU seconds of every process in the run (client + workers)
+        loads = []
         for n in (1, 2):
             t0 = time.perf_counter()
             cl = local_cluster(n)
@@ -85,24 +95,33 @@ def main(argv=None):
         try:
             for rep in range(args.repeat + 1):  # the first round warms every process up, untimed
                 forget_cases()  # the serial run opens the case like a fresh process would
-                t0 = time.perf_counter()
+                loads.append(os.getloadavg()[0])
+                c0, t0 = _cpu(), time.perf_counter()
                 run_batch(path)
                 if rep:
                     times["serial"].append(time.perf_counter() - t0)
+                    cpu["serial"].append(_cpu() - c0)
                 for n, label in ((1, "1 worker"), (2, "2 workers")):
-                    clusters[n][1].run(forget_cases)
-                    t0 = time.perf_counter()
-                    run_batch(path, client=clusters[n][1])
+                    client = clusters[n][1]
+                    client.run(forget_cases)
+                    w0, c0, t0 = client.run(_cpu), _cpu(), time.perf_counter()
+                    run_batch(path, client=client)
                     if rep:
                         times[label].append(time.perf_counter() - t0)
+                        w1 = client.run(_cpu)
+                        cpu[label].append(_cpu() - c0 + sum(w1[w] - w0[w] for w in w1))
         finally:
             for cl, client in clusters.values():
                 client.close()
                 cl.close()
     out["load_after"] = os.getloadavg()
+    out["load_1min_per_round"] = loads
     out["runs_s"] = times
     med = {k: statistics.median(v) for k, v in times.items()}
     out["median_s"] = med
+    out["median_cpu_s"] = {k: statistics.median(v) for k, v in cpu.items()}
+    # CPU seconds the run got per wall second (2 for the 2-worker run would be both cores)
+    out["cores_used"] = {k: out["median_cpu_s"][k] / med[k] for k in med}
     out["speedup_2_vs_1"] = med["1 worker"] / med["2 workers"]
     out["1_worker_vs_serial"] = med["1 worker"] / med["serial"]
     out["serial_per_task_s"] = med["serial"] / 8

@@ -87,18 +87,25 @@ _REF_VARS = ["temperature", "geopotential", "u", "v"]
 
 def _reference_part(path, options, pairs):
     """Partial sums of the time-mean reference over some (time, member) pairs: (total, count),
-    NaN skipped as in :meth:`Case.reference` (a cluster task; opens the case on its worker)."""
-    _local_dask()
+    NaN skipped as in :meth:`Case.reference` (a cluster task; opens the case on its worker).
+    The complete fields read stay in the case's cache (bounded by bytes), so the task of the
+    same time on this worker does not read them again."""
     case = _worker_case(path, options, None, None)
     total = n = None
     for ti, mi in pairs:
-        ds = case._complete(ti, mi, store=False)[0][_REF_VARS]
+        ds = case._complete(ti, mi)[0][_REF_VARS]
         ok = ds.notnull().astype("float64")
         total = ds.fillna(0.0) if total is None else total + ds.fillna(0.0)
         n = ok if n is None else n + ok
     for v in _REF_VARS:
         total[v].attrs = dict(case.data[v].attrs)
     return total, n
+
+
+def _reference_part_task(path, options, pairs):
+    """:func:`_reference_part` as a cluster task (Dask arrays computed in the task's thread)."""
+    _local_dask()
+    return _reference_part(path, options, pairs)
 
 
 def _reference_combine(name, parts):
@@ -115,21 +122,27 @@ def _reference_combine(name, parts):
     return name, mean.transpose("pressure", "latitude", "longitude")
 
 
-def _submit_reference(client, path, options, reference, case):
-    """The future of (name, reference Dataset) on the cluster. The time mean is split into one
-    partial sum per worker (each opens the case on its worker meanwhile), then combined; other
-    references are one task."""
+def _submit_reference(client, path, options, reference, case, todo):
+    """(future of (name, reference Dataset), {(time, member): worker}) on the cluster. The time
+    mean is split into one partial sum per worker over a block of the tasks' own (time, member)
+    pairs first (each worker opens the case meanwhile and keeps the fields it read), then
+    combined; the returned placement sends each task to the worker holding its fields. Other
+    references are one task (no placement)."""
     if reference != "time_mean":
-        return client.submit(_reference, path, options, reference, pure=False)
+        return client.submit(_reference, path, options, reference, pure=False), {}
     mems = [None] if case.members is None else range(case.members.size)
-    pairs = [(ti, mi) for ti in range(case.times.size) for mi in mems]
-    workers = list(client.scheduler_info(n_workers=-1)["workers"]) or [None]
+    todo_set = set(todo)
+    pairs = list(todo) + [(ti, mi) for ti in range(case.times.size) for mi in mems if (ti, mi) not in todo_set]
+    workers = list(client.scheduler_info(n_workers=-1)["workers"])
     k = max(1, min(len(workers), len(pairs)))
     bounds = np.linspace(0, len(pairs), k + 1).round().astype(int)
-    parts = [client.submit(_reference_part, path, options, pairs[a:b], pure=False,
-                           workers=None if w is None else [w], allow_other_workers=True)
-             for a, b, w in zip(bounds[:-1], bounds[1:], workers)]
-    return client.submit(_reference_combine, reference, parts, pure=False)
+    place, parts = {}, []
+    for i, (a, b) in enumerate(zip(bounds[:-1], bounds[1:])):
+        w = [workers[i]] if workers else None
+        parts.append(client.submit(_reference_part_task, path, options, pairs[a:b], pure=False, workers=w,
+                                   allow_other_workers=True))
+        place.update({pair: w for pair in pairs[a:b]})
+    return client.submit(_reference_combine, reference, parts, pure=False), place
 
 
 def _task(*args):
@@ -278,16 +291,25 @@ def _run_batch(path, *, pieces, times, members, target, reference, client, optio
     results = {}
     try:
         if client is None:
-            ref = (reference, case.reference(reference)) if todo else (reference, None)
+            if not todo:
+                ref = (reference, None)
+            elif reference == "time_mean":  # the fields read stay cached for the tasks (bounded cache)
+                mems = [None] if case.members is None else range(case.members.size)
+                pairs = [(ti, mi) for ti in range(case.times.size) for mi in mems]
+                first = set(todo)  # the tasks' own pairs read last, the first task's most recently
+                ref = _reference_combine(reference, [_reference_part(
+                    path, options, [p for p in pairs if p not in first] + todo[::-1])])
+            else:
+                ref = (reference, case.reference(reference))
             for ti, mi in todo:
                 results[(ti, mi)] = _one(path, ti, mi, pieces, target, ref, options, store, balance, floor)
                 bar.update(1)
         elif todo:
             import time
 
-            ref_future = _submit_reference(client, path, options, reference, case)
+            ref_future, place = _submit_reference(client, path, options, reference, case, todo)
             futures = [client.submit(_task, path, ti, mi, pieces, target, ref_future, options, store, balance, floor,
-                                     pure=False)
+                                     pure=False, workers=place.get((ti, mi)), allow_other_workers=True)
                        for ti, mi in todo]
             start = bar.n
             while True:  # polls the futures' state (no extra tasks left behind by an interrupt)
