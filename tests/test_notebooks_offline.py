@@ -101,13 +101,7 @@ def chromium():
         browser.close()
 
 
-@pytest.fixture(scope="module", params=[
-    "lab", "notebook",
-    # Panel's ipywidgets route renders the page and the lasso updates it in place, but Panel
-    # still links its stylesheets to its CDN there (17 requests, blocked; the page works
-    # without them): a known gap, strict so that the fix shows
-    pytest.param("lab-ipywidgets", marks=pytest.mark.xfail(
-        strict=True, reason="Panel's ipywidgets route links its stylesheets to a CDN"))])
+@pytest.fixture(scope="module", params=list(FRONT_ENDS))
 def jupyter(request, tmp_path_factory):
     """A Jupyter server of one front end on 127.0.0.1 over a copy of notebooks/."""
     module, _ = FRONT_ENDS[request.param]

@@ -46,7 +46,7 @@ from .access import folders, resolve_data_path, resolve_output_path
 from .errors import AccessError, InputError, WorkbenchError
 from .state import State
 from .textsafe import escape
-from .panels.base import offline_extension
+from .panels.base import notebook_bundle, offline_extension
 from .panels.controls import MODE_LABELS
 from .panels.export import case_stem
 from .panels.sessions import list_session_files
@@ -219,7 +219,7 @@ class Workbench:
         return self.layout
 
     def _repr_mimebundle_(self, include=None, exclude=None):
-        return self.layout._repr_mimebundle_(include, exclude)
+        return notebook_bundle(self.layout, include, exclude)
 
     def servable(self, title="PV Workbench"):
         return self.layout.servable(title=title)

@@ -6,7 +6,7 @@ import time
 
 import panel as pn
 
-__all__ = ["StatePanel", "offline_extension"]
+__all__ = ["StatePanel", "offline_extension", "notebook_bundle"]
 
 _CSS = """
 .pvwb-header h2 {margin: 0 0 2px 0; font-size: 20px;}
@@ -27,6 +27,26 @@ def offline_extension(comms=None):
         pn.config.inline = True
         kw["inline"] = True
     pn.extension("tabulator", raw_css=[_CSS], notifications=False, **kw)
+
+
+def notebook_bundle(obj, include=None, exclude=None):
+    """The notebook display of a Panel object. On Panel's ipywidgets route (front ends that
+    host ipywidgets only; ``pn.config.comms == "ipywidgets"``) the page is wrapped in a
+    jupyter_bokeh widget with its stylesheets inlined first, as Panel does on its own route
+    (otherwise they would be links to a CDN)."""
+    if pn.config.comms != "ipywidgets":
+        return obj._repr_mimebundle_(include, exclude)
+    from bokeh.document import Document
+    from bokeh.models import UIElement
+    from jupyter_bokeh.widgets import BokehModel
+    from panel.io.notebook import patch_inline_stylesheets
+
+    doc = Document()
+    model = obj.get_root(doc=doc)
+    for sub in model.select({"type": UIElement}):
+        patch_inline_stylesheets(sub)
+    widget = BokehModel(model, combine_events=True)
+    return widget._repr_mimebundle_(include=include, exclude=exclude), {}
 
 
 class StatePanel:
@@ -140,7 +160,7 @@ class StatePanel:
         return self.layout
 
     def _repr_mimebundle_(self, include=None, exclude=None):
-        return self.layout._repr_mimebundle_(include, exclude)
+        return notebook_bundle(self.layout, include, exclude)
 
     def servable(self, title="PV Workbench"):
         return self.layout.servable(title=title)
