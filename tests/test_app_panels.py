@@ -109,3 +109,21 @@ def test_projected_case_drawn_in_its_projection_with_a_switch(tmp_path):
     assert len(mp.view.src["pieces"].data["xs"]) == 1
     np.testing.assert_allclose(mp.view.src["pieces"].data["xs"][0],
                                [p[0] for p in piece.polygon])
+
+
+def test_cautions_in_the_page(small_case):
+    """The caution shows before a case is opened; with a case, the constant-f0 caveat names
+    f0's latitude and how much |f| varies over the domain (checked against sin(lat) here)."""
+    import numpy as np
+
+    from workbench.export import CAUTION
+    from workbench.textsafe import escape
+
+    empty = panels.StatusPanel(State())
+    assert escape(CAUTION) in empty.header.object
+    page = panels.StatusPanel(State(small_case))
+    lat = small_case.data["latitude"].values
+    s = np.abs(np.sin(np.radians([lat.min(), lat.max()])))
+    ratio = s.max() / s.min()
+    assert "one Coriolis parameter" in page.header.object
+    assert f"factor {ratio:.1f}" in page.header.object
