@@ -692,6 +692,7 @@ def main(argv=None) -> int:
         if args.session is not None and not Path(args.session).expanduser().is_file():
             raise ExportError(f"--session {args.session!r} is not a file; give a session saved from the workbench")
         case = open_case(args.case or default_case_path(), **cli.selection_options(args))
+        cli.check_inversion_domain(case)  # a domain reaching the equator: refused before any work
         session = args.session
         if session and args.accept_modified_session:
             from workbench.session import load_session

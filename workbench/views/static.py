@@ -682,14 +682,43 @@ def draw_map(data: MapData, settings: FigureSettings | dict | None = None,
     field_name, key, label, units, scale, div = _field_info(da, data.field_name)
     values = np.asarray(da.values, float) * scale
 
-    lon0 = 0.5 * (lon.min() + lon.max())
-    proj = _projection(settings, lon0, lat.min(), lat.max(), getattr(data, "native_crs", None))
+    # Hemispheric and global grids. A grid whose longitudes go once round the globe is closed
+    # at its seam (cartopy.util.add_cyclic_point: the first column repeated 360 degrees on),
+    # else the map has a gap there. A conic projection cannot show a whole latitude circle:
+    # such a domain is drawn in polar stereographic. Where the projection makes the pole a
+    # point, a pole row is left out of the contouring (its cells are degenerate polygons).
+    dlon = np.diff(lon)
+    periodic = bool(lon.size > 2 and np.allclose(dlon, dlon[0], rtol=1e-4)
+                    and abs(lon[-1] - lon[0] + dlon[0] - 360.0) < 0.01 * abs(dlon[0]))
+    lon0 = 0.5 * (lon.min() + lon.max()) if not periodic else lon[0] + 180.0
+    proj_note = None
+    if periodic and settings.projection == "lambert_conformal":
+        proj = ccrs.Stereographic(central_latitude=90.0 if lat.max() + lat.min() >= 0 else -90.0,
+                                  central_longitude=lon0)
+        proj_note = "whole latitude circles: polar stereographic instead of Lambert conformal"
+    else:
+        proj = _projection(settings, lon0, lat.min(), lat.max(), getattr(data, "native_crs", None))
+    rows = np.ones(lat.size, bool)
+    if not isinstance(proj, (ccrs.PlateCarree, ccrs.Mercator)):
+        rows = np.abs(lat) < 90.0 - 1e-6
+
+    def closed(arr):
+        """``arr`` (latitude, longitude) as contoured: pole row dropped, seam closed."""
+        arr = np.asarray(arr)[rows]
+        if periodic:
+            from cartopy.util import add_cyclic_point
+
+            arr = add_cyclic_point(arr, axis=-1)
+        return arr
+
+    lat_c = lat[rows]
+    lon_c = np.append(lon, lon[-1] + dlon[0]) if periodic else lon
     data_crs = ccrs.PlateCarree()
     width = page_size[0] if page_size else settings.width_in
     fig = Figure(figsize=(width, page_size[1] if page_size else settings.height_in),
                  dpi=settings.dpi)
     ax = fig.add_axes([0.06, 0.1, 0.78, 0.7], projection=proj)
-    ax.set_extent([lon.min(), lon.max(), lat.min(), lat.max()], crs=data_crs)
+    ax.set_extent([lon_c.min(), lon_c.max(), lat.min(), lat.max()], crs=data_crs)
     # size the figure to the map's shape: title block above, labels and caution below
     x0, x1, y0, y1 = ax.get_extent(crs=proj)
     aspect = (y1 - y0) / (x1 - x0)
@@ -711,17 +740,17 @@ def draw_map(data: MapData, settings: FigureSettings | dict | None = None,
     cmap = colour_map(settings.colour_map) if settings.colour_map else COLOUR_MAPS[key]
     levels = np.asarray(settings.levels) if settings.levels else _levels(values, div, field_name)
     extend = "both" if div else "max" if field_name == "ertel_pv" else "both"
-    cf = ax.contourf(lon, lat, values, levels=levels, cmap=cmap, extend=extend,
+    cf = ax.contourf(lon_c, lat_c, closed(values), levels=levels, cmap=cmap, extend=extend,
                      transform=data_crs, zorder=1)
     cax = fig.add_axes([0.06 + map_w / width + 0.03, bottom + 0.05 * map_h / height, 0.022,
                         0.9 * map_h / height])
     cb = fig.colorbar(cf, cax=cax)
     cb.set_label(f"{label} ({units})" if units else label)
 
-    notes = []
+    notes = [proj_note] if proj_note else []
     if field_name == "ertel_pv" and settings.pv_contour is not None:
         sgn = -1.0 if lat.max() <= 0 else 1.0
-        ax.contour(lon, lat, values, levels=[sgn * settings.pv_contour], colors="black",
+        ax.contour(lon_c, lat_c, closed(values), levels=[sgn * settings.pv_contour], colors="black",
                    linewidths=2.2, transform=data_crs, zorder=3)
         notes.append(f"thick black line: {settings.pv_contour:g} PVU")
     if data.contour is not None:
@@ -729,7 +758,7 @@ def draw_map(data: MapData, settings: FigureSettings | dict | None = None,
         cname, _, clabel, cunits, cscale, _ = _field_info(c, data.contour_name)
         cv = np.asarray(c.values, float) * cscale
         clev = _levels(cv, False, None, n=10)
-        cs = ax.contour(lon, lat, cv, levels=clev, colors="#222222", linewidths=0.8,
+        cs = ax.contour(lon_c, lat_c, closed(cv), levels=clev, colors="#222222", linewidths=0.8,
                         transform=data_crs, zorder=3)
         ax.clabel(cs, fmt="%g", fontsize=7)
         notes.append(f"black contours: {clabel} ({cunits})")
@@ -744,7 +773,7 @@ def draw_map(data: MapData, settings: FigureSettings | dict | None = None,
         z = np.asarray(o.height_anomaly.transpose("latitude", "longitude").values, float)
         zlev, zstep = _symmetric_levels(z, floor=NEGLIGIBLE["height"])
         if zlev:
-            cs = ax.contour(lon, lat, z, levels=zlev, colors=o.colour, linewidths=1.4,
+            cs = ax.contour(lon_c, lat_c, closed(z), levels=zlev, colors=o.colour, linewidths=1.4,
                             linestyles=["dashed" if x < 0 else "solid" for x in zlev],
                             transform=data_crs, zorder=4)
             ax.clabel(cs, fmt="%g", fontsize=7)
@@ -752,7 +781,8 @@ def draw_map(data: MapData, settings: FigureSettings | dict | None = None,
         sx = max(1, lon.size // settings.vector_spacing)
         spd = np.hypot(u, v)
         ref = _nice_step(float(np.nanpercentile(spd, 95)) * 2 if np.isfinite(spd).any() else 1.0, 2)
-        q = ax.quiver(lon[::sx], lat[::sy], u[::sy, ::sx], v[::sy, ::sx], color=o.colour,
+        u, v = u[rows], v[rows]  # no arrows at a pole drawn as a point (no direction there)
+        q = ax.quiver(lon[::sx], lat_c[::sy], u[::sy, ::sx], v[::sy, ::sx], color=o.colour,
                       transform=data_crs, zorder=5, width=0.0025, scale=ref * 25,
                       edgecolor="white", linewidth=0.3)
         ax.quiverkey(q, 0.98, 1.03 + 0.04 * len(handles), ref, f"{ref:g} m s-1 ({o.name})",
