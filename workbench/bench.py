@@ -22,6 +22,16 @@ run:
 * ``peak_mem_mb``: tracemalloc peak of the fast solver's set-up plus one solve,
   and ``mem_ratio`` that peak over the size of one float64 field.
 
+``pvwb bench`` (``run(analyse=True)``; ``--no-analyse`` leaves them out) also times the
+whole analysis step (:func:`workbench.analysis.analyse`: reference state, PV, standard
+pieces, piecewise inversion, attribution) on the invented sample storm interpolated to 1,
+0.5 and 0.25 deg (21 levels; one time, float32, in memory; a fresh case and solver each run,
+the opening not timed; :data:`ANALYSE_STEPS`), method ``analyse``: ``median_s`` (wall time), ``peak_mem_mb`` (tracemalloc, a separate run)
+and ``mem_ratio`` = that peak over one time's input (the bytes of the time's pressure-level
+variables as stored, ``input_mb``), ``solver_share`` (the part of the time spent in
+:class:`~workbench.inversion.solver.QGSolver` set-up and solves). They add about 8 s (3 runs
+per grid, a warm-up and a traced run) on a shared 2-core machine.
+
 The fields are invented (random), the timings are wall-clock and noisy: compare
 ratios within one run.
 """
@@ -42,7 +52,10 @@ GRIDS = {
     "0.25deg": (37, 241, 401),
 }
 
-__all__ = ["run", "main", "GRIDS", "make_grid"]
+#: grid steps (degrees) of the ``analyse`` records
+ANALYSE_STEPS = {"1deg": 1.0, "0.5deg": 0.5, "0.25deg": 0.25}
+
+__all__ = ["run", "main", "GRIDS", "ANALYSE_STEPS", "make_grid", "bench_analyse"]
 
 
 def make_grid(shape):
@@ -177,6 +190,93 @@ def bench_grid(name, shape, repeat=9, with_references=False, log=None):
     return records
 
 
+def analyse_case_data(step, time_index=6):
+    """One time of the invented sample storm interpolated to ``step`` degrees (linear), float32,
+    as a Dataset for :func:`workbench.open_case` (an in-memory case: no file reading timed)."""
+    import xarray as xr
+
+    from workbench.analysis import default_case_path
+
+    with xr.open_dataset(default_case_path()) as src:
+        ds = src.isel(time=[time_index]).load()
+    lat = np.arange(float(ds.latitude.min()), float(ds.latitude.max()) + 1e-9, step)
+    lon = np.arange(float(ds.longitude.min()), float(ds.longitude.max()) + 1e-9, step)
+    if lat.size != ds.latitude.size or lon.size != ds.longitude.size or not np.allclose(lat, ds.latitude):
+        ds = ds.interp(latitude=lat, longitude=lon)
+    return ds.astype({v: "float32" for v in ds.data_vars})
+
+
+class _SolverClock:
+    """Seconds spent in QGSolver set-up and solves while active (the class methods wrapped)."""
+
+    def __enter__(self):
+        from workbench.inversion.solver import QGSolver
+
+        self.seconds = 0.0
+        self._orig = QGSolver.__init__, QGSolver.solve
+        clock = self
+
+        def timed(fn):
+            def wrapper(*a, **k):
+                t0 = time.perf_counter()
+                try:
+                    return fn(*a, **k)
+                finally:
+                    clock.seconds += time.perf_counter() - t0
+            return wrapper
+
+        QGSolver.__init__, QGSolver.solve = timed(self._orig[0]), timed(self._orig[1])
+        return self
+
+    def __exit__(self, *exc):
+        from workbench.inversion.solver import QGSolver
+
+        QGSolver.__init__, QGSolver.solve = self._orig
+        return False
+
+
+def bench_analyse(name, step, repeat=3, log=None):
+    """The ``analyse`` record of one grid step (see the module docstring)."""
+    import workbench as wb
+    from workbench.analysis import analyse
+    from workbench.inversion.solver import clear_solver_cache
+
+    ds = analyse_case_data(step)
+    inp = sum(ds[v].isel(time=0).nbytes for v in ds.data_vars if "pressure" in ds[v].dims)
+
+    def fresh():
+        clear_solver_cache()
+        return wb.open_case(ds)
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the case's own notes (|f| range, terrain) are not timed
+        analyse(fresh())  # warm-up: lazy imports, first-call costs
+        walls, shares = [], []
+        for _ in range(repeat):
+            case = fresh()
+            with _SolverClock() as clock:
+                t0 = time.perf_counter()
+                analyse(case)
+                wall = time.perf_counter() - t0
+            walls.append(wall)
+            shares.append(clock.seconds / wall)
+            del case
+        case = fresh()
+        tracemalloc.start()
+        try:
+            analyse(case)
+            peak = tracemalloc.get_traced_memory()[1]
+        finally:
+            tracemalloc.stop()
+    shape = [ds.sizes["pressure"], ds.sizes["latitude"], ds.sizes["longitude"]]
+    r = dict(grid=name, shape=shape, method="analyse", median_s=statistics.median(walls), ratio_to_fft=None,
+             max_rel_error=None, repeats=repeat, solver_share=statistics.median(shares),
+             peak_mem_mb=peak / 1e6, mem_ratio=peak / inp, input_mb=inp / 1e6)
+    if log:
+        log(r)
+    return r
+
+
 def _table(records):
     head = f"{'grid':8} {'shape':>14} {'method':14} {'median_s':>10} {'ratio_fft':>9} {'max_rel_err':>11} {'notes'}"
     lines = [head, "-" * len(head)]
@@ -190,19 +290,25 @@ def _table(records):
             notes.append(f"{r['qg_solves']:.0f} QG solves, Newton {r['newton_iterations']}, GMRES "
                          f"{r['gmres_iterations']}, residual {r['final_relative_residual']:.1e}, "
                          f"first guess {r['first_guess']}")
-        if r.get("peak_mem_mb") is not None:
+        if r.get("method") == "analyse":
+            notes.append(f"peak {r['peak_mem_mb']:.0f} MB = {r['mem_ratio']:.1f}x one time's input "
+                         f"({r['input_mb']:.1f} MB), solver {100 * r['solver_share']:.0f} % of the time")
+        elif r.get("peak_mem_mb") is not None:
             notes.append(f"peak {r['peak_mem_mb']:.0f} MB = {r['mem_ratio']:.1f} fields")
         err = "" if r["max_rel_error"] is None else f"{r['max_rel_error']:.1e}"
+        ratio = "" if r.get("ratio_to_fft") is None else f"{r['ratio_to_fft']:9.2f}"
         lines.append(f"{r['grid']:8} {'x'.join(map(str, r['shape'])):>14} {r['method']:14} {r['median_s']:10.4g} "
-                     f"{r['ratio_to_fft']:9.2f} {err:>11} {', '.join(notes)}")
+                     f"{ratio:>9} {err:>11} {', '.join(notes)}")
     return "\n".join(lines)
 
 
-def run(json_output=False, grids=None, references=True, repeat=9, stream=None, tendency=False, nonlinear=False):
+def run(json_output=False, grids=None, references=True, repeat=9, stream=None, tendency=False, nonlinear=False,
+        analyse=False):
     """Run the benchmarks; print a table (or one JSON list) and return the list of records.
 
     ``grids``: names from :data:`GRIDS` (default all); ``references``: also time spsolve and
-    PyAMG on the 1 deg grid (about half a minute).
+    PyAMG on the 1 deg grid (about half a minute); ``analyse``: also the whole analysis step
+    on the same grid names (:func:`bench_analyse`, 3 runs each).
     """
     stream = stream or sys.stdout
     names = list(grids or GRIDS)
@@ -224,6 +330,9 @@ def run(json_output=False, grids=None, references=True, repeat=9, stream=None, t
                 r.setdefault("ratio_to_fft", float("nan"))
                 r.setdefault("max_rel_error", None)
                 records.append(r)
+    if analyse:  # the whole analysis step, method "analyse"
+        for name in names:
+            records.append(bench_analyse(name, ANALYSE_STEPS[name], repeat=min(repeat, 3), log=log))
     if tendency:  # tendency attribution and what-if records (workbench.whatif.bench_records)
         from workbench.whatif import bench_records
 
@@ -237,7 +346,7 @@ def run(json_output=False, grids=None, references=True, repeat=9, stream=None, t
 
 
 def main(argv=None):
-    """``pvwb bench [--json] [--grid NAME ...] [--no-references]``."""
+    """``pvwb bench [--json] [--grid NAME ...] [--no-references] [--no-analyse] [--tendency] [--nonlinear]``."""
     from workbench.cli import build_parser, count
 
     ap = build_parser("pvwb bench", "QG inversion benchmarks (solver vs FFT, spsolve, PyAMG).")
@@ -249,9 +358,12 @@ def main(argv=None):
     ap.add_argument("--tendency", action="store_true", help="also time the tendency attribution and a 36 h what-if")
     ap.add_argument("--nonlinear", action="store_true",
                     help="also time the nonlinear-balance inversion against one QG solve (records by balance)")
+    ap.add_argument("--no-analyse", action="store_true",
+                    help="leave out the records of the whole analysis step (time, peak memory per input, "
+                         "solver share; about 8 s)")
     args = ap.parse_args(argv)
     run(json_output=args.json, grids=args.grid, references=not args.no_references, repeat=args.repeat,
-        tendency=args.tendency, nonlinear=args.nonlinear)
+        tendency=args.tendency, nonlinear=args.nonlinear, analyse=not args.no_analyse)
     return 0
 
 
