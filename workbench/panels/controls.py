@@ -105,7 +105,7 @@ class CaseControls(StatePanel):
                                               [st.page.mouse_mode]), ["mouse_mode"], obj=st.page)
         self.map_projection = pn.widgets.RadioButtonGroup(
             label="Map drawn in", width=250, value=st.page.map_projection,
-            options={"the data's projection": "native", "longitude–latitude": "lonlat"},
+            options={"its own projection": "native", "lon–lat": "lonlat"},
             visible=bool(case.data.attrs.get("native_crs")), css_classes=["pvwb-projection"])
         self.watch(lambda ev: setattr(st.page, "map_projection", ev.new), ["value"],
                    obj=self.map_projection)
