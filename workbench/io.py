@@ -904,6 +904,11 @@ def _check_region(region):
     return w, e, s_, n_
 
 
+#: a single netCDF file whose variables hold at most this many bytes (uncompressed) is opened
+#: without Dask chunks (``open_case``'s default ``chunks``); larger files get one Dask chunk per time
+SMALL_FILE_BYTES = 64 * 2**20
+
+
 def open_case(source, **options):
     """Open a case from a path (netCDF, GRIB2, Zarr), several files, or an ``xarray.Dataset``.
 
@@ -911,7 +916,8 @@ def open_case(source, **options):
     ``"run/*.grib2"`` or a list of files (one time or step each, opened as one case along time);
     or an in-memory Dataset.
 
-    Options: ``name``, ``chunks`` (Dask chunks, default one time per chunk for files),
+    Options: ``name``, ``chunks`` (Dask chunks, default one time per chunk for files; a single
+    netCDF file of at most :data:`SMALL_FILE_BYTES` uncompressed is read without Dask),
     ``region=(W, E, S, N)`` and ``times=`` (index, list, ISO time or slice) chosen before
     anything is computed, ``grid_step`` (degrees, for projected grids), ``winds="grid"|"earth"``
     (override for projected files), ``variables``, ``coords`` and ``units`` (overrides for
@@ -944,12 +950,22 @@ def open_case(source, **options):
         path_label, checksum, lazy = "<in-memory>", None, False
     else:
         paths, path_label = _resolve_sources(source)
-        if chunks == "auto-time":
+        auto = chunks == "auto-time"
+        if auto:
             chunks = {}
         parts = []
+        small = False
         for p in paths:
             cut = None
-            if region is not None and detect_format(p) != "grib":
+            if auto and region is None and len(paths) == 1 and detect_format(p) == "netcdf":
+                # a small file is read without Dask (SMALL_FILE_BYTES): the lazy backend arrays
+                # load what is indexed, and the Dask imports (about 0.35 s) are not paid
+                raw = read_dataset(p, chunks=None, **options)
+                small = raw.nbytes <= SMALL_FILE_BYTES
+                if not small:
+                    raw.close()
+                    raw = read_dataset(p, chunks=chunks, **options)
+            elif region is not None and detect_format(p) != "grib":
                 # cut a big regular file before anything is read: the lazy backend arrays take the
                 # region's index ranges straight to the file, and only then become Dask arrays
                 raw = read_dataset(p, chunks=None, **options)
@@ -977,7 +993,7 @@ def open_case(source, **options):
             for p in sorted(paths):  # the same files in any order are the same case
                 h.update(file_checksum(p).encode())
             checksum = h.hexdigest()
-        lazy = chunks == {}
+        lazy = chunks == {} and not small
     data = _select(data, times=times)  # the region was cut in normalise
     if lazy:
         data = data.chunk({"time": 1})
