@@ -48,8 +48,9 @@ def test_tasks_on_one_single_thread_worker_do_not_deadlock(small_case_path):
     from workbench.batch import _task, local_cluster
 
     with local_cluster(1) as cluster, distributed.Client(cluster) as client:
-        futures = [client.submit(_task, str(small_case_path), ti, None, None, None, ("time_mean", None), {},
-                                 pure=False) for ti in (0, 1)]
+        dask_chunks = {"chunks": {}}  # Dask arrays even for this small file
+        futures = [client.submit(_task, str(small_case_path), ti, None, None, None, ("time_mean", None),
+                                 dask_chunks, pure=False) for ti in (0, 1)]
         distributed.wait(futures, timeout=60)  # raises TimeoutError on a deadlock
         tables = [f.result()[0] for f in futures]
     assert [t["time"].nunique() for t in tables] == [1, 1]
