@@ -1,8 +1,8 @@
 """Batch benchmark: serial vs a 1-worker and a 2-worker Dask LocalCluster, in one run.
 
-``python benchmarks/bench_batch.py [--repeat N] [--json]``. The case is built here: the invented
-sample storm (``sample_cases/``) interpolated to 0.5 degree, 8 times, float32, written to a
-temporary netCDF file. The three modes run interleaved (serial, 1 worker, 2 workers, then again)
+``python benchmarks/bench_batch.py [--repeat N] [--json] [--step DEG]``. The case is built here:
+the invented sample storm (``sample_cases/``) interpolated to 0.5 degree (``--step``), 8 times,
+float32, written to a temporary netCDF file. The three modes run interleaved (serial, 1 worker, 2 workers, then again)
 so that they share the machine's load; each cluster is started, and its workers import the
 workbench, before its timing (start-up is reported apart); one untimed round of the three
 warms every process up (lazy imports, first-call costs); every run opens the case afresh
@@ -60,6 +60,7 @@ def main(argv=None):
     parser = argparse.ArgumentParser(prog="bench_batch")
     parser.add_argument("--repeat", type=int, default=3)
     parser.add_argument("--json", action="store_true")
+    parser.add_argument("--step", type=float, default=0.5, help="grid step in degrees (default 0.5)")
     args = parser.parse_args(argv)
     warnings.simplefilter("ignore")
     from dask.distributed import Client
@@ -72,7 +73,7 @@ def main(argv=None):
 
     out = {"load_before": os.getloadavg()}
     with tempfile.TemporaryDirectory() as tmp:
-        path, sizes, inp = build_case(tmp)
+        path, sizes, inp = build_case(tmp, step=args.step)
         out["case"] = dict(sizes=sizes, input_mb_per_time=inp / 1e6)
         case = wb.open_case(path)
         case.reference()

@@ -108,13 +108,21 @@ def _reference_part_task(path, options, pairs):
     return _reference_part(path, options, pairs)
 
 
-def _reference_combine(name, parts):
-    """(name, Dataset): the time-mean reference from the partial sums of :func:`_reference_part`
-    (the same mean as :meth:`Case.reference`, summed in another order)."""
+def _reference_sum(parts):
+    """The sum of partial sums (total, count) of :func:`_reference_part` (attributes kept)."""
     total = n = None
     for t, c in parts:
         total = t if total is None else total + t
         n = c if n is None else n + c
+    for v in _REF_VARS:
+        total[v].attrs = dict(parts[0][0][v].attrs)
+    return total, n
+
+
+def _reference_combine(name, parts):
+    """(name, Dataset): the time-mean reference from the partial sums of :func:`_reference_part`
+    (the same mean as :meth:`Case.reference`, summed in another order)."""
+    total, n = _reference_sum(parts)
     mean = total / n.where(n > 0)
     mean = mean.drop_vars([c for c in mean.coords if c not in ("pressure", "latitude", "longitude")])
     for v in _REF_VARS:
@@ -125,8 +133,8 @@ def _reference_combine(name, parts):
 def _submit_reference(client, path, options, reference, case, todo):
     """(future of (name, reference Dataset), {(time, member): worker}) on the cluster. The time
     mean is split into one partial sum per worker over a block of the tasks' own (time, member)
-    pairs first (each worker opens the case meanwhile and keeps the fields it read), then
-    combined; the returned placement sends each task to the worker holding its fields. Other
+    pairs first (each worker opens the case meanwhile and keeps the fields it read), summed
+    pairwise (a tree, so no worker receives all N partial sums) and divided; the returned placement sends each task to the worker holding its fields. Other
     references are one task (no placement)."""
     if reference != "time_mean":
         return client.submit(_reference, path, options, reference, pure=False), {}
@@ -142,6 +150,9 @@ def _submit_reference(client, path, options, reference, case, todo):
         parts.append(client.submit(_reference_part_task, path, options, pairs[a:b], pure=False, workers=w,
                                    allow_other_workers=True))
         place.update({pair: w for pair in pairs[a:b]})
+    while len(parts) > 1:  # summed pairwise: no worker receives every partial sum
+        parts = [client.submit(_reference_sum, parts[i:i + 2], pure=False) if i + 1 < len(parts) else parts[i]
+                 for i in range(0, len(parts), 2)]
     return client.submit(_reference_combine, reference, parts, pure=False), place
 
 
