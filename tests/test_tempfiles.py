@@ -170,13 +170,29 @@ def _interrupt_after(argv, delay, tmp_path):
     return proc.returncode, time.monotonic() - t0, err
 
 
+@pytest.fixture(scope="module")
+def long_case(tmp_path_factory, sample_case_path):
+    """The invented sample repeated four times along time (60 times, about 140 MB, so it is also
+    read lazily): long enough that a run is still going when the interrupt comes."""
+    import numpy as np
+    import xarray as xr
+
+    with xr.open_dataset(sample_case_path) as ds:
+        ds = ds.load()
+    span = ds["time"].values[-1] - ds["time"].values[0] + np.timedelta64(6, "h")
+    parts = [ds.assign_coords(time=ds["time"].values + k * span) for k in range(4)]
+    path = tmp_path_factory.mktemp("long") / "long_case.nc"
+    xr.concat(parts, dim="time").to_netcdf(path)
+    return str(path)
+
+
 @pytest.mark.slow
 @pytest.mark.parametrize("argv, delay", [
     (["invert", "{case}", "--quiet"], 3.5),
     (["batch", "{case}", "--quiet", "--local-cluster", "2"], 9.0),  # worker processes and threads
 ])
-def test_ctrl_c_ends_a_long_run(tmp_path, sample_case_path, argv, delay):
-    argv = [a.format(case=sample_case_path) for a in argv]
+def test_ctrl_c_ends_a_long_run(tmp_path, long_case, argv, delay):
+    argv = [a.format(case=long_case) for a in argv]
     code, waited, err = _interrupt_after(argv, delay, tmp_path)
     assert code == 130, err
     assert waited < 5.0
