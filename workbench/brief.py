@@ -538,7 +538,9 @@ def briefing_figures(case, state, progress=None, tendency=False, balance="qg", f
                      texts=None) -> list:
     """The briefing's pages as matplotlib Figures (title, maps, sections, attribution).
 
-    ``progress``: optional callable, called once per page made (the command line's bar).
+    ``progress``: optional callable ``progress(fraction, text)``, called once per page made
+    (the fraction counts making and writing the pages, as :func:`make_briefing`); it may raise
+    (e.g. :class:`~workbench.errors.Cancelled`) to stop.
     ``pages``: which pages follow the title page and in what order (:func:`briefing_pages`);
     ``texts``: the title page's headline, summary, forecaster and office (:func:`briefing_texts`).
 
@@ -556,7 +558,13 @@ def briefing_figures(case, state, progress=None, tendency=False, balance="qg", f
         settings = dataclasses.replace(view["settings"], width_in=PAGE[0])
         view["settings"] = settings
         md_kwargs = {k: v for k, v in view.items() if k not in ("case", "sections")}
-        tick = progress or (lambda: None)
+        n_pages = 1 + sum(len(state.sections) if n == "sections" else 1 for n in order)
+        made = [0]
+
+        def tick():
+            made[0] += 1
+            if progress is not None:
+                progress(made[0] / (2 * n_pages), f"page {made[0]} of {n_pages} made")
         for name in order:
             if name == "map":
                 pages.append(static.draw_map(static.map_data(case, **md_kwargs), settings,
@@ -578,8 +586,10 @@ def briefing_figures(case, state, progress=None, tendency=False, balance="qg", f
             elif name == "attribution":
                 fig, _ = _table_page(case, state, balance=balance, floor=floor)
                 pages.append(fig)
+                tick()
             elif name == "tendency":  # the QG tendency attribution matrix (pvwb brief --tendency)
                 pages.append(_tendency_page(case, state))
+                tick()
     return [_title_page(case, state, utc_now_iso(), _notes(caught), texts)] + pages
 
 
@@ -589,8 +599,10 @@ def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: b
     """Write the briefing PDF of ``case`` with a State (or a session file/dict) to ``path``.
 
     Refuses (ExportError) an existing ``path`` unless ``overwrite=True``; the file
-    appears only when complete. Returns the path. ``progress``: optional callable, called
-    once per page made and once per page written. ``tendency``: add the QG tendency
+    appears only when complete. Returns the path. ``progress``: optional callable
+    ``progress(fraction, text)``, called once per page made and once per page written; an
+    exception it raises (e.g. :class:`~workbench.errors.Cancelled`) stops the work and leaves
+    no file. ``tendency``: add the QG tendency
     attribution page (:mod:`workbench.tendency`). ``balance``: ``"qg"`` (the session's QG
     attribution) or ``"nonlinear"`` (the session's pieces in nonlinear balance, ``floor`` the
     floor remedy); the attribution page names the balance.
@@ -627,10 +639,10 @@ def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: b
                 "Keywords": "potential vorticity; piecewise inversion; diagnostic analysis",
             }
             with PdfPages(tmp, metadata=meta) as pdf:
-                for fig in pages:
+                for k, fig in enumerate(pages, 1):
                     pdf.savefig(fig)
                     if progress is not None:
-                        progress()
+                        progress(0.5 + 0.5 * k / len(pages), f"page {k} of {len(pages)} written")
     return path
 
 
@@ -701,7 +713,7 @@ def main(argv=None) -> int:
         bar = cli.progress(desc="briefing", unit="page", enabled=False if args.quiet else None)
         try:
             out = make_briefing(case, session, args.output, overwrite=args.overwrite,
-                                progress=lambda: bar.update(1), tendency=args.tendency,
+                                progress=lambda f, t: bar.update(1), tendency=args.tendency,
                                 balance=args.balance, floor=args.floor, pages=order, **texts)
         finally:
             bar.close()

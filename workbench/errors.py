@@ -55,3 +55,7 @@ class AnnotationError(WorkbenchError, ValueError):
 
 class ExportError(WorkbenchError):
     """A figure, briefing or netCDF export cannot be written (exists, bad path or format)."""
+
+
+class Cancelled(WorkbenchError):
+    """A long job was cancelled by the user (raised from its progress callback)."""

@@ -162,13 +162,13 @@ class QGModel(_LifeCycleModel):
                 if not np.all(np.isfinite(x)):
                     raise DomainError("what-if model: the run became unstable (non-finite values); the change "
                                       "is too large for the model or the time step too long.")
+                if progress:  # after every step: (outputs done, fractional, of nout)
+                    progress(n - 1 + (_ + 1) / steps_per_output, nout)
             if self.max_cfl > 1.6:
                 raise DomainError(f"what-if model: the Courant number reached {self.max_cfl:.2f} (> 1.6); the "
                                   "run is not stable with this time step.")
             if callback:
                 callback(n * output_hours, x, diag["phi"])
-            if progress:
-                progress(n, nout)
         return x
 
 
@@ -364,6 +364,8 @@ def run_whatif(case, piece, scale=1.0, *, shift_lon=0.0, shift_lat=0.0, hours=36
     ``scale=1`` without shift reproduces the control exactly (the same arithmetic). The surface
     low is tracked from the storm centre at ``time``; where the case has analyses at the control's
     valid times, ``verification`` gives the control's position and depth errors against them.
+    ``progress``: optional ``progress(fraction, text)`` called after every model step; an
+    exception it raises (e.g. :class:`~workbench.errors.Cancelled`) stops the run.
     """
     import pandas as pd
 
@@ -382,8 +384,6 @@ def run_whatif(case, piece, scale=1.0, *, shift_lon=0.0, shift_lat=0.0, hours=36
     runs = {}
     todo = [("control", setup.x0, setup.lateral), ("experiment", x_exp, lat_exp)] if control else \
         [("experiment", x_exp, lat_exp)]
-    total_steps = len(todo) * round(hours / OUTPUT_HOURS)
-    done = [0]
     for name, x0, lateral in todo:
         _with_lateral(model, setup.ref_phi, lateral)
         model.max_cfl = 0.0
@@ -393,10 +393,10 @@ def run_whatif(case, piece, scale=1.0, *, shift_lon=0.0, shift_lat=0.0, hours=36
             for key, val in zip(out, _output_fields(model, setup.ref_phi, setup.ref_t, x, phi)):
                 out[key].append(val)
 
-        def prog(n, total):
-            done[0] += 1
+        def prog(n, total, name=name, k=len(runs)):
             if progress:
-                progress(done[0], total_steps)
+                progress((k * total + n) / (len(todo) * total),
+                         f"{name} +{n * OUTPUT_HOURS:.0f} h of {hours:g} h")
 
         from .sample import _single_thread_blas
 
@@ -558,11 +558,11 @@ def main(argv=None) -> int:
     cli.check_pieces(case, pieces)
     member = cli.member_arg(case, args.member)
     time = cli.time_arg(case, args.time)
-    bar = cli.progress(desc="whatif", unit="6 h", enabled=False if args.quiet else None)
+    bar = cli.progress(desc="whatif", unit="%", enabled=False if args.quiet else None)
 
-    def progress(n, total):
-        bar.total = total
-        bar.update(n - bar.n)
+    def progress(fraction, text):
+        bar.total = 100
+        bar.update(int(100 * fraction) - bar.n)
 
     try:
         res = run_whatif(case, args.piece, args.scale, shift_lon=shift[0], shift_lat=shift[1], hours=args.hours,

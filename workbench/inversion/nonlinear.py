@@ -696,7 +696,7 @@ def harmonic_extension(grid: BalanceGrid, lateral):
 
 def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_lateral, *, guess=None,
                   tol=DEFAULT_TOL, max_newton=20, max_gmres=120, floor=False, pv_floor=0.01, eta_floor=0.05,
-                  verbose=False):
+                  verbose=False, progress=None):
     """Solve the nonlinear-balance system for Phi and psi.
 
     Parameters
@@ -811,6 +811,9 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
                 break
             Phi, psi, d, eta, clipped, r1, r2 = Pn, Sn, dn, en, cn, r1n, r2n
             history.append(rn)
+            if progress is not None:  # progress(fraction, text): residual reduction on a log scale; may raise
+                progress(min(1.0, np.log(history[0] / rn) / np.log(history[0] / tol)) if history[0] > tol else 1.0,
+                         f"Newton step {newton}: relative residual {rn:.1e}")
             if verbose:
                 print(f"newton {newton}: relative residual {rn:.3e} (step {step:g}, gmres rtol {rtol:.2g}, "
                       f"{n_it} GMRES)")
@@ -1139,7 +1142,7 @@ def _full_dataset(case, g, Phi, psi, tb, tt, res, balance):
 
 
 def invert_nonlinear_pieces(case, pieces, time=None, member=None, reference=None, *, tol=DEFAULT_TOL,
-                            floor=False, piece_rtol=1e-10):
+                            floor=False, piece_rtol=1e-10, progress=None):
     """Piecewise nonlinear-balance inversion of one case time (see the module docstring).
 
     Returns a dict like :func:`workbench.inversion.pieces.invert_pieces`: one balanced Dataset
@@ -1157,9 +1160,11 @@ def invert_nonlinear_pieces(case, pieces, time=None, member=None, reference=None
                          "rename the piece.")
     ti, mi = case._key(time, member)
     g, st, rf = _case_states(case, ti, mi, reference)
-    full = _solve_state(g, st, tol, floor)
+    part = (lambda a, b, what: None if progress is None else  # progress(fraction, text) over the whole job
+            (lambda f, t: progress(a + (b - a) * f, f"{what}: {t}")))
+    full = _solve_state(g, st, tol, floor, progress=part(0.0, 0.4, "full inversion"))
     _require_converged(full, "full inversion")
-    refr = _solve_state(g, rf, tol, floor)
+    refr = _solve_state(g, rf, tol, floor, progress=part(0.4, 0.8, "reference state"))
     _require_converged(refr, "inversion of the reference state")
     anomaly = case.anomaly(ti, mi, reference).copy()
     dq = st["q"] - rf["q"]
@@ -1185,6 +1190,8 @@ def invert_nonlinear_pieces(case, pieces, time=None, member=None, reference=None
         Bs.append(np.zeros(g.shape[1:]) if f["bottom_theta"] is None else f["bottom_theta"])
         Ts.append(np.zeros(g.shape[1:]) if f["top_theta"] is None else f["top_theta"])
         its.append(n)
+        if progress is not None:
+            progress(0.8 + 0.2 * len(its) / len(forcings), f"piece {name}: {n} GMRES steps")
     tot_P, tot_S = full.Phi - refr.Phi, full.psi - refr.psi
     tb_tot, tt_tot = st["tb"] - rf["tb"], st["tt"] - rf["tt"]
     names += [NONLINEAR_REMAINDER, "total"]

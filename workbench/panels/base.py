@@ -2,8 +2,6 @@
 parameters it shows, and reports every error in the State's status line."""
 from __future__ import annotations
 
-import time
-
 import panel as pn
 
 __all__ = ["StatePanel", "offline_extension", "notebook_bundle"]
@@ -121,30 +119,64 @@ class StatePanel:
         else:
             doc.add_next_tick_callback(lambda: self._guard(fn))
 
-    def work(self, label, fn, done=None):
-        """Long work: the busy indicator and ``label`` first, then ``fn``; the status line
-        says "done (n s)" or the error."""
+    #: whether :meth:`work` runs jobs in a worker thread by default (panels whose jobs only
+    #: compute set it True; jobs that change widgets or the State run on the page's thread)
+    background_work = False
+
+    @property
+    def jobs(self):
+        """The page session's :class:`~workbench.panels.jobs.JobRunner` (one job at a time)."""
+        from .jobs import JobRunner
+
+        return JobRunner.of(self.state)
+
+    def work(self, label, fn, done=None, *, background=None, on_error=None, on_finish=None):
+        """Long work through the page's job runner: the busy indicator, the progress read-out
+        (``label``, a bar and Cancel) and the status line saying "done (n s)", "cancelled" or
+        the error. ``fn()`` or ``fn(progress)`` (``progress(fraction, text)`` raises
+        :class:`~workbench.errors.Cancelled` once Cancel was pressed); ``done``: a message, or
+        a callable run on the page's thread afterwards returning the message. ``background``
+        (default :attr:`background_work`): run ``fn`` in a worker thread (it must then not
+        touch widgets or the State). Returns the :class:`~workbench.panels.jobs.Job`."""
         st = self.state
+        background = self.background_work if background is None else bool(background)
+
+        def ok(job, _result):
+            msg = done() if callable(done) else (done or "Done")
+            st.set_status(f"{msg} ({job.elapsed:.1f} s)", "success")
+
+        def failed(job, exc):
+            st.report(exc)
+            if on_error is not None:
+                self._guard(on_error, job, exc)
+
+        def cancelled(job):
+            st.set_status(f"{label}: cancelled after {job.elapsed:.1f} s; nothing was kept",
+                          "warning")
+            if on_error is not None:
+                self._guard(on_error, job, None)
+
+        def finish(job):
+            st.busy = False
+            if on_finish is not None:
+                self._guard(on_finish, job)
+
+        def guarded(cb):
+            def run(*args):
+                try:
+                    cb(*args)
+                except Exception as exc:  # noqa: BLE001
+                    st.report(exc)
+            return run
+
+        runner = self.jobs
+        if runner.job is not None and runner.job.running:
+            runner.submit(label, fn)  # refuses with the running job's name
         st.busy = True
         st.set_status(label + " …", "info")
-
-        def run():
-            t0 = time.perf_counter()
-            try:
-                fn()
-                msg = done() if callable(done) else (done or "Done")
-            except Exception as exc:  # noqa: BLE001
-                st.report(exc)
-            else:
-                st.set_status(f"{msg} ({time.perf_counter() - t0:.1f} s)", "success")
-            finally:
-                st.busy = False
-
-        doc = self._doc()
-        if doc is None:
-            run()
-        else:
-            doc.add_next_tick_callback(run)
+        return runner.submit(label, fn, on_done=guarded(ok), on_error=guarded(failed),
+                             on_cancel=guarded(cancelled), on_finish=finish,
+                             background=background)
 
     @staticmethod
     def to_widget(widget, value):

@@ -59,7 +59,13 @@ class StatusPanel(StatePanel):
                                   f"color:#6b4e00'>⚠ {escape(CAUTION)}</span>")
         self.watch(self.show, ["status", "status_level", "busy"])
         self.show()
-        return [pn.Row(self.header, self.spinner, sizing_mode="stretch_width"), self.status]
+        from .jobs import JobReadout  # the running job's progress bar, text and Cancel button
+
+        if getattr(self, "job_readout", None) is not None:
+            self.job_readout.detach()
+        self.job_readout = JobReadout(self.jobs)
+        return [pn.Row(self.header, self.spinner, sizing_mode="stretch_width"), self.status,
+                self.job_readout.layout]
 
     def show(self, *_):
         st = self.state
@@ -75,6 +81,8 @@ class StatusPanel(StatePanel):
 class FilePanel(StatePanel):
     """Open a case file from the data folders (``state.page.data_dirs``); a file that fails
     to open leaves the current case and its message in the status line."""
+
+    background_work = True  # opening a file only reads it; the case is switched afterwards
 
     def build(self):
         self.file_select = pn.widgets.Select(label="Case file (data folders)", options={},
