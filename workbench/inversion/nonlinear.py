@@ -221,6 +221,15 @@ class BalanceGrid:
     def interior(self, a):
         return a[..., 1:-1, self.ls]
 
+    def coefficients(self, dtype):
+        """(Laplacian, div(f grad)) flux-form coefficient dicts cast to ``dtype`` (cached), so
+        that the single-precision inner solves stay in single precision."""
+        dtype = np.dtype(dtype)
+        cache = self.__dict__.setdefault("_coeff_cache", {})
+        if dtype not in cache:
+            cache[dtype] = tuple({k: np.asarray(v, dtype) for k, v in co.items()} for co in (self.hc, self.divf))
+        return cache[dtype]
+
     # --- vertical -------------------------------------------------------------------------
     def d_pi(self, a):
         """d/dpi at the levels, second order (one-sided second order on the end levels)."""
@@ -327,9 +336,10 @@ class _Jacobian:
     instead of re-deriving all terms of the state.  Increments are zero on the lateral nodes
     and the boundary theta is not perturbed (the Newton and piece solves)."""
 
-    def __init__(self, grid, d, eta, clipped):
+    def __init__(self, grid, d, eta, clipped, dtype=np.float64):
         g = self.g = grid
         a = g.a
+        dt = self.dtype = np.dtype(dtype)
         C = g.C[:, None, None]
         D = np.gradient(np.eye(g.nz), g.pi, axis=0, edge_order=2)  # d/dpi as a matrix (np.gradient's weights)
         self._dpi_rows = D
@@ -354,8 +364,16 @@ class _Jacobian:
         c_lon = (4.0 * hxy * g.tan / (a * a * g.cos) + 2.0 * d["psx"] / (a ** 3 * g.cos)) / (2.0 * g.dlam)
         self.kY = [c_d2 * v + c_lat * w for v, w in ((v0, w0), (v1, w1), (v2, w2))]
         self.kD = [c_xy * w0, c_xy * w1 + c_lon, c_xy * w2]
-        self._X = np.zeros(g.shape)
-        self._Y = np.zeros(g.shape)
+        if dt != np.float64:  # single-precision inner products: every coefficient in that dtype
+            for k in ("_dpi_rows", "_dpi_lo", "_dpi_md", "_dpi_up", "cE", "cS", "cspx", "cPpx", "c_lap"):
+                setattr(self, k, np.asarray(getattr(self, k), dt))
+            for k in ("cspy", "cPpy", "kY", "kD"):
+                setattr(self, k, [np.asarray(w, dt) for w in getattr(self, k)])
+        self._hc, self._divf = g.coefficients(dt)
+        self._rdpi = (1.0 / g.dpi).astype(dt)[:, None, None]
+        self._rhs = (1.0 / g.hs).astype(dt)[:, None, None]
+        self._X = np.zeros(g.shape, dt)
+        self._Y = np.zeros(g.shape, dt)
 
     def _dlon(self, b):
         """Raw centred longitude difference b[i+1] - b[i-1] at the interior longitudes."""
@@ -364,7 +382,7 @@ class _Jacobian:
         return b[..., 2:] - b[..., :-2]
 
     def _dpi(self, b, ends):
-        out = np.empty(b.shape)
+        out = np.empty(b.shape, b.dtype)
         out[1:-1] = self._dpi_lo[:, None, None] * b[:-2]
         out[1:-1] += self._dpi_md[:, None, None] * b[1:-1]
         out[1:-1] += self._dpi_up[:, None, None] * b[2:]
@@ -392,13 +410,14 @@ class _Jacobian:
         X[..., 1:-1, ls] = x1
         Y[..., 1:-1, ls] = x2
         # PV equation
-        grad = (X[1:] - X[:-1]) / g.dpi[:, None, None]
-        spp = np.empty(g.shape)
+        grad = X[1:] - X[:-1]
+        grad *= self._rdpi
+        spp = np.empty(g.shape, self.dtype)
         spp[1:-1] = grad[1:] - grad[:-1]
         spp[0] = grad[0]
         spp[-1] = -grad[-1]
-        spp /= g.hs[:, None, None]
-        lapY = g.lap(Y)
+        spp *= self._rhs
+        lapY = g._flux_form(Y, self._hc)
         r1 = self.cE * g.interior(spp)
         r1 += self.cS * lapY
         Xp = self._dpi(X, False)
@@ -408,8 +427,8 @@ class _Jacobian:
         r1 -= self._lat3(self.cspy, Xp[..., ls])
         r1 -= self._lat3(self.cPpy, Yp[..., ls])
         # balance equation
-        r2 = g.lap(X)
-        r2 -= g.div_f_grad(Y)
+        r2 = g._flux_form(X, self._hc)
+        r2 -= g._flux_form(Y, self._divf)
         r2 += self.c_lap * lapY
         r2 += self._lat3(self.kY, Y[..., ls])
         r2 += self._lat3(self.kD, self._dlon(Y))
@@ -431,7 +450,7 @@ class _LatSeparable(SeparableSolver):
     the parent's.
     """
 
-    def __init__(self, grid: QGGrid, coeffs, w=None, T=None, cy=None, nv=None, workers=None):
+    def __init__(self, grid: QGGrid, coeffs, w=None, T=None, cy=None, nv=None, workers=None, dtype=np.float64):
         self.grid = grid
         self.workers = workers or 1
         _, nyi, nxi = grid.interior_shape
@@ -465,12 +484,15 @@ class _LatSeparable(SeparableSolver):
         for j in range(1, nyi):
             inv_piv[j] = 1.0 / (diag[j] - south[j] * cprime[j - 1])
             cprime[j] = north[j] * inv_piv[j]
-        self._south, self._inv_piv, self._cprime = south, inv_piv, cprime
+        dt = np.dtype(dtype)
+        self._south, self._inv_piv, self._cprime = south.astype(dt), inv_piv.astype(dt), cprime.astype(dt)
+        if self._fwd is not None:
+            self._fwd, self._inv = self._fwd.astype(dt), self._inv.astype(dt)
 
     def _solve_interior(self, r, lead, nv, nyi, nxi):
         if self._fwd is not None:
             return super()._solve_interior(r, lead, nv, nyi, nxi)
-        y = np.array(r, dtype=float)
+        y = np.array(r, dtype=self._south.dtype)
         if self.grid.periodic:
             y = sfft.rfft(y, axis=-1, workers=self.workers)
         else:
@@ -495,7 +517,7 @@ class _Preconditioner:
     ``div(eta grad dpsi) = lap dPhi - r2``.
     """
 
-    def __init__(self, grid: BalanceGrid, S, eta_rows=None, s_rows=None):
+    def __init__(self, grid: BalanceGrid, S, eta_rows=None, s_rows=None, dtype=np.float64):
         S = np.asarray(S, float)
         if not np.all(S > 0):
             raise DomainError(
@@ -510,11 +532,13 @@ class _Preconditioner:
         ei = eta[1:-1]
         coeffs = dict(south=hc["south"] * eta_half[:-1], north=hc["north"] * eta_half[1:], zonal=hc["zonal"] * ei)
         coeffs["merid_diag"] = -(coeffs["south"] + coeffs["north"])
-        self.A = _LatSeparable(grid.qg, hc, w=grid.hpos * S, T=grid.T, cy=ei ** 2 / srow)
-        self.B = _LatSeparable(grid.qg, coeffs, nv=1)
-        self.scale = (ei[:, None] / srow[:, None])[None] / (grid.C * S)[:, None, None]
+        dt = np.dtype(dtype)
+        self.A = _LatSeparable(grid.qg, hc, w=grid.hpos * S, T=grid.T, cy=ei ** 2 / srow, dtype=dt)
+        self.B = _LatSeparable(grid.qg, coeffs, nv=1, dtype=dt)
+        self.scale = ((ei[:, None] / srow[:, None])[None] / (grid.C * S)[:, None, None]).astype(dt)
+        self._hc = grid.coefficients(dt)[0]
         self.applications = 0
-        self._full = np.zeros(grid.shape)
+        self._full = np.zeros(grid.shape, dt)
 
     def apply(self, r1, r2):
         g = self.grid
@@ -522,16 +546,18 @@ class _Preconditioner:
         dPhi = self.A.solve_interior(self.scale * r1 + r2)
         full = self._full
         full[..., 1:-1, g.ls] = dPhi
-        dpsi = self.B.solve_interior(g.lap(full) - r2)
+        rb = g._flux_form(full, self._hc)
+        rb -= r2
+        dpsi = self.B.solve_interior(rb)
         return dPhi, dpsi
 
 
-def _make_preconditioner(g, Spp, eta, mode="rows"):
+def _make_preconditioner(g, Spp, eta, mode="rows", dtype=np.float64):
     """The preconditioner for the linearisation at a state with ``Phi_pipi`` = ``Spp`` and
     absolute vorticity ``eta`` (interior nodes)."""
     S = Spp.reshape(g.nz, -1).mean(axis=1)
     if mode == "rest":
-        return _Preconditioner(g, S)
+        return _Preconditioner(g, S, dtype=dtype)
     er = eta.mean(axis=(0, 2))
     eta_rows = np.concatenate([[g.f[0]], er, [g.f[-1]]])
     # keep the sign of f and at least a fraction of it (the floor's rule)
@@ -540,7 +566,7 @@ def _make_preconditioner(g, Spp, eta, mode="rows"):
     if mode == "rows_s":
         s_rows = (Spp.mean(axis=2) / S[:, None]).mean(axis=0)
         s_rows = np.clip(s_rows, 0.2, 5.0)
-    return _Preconditioner(g, S, eta_rows=eta_rows, s_rows=s_rows)
+    return _Preconditioner(g, S, eta_rows=eta_rows, s_rows=s_rows, dtype=dtype)
 
 
 # ---------------------------------------------------------------------------
@@ -577,42 +603,52 @@ def _gmres_right(matvec, precond, b, rtol, maxiter, restart=30):
 
     The residual it minimises is the true residual ``b - A x`` (right preconditioning), so
     ``rtol`` means what the inexact Newton forcing asks for.  One operator product and one
-    preconditioner application per iteration, plus one preconditioner application per
-    cycle to form x; classical Gram-Schmidt with one re-orthogonalisation (BLAS products).
+    preconditioner application per iteration; the preconditioned directions ``z_k = M v_k``
+    are kept (flexible-GMRES storage), so forming x costs no further preconditioner
+    application.  Classical Gram-Schmidt, re-orthogonalised once only when the new vector
+    lost more than 30 % of its norm (the usual criterion).  Works in the dtype of ``b``
+    (float32 for the single-precision inner solves of :func:`solve_balance`).
     Returns (x, iterations, relative residual reached).  SciPy's ``gmres`` preconditions on the
     left (its stopping test is on the preconditioned residual) and spends extra
     preconditioner applications per call, which is why this small loop is used here.
     """
     n = b.size
+    dt = b.dtype
     beta0 = float(np.linalg.norm(b))
-    x = np.zeros(n)
+    x = np.zeros(n, dtype=dt)
     if beta0 == 0.0:
         return x, 0, 0.0
     its = 0
-    r = b.copy()
+    r = b
     beta = beta0
     while True:
         m = min(restart, maxiter - its)
-        V = np.empty((m + 1, n))
+        V = np.empty((m + 1, n), dtype=dt)
+        Z = []
         H = np.zeros((m + 1, m))
         cs, sn = np.zeros(m), np.zeros(m)
         gv = np.zeros(m + 1)
         gv[0] = beta
-        V[0] = r / beta
+        np.multiply(r, 1.0 / beta, out=V[0], casting="unsafe")
         k = 0
         for k in range(m):
-            w = matvec(precond(V[k]))
+            z = precond(V[k])
+            Z.append(z)
+            w = matvec(z)
             its += 1
-            h = V[:k + 1] @ w
-            w -= h @ V[:k + 1]
-            h2 = V[:k + 1] @ w  # re-orthogonalise once (CGS2)
-            w -= h2 @ V[:k + 1]
-            h += h2
+            w0 = float(np.linalg.norm(w))
+            h = (V[:k + 1] @ w).astype(float)
+            w -= h.astype(dt) @ V[:k + 1]
             hn = float(np.linalg.norm(w))
+            if hn < 0.7 * w0:  # re-orthogonalise once (CGS2) when cancellation was large
+                h2 = (V[:k + 1] @ w).astype(float)
+                w -= h2.astype(dt) @ V[:k + 1]
+                h += h2
+                hn = float(np.linalg.norm(w))
             H[:k + 1, k] = h
             H[k + 1, k] = hn
             if hn > 0.0:
-                V[k + 1] = w / hn
+                np.multiply(w, 1.0 / hn, out=V[k + 1], casting="unsafe")
             for i in range(k):  # previous rotations
                 t = cs[i] * H[i, k] + sn[i] * H[i + 1, k]
                 H[i + 1, k] = -sn[i] * H[i, k] + cs[i] * H[i + 1, k]
@@ -629,7 +665,9 @@ def _gmres_right(matvec, precond, b, rtol, maxiter, restart=30):
         y = np.zeros(kk)
         for i in range(kk - 1, -1, -1):  # back substitution on the rotated Hessenberg matrix
             y[i] = (gv[i] - H[i, i + 1:kk] @ y[i + 1:]) / H[i, i]
-        x += precond(y @ V[:kk])
+        for i in range(kk):
+            x += dt.type(y[i]) * Z[i]
+        del Z, V
         rel = abs(gv[kk]) / beta0
         if rel <= rtol or its >= maxiter:
             return x, its, rel
@@ -696,7 +734,8 @@ def harmonic_extension(grid: BalanceGrid, lateral):
 
 def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_lateral, *, guess=None,
                   tol=DEFAULT_TOL, max_newton=20, max_gmres=120, floor=False, pv_floor=0.01, eta_floor=0.05,
-                  verbose=False, progress=None):
+                  verbose=False, progress=None, inner_precision="single", ew_gamma=0.9, ew_alpha=2.0,
+                  eta0=0.1):
     """Solve the nonlinear-balance system for Phi and psi.
 
     Parameters
@@ -767,36 +806,44 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
     d, eta, clipped, r1, r2 = residual(Phi, psi)
     history = [rel(r1, r2)]
     # unknown scales: the preconditioner maps scaled residuals to increments
-    eta_k, prev = 0.1, history[0]
+    eta_k, prev = eta0, history[0]
     newton = 0
+    inner = np.dtype(np.float32 if inner_precision == "single" else np.float64)
+    # single-precision inner solves cannot resolve relative reductions much below ~1e-6
+    rtol_floor = 1e-4 if inner == np.float32 else 0.0
     with _blas_threads(1):
         while history[-1] > tol and newton < max_newton:
             newton += 1
-            dd, ee, cc = d, eta, clipped
+            Jk = _Jacobian(g, d, eta, clipped, dtype=inner)
+            P = _make_preconditioner(g, d["Spp"], eta, dtype=inner)
+            buf = np.empty(2 * n_int, inner)
+            s1, s2 = inner.type(1.0 / qs), inner.type(1.0 / bs)
+            a1, a2 = inner.type(qs), inner.type(bs)
 
-            def split(v):
-                return v[:n_int].reshape(g.interior_shape), v[n_int:].reshape(g.interior_shape)
+            def matvec(v, Jk=Jk, buf=buf, s1=s1, s2=s2):
+                j1, j2 = Jk.apply(v[:n_int].reshape(g.interior_shape), v[n_int:].reshape(g.interior_shape))
+                out = np.empty_like(buf)
+                np.multiply(j1.reshape(-1), s1, out=out[:n_int])
+                np.multiply(j2.reshape(-1), s2, out=out[n_int:])
+                return out
 
-            Jk = _Jacobian(g, dd, ee, cc)
-            P = _make_preconditioner(g, dd["Spp"], ee)
+            def precond(v, P=P, buf=buf, a1=a1, a2=a2):
+                x1, x2 = P.apply(v[:n_int].reshape(g.interior_shape) * a1, v[n_int:].reshape(g.interior_shape) * a2)
+                out = np.empty_like(buf)
+                out[:n_int] = x1.reshape(-1)
+                out[n_int:] = x2.reshape(-1)
+                return out
 
-            def matvec(v):
-                a, b = split(np.asarray(v).ravel())
-                j1, j2 = Jk.apply(a, b)
-                return np.concatenate([(j1 / qs).ravel(), (j2 / bs).ravel()])
-
-            def precond(v):
-                a, b = split(np.asarray(v).ravel())
-                x1, x2 = P.apply(a * qs, b * bs)
-                return np.concatenate([x1.ravel(), x2.ravel()])
-
-            rhs = -np.concatenate([(r1 / qs).ravel(), (r2 / bs).ravel()])
-            rtol = min(0.5, max(eta_k, 0.5 * tol / max(history[-1], 1e-300)))
+            rhs = np.empty(2 * n_int, inner)
+            np.multiply(r1.reshape(-1), -1.0 / qs, out=rhs[:n_int], casting="unsafe")
+            np.multiply(r2.reshape(-1), -1.0 / bs, out=rhs[n_int:], casting="unsafe")
+            rtol = min(0.5, max(eta_k, 0.5 * tol / max(history[-1], 1e-300), rtol_floor))
             dx, n_it, _rel = _gmres_right(matvec, precond, rhs, rtol, maxiter=max_gmres)
             counts["gmres"] += n_it
             counts["per_step"].append(n_it)
             counts["pc"] += P.applications
-            dP, dS = split(dx)
+            dP = dx[:n_int].reshape(g.interior_shape).astype(float)
+            dS = dx[n_int:].reshape(g.interior_shape).astype(float)
             step = 1.0
             for _ in range(6):  # backtracking on the residual norm
                 Pn, Sn = Phi.copy(), psi.copy()
@@ -811,17 +858,18 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
                 break
             Phi, psi, d, eta, clipped, r1, r2 = Pn, Sn, dn, en, cn, r1n, r2n
             history.append(rn)
-            if progress is not None:  # progress(fraction, text): residual reduction on a log scale; may raise
-                progress(min(1.0, np.log(history[0] / rn) / np.log(history[0] / tol)) if history[0] > tol else 1.0,
-                         f"Newton step {newton}: relative residual {rn:.1e}")
             if verbose:
                 print(f"newton {newton}: relative residual {rn:.3e} (step {step:g}, gmres rtol {rtol:.2g}, "
                       f"{n_it} GMRES)")
+            if progress is not None:  # once per outer (Newton) iteration
+                h0 = max(history[0], tol * (1.0 + 1e-12))
+                frac = float(np.clip(np.log(h0 / rn) / np.log(h0 / tol), 0.0, 1.0)) if rn > 0 else 1.0
+                progress(frac, f"Newton step {newton}: relative residual {rn:.2e} (tolerance {tol:g})")
             ratio = rn / prev
             prev = rn
-            eta_new = 0.9 * ratio ** 2
-            if 0.9 * eta_k ** 2 > 0.1:
-                eta_new = max(eta_new, 0.9 * eta_k ** 2)
+            eta_new = ew_gamma * ratio ** ew_alpha
+            if ew_gamma * eta_k ** ew_alpha > 0.1:
+                eta_new = max(eta_new, ew_gamma * eta_k ** ew_alpha)
             eta_k = min(0.5, max(eta_new, 1e-12))
     floored = None
     n_pv = int(pv_mask.sum())
