@@ -60,7 +60,8 @@ def test_panels_follow_one_state(state):
 
 
 def test_each_panel_watches_only_what_it_shows(state):
-    assert _watched(panels.PiecesPanel(state)) == {"pieces"}
+    # the pieces list also says what tracking found at the selected time
+    assert _watched(panels.PiecesPanel(state)) == {"pieces", "time_index", "member", "reference"}
     assert _watched(panels.AnnotationPanel(state)) == {"annotations"}
     assert _watched(panels.StatusPanel(state)) == {"status", "status_level", "busy"}
     assert _watched(panels.AttributionPanel(state)) == {"pieces", "target", "time_index",

@@ -183,8 +183,15 @@ class PageChoices(param.Parameterized):
                                     doc="Draw the map in the data's own projection (when the "
                                         "case has one) or on longitude-latitude.")
     mouse_mode = param.Selector(default="lasso", objects=["pan", "lasso", "section", "target",
-                                                          "label"],
-                                doc="What a drag or click on the map does.")
+                                                          "label", "edit", "move", "arrow"],
+                                doc="What a drag or click on the map does ('edit': drag the "
+                                    "vertices of piece outlines; 'move': drag labels; 'arrow': "
+                                    "drag an arrow).")
+    lasso_follow = param.Boolean(default=False,
+                                 doc="The next lasso piece follows its anomaly at other times.")
+    selected = param.String(default=None, allow_None=True,
+                            doc="What Delete removes: 'piece:NAME' or 'annotation:ID'.")
+    play_fps = param.Number(default=1.0, bounds=(0.1, 10.0), doc="Frames per second of the time loop.")
     lasso_makes = param.Selector(default="interior", objects=["interior", "bottom", "top",
                                                               "region"],
                                  doc="A lasso makes an interior PV piece, a surface/lid θ′ "
@@ -206,6 +213,46 @@ class PageChoices(param.Parameterized):
     data_dirs = param.List(default=[], doc="Folders the page may open files from.")
     output_dir = param.String(default=None, allow_None=True,
                               doc="The folder sessions and exports are written to.")
+
+
+class _OverlayNumber(param.Parameter):
+    """An optional number of the balanced-flow overlay (None: automatic); a value outside
+    ``low..high`` (or not a number) raises InputError naming the setting."""
+
+    __slots__ = ["low", "high", "integer", "what"]
+
+    def __init__(self, low, high, integer=False, what="value", **kw):
+        super().__init__(**kw)
+        self.low, self.high, self.integer, self.what = low, high, integer, what
+
+    def __set__(self, obj, val):
+        if val is not None:
+            ok = isinstance(val, (int, float, np.integer, np.floating)) and \
+                not isinstance(val, (bool, np.bool_)) and np.isfinite(val)
+            if ok and self.integer and float(val) != int(val):
+                ok = False
+            if not ok or not (self.low <= float(val) <= self.high):
+                kind = "a whole number" if self.integer else "a number"
+                raise InputError(f"{self.what} {val!r} must be {kind} from {self.low:g} to "
+                                 f"{self.high:g} (or None for automatic)")
+            val = int(val) if self.integer else float(val)
+        super().__set__(obj, val)
+
+
+class _PieceNames(param.List):
+    """Names of existing pieces (InputError for anything else)."""
+
+    def __set__(self, obj, val):
+        val = [] if val is None else val
+        if not isinstance(val, (list, tuple)) or not all(isinstance(n, str) for n in val):
+            raise InputError(f"overlay pieces left out {val!r} must be a list of piece names")
+        if isinstance(obj, State) and obj.pieces is not None:
+            known = {p.name for p in obj.pieces}
+            bad = [n for n in val if n not in known]
+            if bad:
+                raise InputError(f"no piece called {', '.join(map(repr, bad))}; pieces: "
+                                 f"{', '.join(sorted(known)) or 'none yet'}")
+        super().__set__(obj, list(dict.fromkeys(val)))
 
 
 class State(param.Parameterized):
@@ -243,11 +290,41 @@ class State(param.Parameterized):
         default=None, allow_None=True,
         doc="How the static figures look (projection, size, dpi, colours...): the fields of "
             "workbench.session.FigureSettings as a dict; None or missing keys take the defaults.")
+    # --- balanced-flow overlay on the map (saved in sessions as "overlay") ---
+    overlay_contour_interval = _OverlayNumber(
+        0.1, 10000.0, what="contour interval of the balanced height anomaly (m)",
+        default=None, allow_None=True,
+        doc="Interval (m) of the balanced height-anomaly contours; None: about 5 contours.")
+    overlay_arrow_stride = _OverlayNumber(
+        1, 100, integer=True, what="arrow density (an arrow every n grid points)",
+        default=None, allow_None=True,
+        doc="A balanced-flow arrow at every n-th grid point; None: about 18 across the map.")
+    overlay_arrow_speed = _OverlayNumber(
+        0.1, 1000.0, what="arrow scale (m/s per arrow spacing)", default=None,
+        allow_None=True,
+        doc="Speed (m/s) of an arrow one spacing long, drawn as the legend arrow; None: "
+            "the largest speed rounded to a nice number.")
+    overlay_left_out = _PieceNames(
+        default=[], doc="Visible pieces left out of the map's overlay (names).")
     status = param.String(default="", doc="Status message for the user.")
     status_level = param.Selector(default="info", objects=["info", "success", "warning", "error"])
     busy = param.Boolean(default=False, doc="True while a computation runs.")
     page = param.ClassSelector(class_=PageChoices, default=None, allow_None=True,
                                doc="The page's control settings (PageChoices; not saved).")
+    undo_steps = param.Integer(default=0, bounds=(0, None), precedence=-1,
+                               doc="How many changes undo can take back (read only).")
+    redo_steps = param.Integer(default=0, bounds=(0, None), precedence=-1,
+                               doc="How many undone changes redo can bring back (read only).")
+    # --- balance of the attribution, briefing fields, last what-if (saved in sessions) ---
+    balance = param.Selector(default="qg", objects=["qg", "nonlinear"],
+                             doc="Balance of the attribution table and overlay: 'qg' (the instant "
+                                 "preview) or 'nonlinear' (refined in the background).")
+    balance_floor = param.Boolean(default=False, doc="Nonlinear balance: accept the floor remedy "
+                                                     "where PV or absolute vorticity has the wrong sign.")
+    briefing = param.Dict(default={}, doc="Briefing fields: headline, summary, author, office, "
+                                          "pages (names of brief.PAGES in order; None: default).")
+    whatif = param.Dict(default=None, allow_None=True,
+                        doc="The last what-if run: its settings and a summary of its results.")
 
     def __init__(self, case=None, **params):
         params["figure_settings"] = _figure_settings_dict(params.get("figure_settings"))
@@ -255,6 +332,7 @@ class State(param.Parameterized):
         super().__init__(case=case, **params)
         if case is not None:
             self._fit_to_case()
+        self._history_init()
 
     # ------------------------------------------------------------------ case and selection
     def _fit_to_case(self):
@@ -446,30 +524,33 @@ class State(param.Parameterized):
         """
         if not self.pieces:
             return {}
+        pieces = self.pieces_now()
         key = (self.time_index, self.member, self.reference)
-        pk = [_physics_key(p) for p in self.pieces]
+        pk = [_physics_key(p) for p in pieces]
         c = self.__dict__.get("_inc")
         if c is not None and c["key"] == key:
             old = c["pk"]
             if pk == old:
+                c["pieces"] = pieces
                 return self._named(c)
             n = len(old)
             if len(pk) > n and pk[:n] == old and all(
-                    p.kind != "remainder" for p in self.pieces[n:]):
-                for piece in self.pieces[n:]:
+                    p.kind != "remainder" for p in pieces[n:]):
+                for piece in pieces[n:]:
                     self._append_result(c, piece)
-                c["pk"] = pk
+                c["pk"], c["pieces"] = pk, pieces
                 return self._named(c)
             if len(pk) < n and old[:len(pk)] == pk and all(
                     json.loads(k)["kind"] != "remainder" for k in old[len(pk):]):
+                c["pieces"] = pieces
                 self._drop_results(c, len(pk))
                 c["pk"] = pk
                 return self._named(c)
-        res = self.case.inversion(list(self.pieces), reference=self.reference, **self._sel())
-        rem_name = next((p.name for p in self.pieces if p.kind == "remainder"), "remainder")
-        c = dict(key=key, pk=pk, total=res["total"], remainder=res[rem_name],
-                 by_index=[None if p.kind == "remainder" else res[p.name] for p in self.pieces])
-        self._claims(c, self.pieces)
+        res = self.case.inversion(list(pieces), reference=self.reference, **self._sel())
+        rem_name = next((p.name for p in pieces if p.kind == "remainder"), "remainder")
+        c = dict(key=key, pk=pk, total=res["total"], remainder=res[rem_name], pieces=pieces,
+                 by_index=[None if p.kind == "remainder" else res[p.name] for p in pieces])
+        self._claims(c, pieces)
         self.__dict__["_inc"] = c
         return res
 
@@ -481,14 +562,15 @@ class State(param.Parameterized):
         if c is not None and c["key"] == key:
             return
         res = self.case.inversion([], reference=self.reference, **self._sel())
-        c = dict(key=key, pk=[], total=res["total"], remainder=res["remainder"], by_index=[])
+        c = dict(key=key, pk=[], total=res["total"], remainder=res["remainder"], by_index=[],
+                 pieces=[])
         self._claims(c, [])
         self.__dict__["_inc"] = c
 
     def _named(self, c):
         out = {}
         rem_name = "remainder"
-        for p, r in zip(self.pieces, c["by_index"]):
+        for p, r in zip(c.get("pieces", self.pieces), c["by_index"]):
             if p.kind == "remainder":
                 rem_name = p.name
             else:
@@ -540,19 +622,20 @@ class State(param.Parameterized):
         rem.attrs = dict(c["remainder"].attrs)
         c["remainder"] = rem
         c["by_index"] = c["by_index"][:keep]
-        self._claims(c, self.pieces)
+        self._claims(c, c.get("pieces", self.pieces))
 
     def visible_results(self):
-        """Results of the visible pieces only (no 'total')."""
-        res = self.results()
+        """Results of the visible pieces only (no 'total'; nonlinear once refined)."""
+        res = self.balanced_results()[0]
         return {p.name: res[p.name] for p in self.pieces if p.visible and p.name in res}
 
     def overlay(self):
         """The balanced flow drawn over the map: the sum of the visible pieces' balanced
         ``u``, ``v`` and ``height_anomaly`` at the overlay level (pieces add linearly),
         a Dataset (latitude, longitude) with attrs ``pieces`` (names) and ``level_hpa``;
-        None when no piece is visible."""
+        None when no piece is visible. Pieces named in ``overlay_left_out`` are left out."""
         vis = self.visible_results()
+        vis = {n: r for n, r in vis.items() if n not in self.overlay_left_out}
         if not vis:
             return None
         names = list(vis)
@@ -569,6 +652,59 @@ class State(param.Parameterized):
                             for v, a in sums.items()}, coords=coords)
         total.attrs = dict(pieces=names, level_hpa=float(p[k]) / 100.0)
         return total
+
+    # ------------------------------------------------------------------ map read-outs
+    def overlay_readout(self):
+        """:meth:`overlay` plus the summed balanced wind's ``wind_speed`` (m s-1) and
+        ``wind_from_direction`` (degrees, meteorological: where the wind blows from),
+        computed with MetPy's ``wind_speed`` / ``wind_direction``; None without an overlay."""
+        ov = self.overlay()
+        if ov is None:
+            return None
+        from metpy.calc import wind_direction, wind_speed
+
+        from .units import units
+
+        u = np.asarray(ov["u"].values, float) * units("m/s")
+        v = np.asarray(ov["v"].values, float) * units("m/s")
+        dims = ("latitude", "longitude")
+        ov["wind_speed"] = (dims, np.asarray(wind_speed(u, v).m_as("m/s")),
+                            dict(units="m s-1", long_name="balanced wind speed"))
+        ov["wind_from_direction"] = (dims, np.asarray(
+            wind_direction(u, v, convention="from").m_as("degree")),
+            dict(units="degree", standard_name="wind_from_direction"))
+        return ov
+
+    def map_point_field(self):
+        """The second quantity of the map read-out on the map's grid: the pressure (Pa) of
+        the surface on an isentropic surface or the dynamic tropopause, the potential
+        temperature (K) on a pressure level; attrs ``label`` and ``units``."""
+        on_level = isinstance(self.surface, str) and self.surface.endswith("hPa")
+        name = "potential_temperature" if on_level else "pressure"
+        da = self.case.map_field(name, self.surface, reference=self.reference,
+                                 threshold=self.threshold, **self._sel())
+        da = da.copy(deep=False)  # (the case caches its maps: attrs of a copy)
+        da.attrs = dict(da.attrs, label="θ" if on_level else "pressure",
+                        units="K" if on_level else "Pa")
+        return da
+
+    def map_field_difference(self, other):
+        """This state's map field minus ``other``'s (same case, field and surface; e.g. the
+        compare view's B − A), a DataArray with attrs ``field``, ``surface`` and
+        ``difference``."""
+        if other.case is not self.case:
+            raise InputError("a difference map needs both maps on the same case")
+        if other.field != self.field or other.surface != self.surface:
+            raise InputError("a difference map needs the same field and surface on both maps")
+        a, b = other.map_field(), self.map_field()
+        with xr.set_options(keep_attrs=True):
+            out = b - a
+        out.attrs = dict(b.attrs, difference=f"{self._label()} − {other._label()}")
+        return out
+
+    def _label(self):
+        t = self.time_labels[self.time_index]
+        return t + ("" if self.member is None else f" m{self.member}")
 
     def attribution(self, target=None):
         """Each piece's share at the target point (lon, lat, pressure hPa), a pandas DataFrame
@@ -694,6 +830,224 @@ class State(param.Parameterized):
         self.annotations = []
         return n
 
+    # ------------------------------------------------------------------ pieces that follow the weather
+    # (a piece with follow="anomaly" is carried to the selected time by workbench.tracking; the
+    # tracks are cached per piece, so a lasso or a time step does not track the others again)
+    def set_follow(self, name, follow):
+        """Carry piece ``name`` to the other times fixed in place (``"fixed"``) or following its
+        anomaly (``"anomaly"``; its outline counts as drawn at the selected time unless it has a
+        ``follow_from`` already)."""
+        p = self.piece(name)
+        if follow == p.follow:
+            return
+        changes = dict(follow=follow)
+        if follow == "anomaly" and p.follow_from is None and self.case is not None:
+            changes["follow_from"] = str(self.valid_time)[:19]
+        self._replace(name, **changes)
+
+    def _track_steps(self, piece):
+        """The tracking steps of ``piece`` over the case's times (cached by its outline,
+        settings, member and reference)."""
+        from .tracking import track_pieces
+
+        key = (json.dumps(piece.to_dict(), sort_keys=True, default=str), self.member, self.reference)
+        cache = self.__dict__.setdefault("_tracks", {})
+        if key not in cache:
+            if len(cache) > 32:
+                cache.clear()
+            cache[key] = track_pieces(self.case, [piece], member=self.member,
+                                      reference=self.reference,
+                                      time=piece.follow_from or str(self.valid_time)[:19])[piece.name]
+        return cache[key]
+
+    def _piece_now(self, piece):
+        """(piece at the selected time or None when lost, status, note)."""
+        if piece.follow != "anomaly" or self.case is None:
+            return piece, "fixed", ""
+        start = piece.follow_from
+        if start is None or str(start)[:19] == str(self.valid_time)[:19]:
+            return piece, "start", ""
+        steps = self._track_steps(piece)
+        s = next((s for s in steps if s.time == self.time_index), None)
+        if s is None:
+            return piece, "fixed", ""
+        return s.piece, s.status, s.note
+
+    def pieces_now(self):
+        """The pieces at the selected time: fixed ones as they are, following ones with their
+        tracked outline; a piece lost at this time is left out (its forcing goes to the
+        remainder)."""
+        out = []
+        for p in self.pieces:
+            q = self._piece_now(p)[0]
+            if q is not None:
+                out.append(q)
+        return out
+
+    def track_status(self):
+        """``{name: (status, note)}`` of the following pieces at the selected time (status:
+        start, tracked, split, merged, split+merged, lost, not tracked)."""
+        return {p.name: self._piece_now(p)[1:] for p in self.pieces if p.follow == "anomaly"}
+
+    # ------------------------------------------------------------------ undo and redo
+    #: the parts of the state that undo/redo restore
+    UNDO_KEYS = ("pieces", "sections", "active_section", "annotations", "target")
+    #: steps kept (oldest dropped first)
+    HISTORY_STEPS = 100
+
+    def _history_init(self):
+        self._undo, self._redo = [], []
+        self._restoring = False
+        self._hist_last = self._snapshot()
+        self.param.watch(self._history_record, list(self.UNDO_KEYS))
+        self.param.watch(lambda *ev: self.clear_history(), ["case"])
+
+    def _snapshot(self):
+        from .annotations import annotations_to_list
+
+        return {"pieces": [p.to_dict() for p in self.pieces],
+                "sections": [sec.to_dict() for sec in self.sections],
+                "active_section": self.active_section,
+                "annotations": annotations_to_list(self.annotations),
+                "target": None if self.target is None else [float(x) for x in self.target]}
+
+    def _history_record(self, *events):
+        if self._restoring:
+            return
+        now = self._snapshot()
+        if now == self._hist_last:
+            return
+        self._undo = (self._undo + [self._hist_last])[-self.HISTORY_STEPS:]
+        self._redo = []
+        self._hist_last = now
+        self._history_counts()
+
+    def _history_counts(self):
+        self.param.update(undo_steps=len(self._undo), redo_steps=len(self._redo))
+
+    def clear_history(self):
+        """Forget every undo/redo step (a new case)."""
+        self._undo, self._redo = [], []
+        self._hist_last = self._snapshot()
+        self._history_counts()
+
+    @property
+    def can_undo(self):
+        return bool(self._undo)
+
+    @property
+    def can_redo(self):
+        return bool(self._redo)
+
+    def _restore(self, snap):
+        from .annotations import annotations_from_list
+
+        api = _piece_api()
+        pieces = [api.Piece.from_dict(d) for d in snap["pieces"]]
+        sections = [Section.from_dict(d) for d in snap["sections"]]
+        anns = annotations_from_list(snap["annotations"])
+        target = None if snap["target"] is None else tuple(float(x) for x in snap["target"])
+        self._restoring = True
+        try:
+            with param.parameterized.batch_call_watchers(self):
+                self.pieces = pieces
+                self.sections = sections
+                self.active_section = snap["active_section"]
+                self.annotations = anns
+                self.target = target
+        finally:
+            self._restoring = False
+        self._hist_last = self._snapshot()
+        self._history_counts()
+
+    def undo(self):
+        """Undo the last change of pieces, sections, targets or annotations; returns False
+        when there is nothing to undo."""
+        if not self._undo:
+            return False
+        snap = self._undo.pop()
+        self._redo.append(self._hist_last)
+        self._restore(snap)
+        return True
+
+    def redo(self):
+        """Redo the last undone change; returns False when there is nothing to redo."""
+        if not self._redo:
+            return False
+        snap = self._redo.pop()
+        self._undo.append(self._hist_last)
+        self._restore(snap)
+        return True
+
+    def history_to_dict(self):
+        """The undo/redo steps as plain JSON types (saved with the session)."""
+        return {"undo": list(self._undo), "redo": list(self._redo)}
+
+    def history_from_dict(self, d):
+        """Take over undo/redo steps saved by :meth:`history_to_dict`; every step is checked
+        (pieces, sections, annotations rebuilt) so a bad step is refused now, not at undo."""
+        from .annotations import annotations_from_list
+
+        if d is None:
+            self.clear_history()
+            return
+        if not isinstance(d, dict) or not all(isinstance(d.get(k, []), list) for k in ("undo", "redo")):
+            raise InputError("history must be an object with lists 'undo' and 'redo'")
+        api = _piece_api()
+        steps = {}
+        for k in ("undo", "redo"):
+            steps[k] = []
+            for snap in d.get(k, [])[-self.HISTORY_STEPS:]:
+                if not isinstance(snap, dict) or set(snap) != set(self.UNDO_KEYS):
+                    raise InputError(f"history step must hold exactly {', '.join(self.UNDO_KEYS)}")
+                [api.Piece.from_dict(x) for x in snap["pieces"]]
+                [Section.from_dict(x) for x in snap["sections"]]
+                annotations_from_list(snap["annotations"])
+                steps[k].append(snap)
+        self._undo, self._redo = steps["undo"], steps["redo"]
+        self._hist_last = self._snapshot()
+        self._history_counts()
+
+    # ------------------------------------------------------------------ nonlinear refine
+    def refine_key(self):
+        """What a nonlinear refine depends on (time, member, reference, floor, pieces)."""
+        return (self.time_index, self.member, self.reference, bool(self.balance_floor),
+                tuple(_physics_key(p) for p in self.pieces))
+
+    def set_refined(self, key, results):
+        """Keep the nonlinear results of :meth:`refine_key` ``key`` (made by a background job)."""
+        self.__dict__["_refined"] = (key, results)
+
+    def refined_results(self):
+        """The nonlinear-balance results of the current pieces if a refine made them, else None."""
+        got = self.__dict__.get("_refined")
+        if got is not None and got[0] == self.refine_key():
+            return got[1]
+        return None
+
+    def balanced_results(self):
+        """(results, balance used): the refined nonlinear results when ``balance`` is
+        'nonlinear' and they are up to date, else the QG results (the instant preview)."""
+        if self.balance == "nonlinear" and self.pieces:
+            nl = self.refined_results()
+            if nl is not None:
+                return nl, "nonlinear"
+        return self.results(), "qg"
+
+    def briefing_options(self):
+        """make_briefing's keywords from :attr:`briefing` (checked: InputError)."""
+        from .brief import briefing_pages, briefing_texts
+
+        b = dict(self.briefing or {})
+        unknown = sorted(set(b) - {"headline", "summary", "author", "office", "pages"})
+        if unknown:
+            raise InputError(f"briefing field {unknown[0]!r} is unknown; use headline, summary, "
+                             "author, office, pages")
+        texts = briefing_texts(b.get("headline") or None, b.get("summary") or None,
+                               b.get("author") or None, b.get("office") or None)
+        pages = b.get("pages")
+        return dict(texts, pages=None if pages is None else briefing_pages(pages, "tendency" in pages))
+
     # ------------------------------------------------------------------ serialisation
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON types: settings, pieces, sections, annotations, target, figure settings."""
@@ -715,6 +1069,15 @@ class State(param.Parameterized):
             "annotations": annotations_to_list(self.annotations),
             "target": None if self.target is None else [float(x) for x in self.target],
             "figure_settings": _figure_settings_dict(self.figure_settings),
+            "overlay": {"contour_interval_m": self.overlay_contour_interval,
+                        "arrow_stride": self.overlay_arrow_stride,
+                        "arrow_speed_ms": self.overlay_arrow_speed,
+                        "left_out": list(self.overlay_left_out)},
+            "balance": self.balance,
+            "balance_floor": bool(self.balance_floor),
+            "briefing": dict(self.briefing or {}),
+            "whatif": self.whatif,
+            "history": self.history_to_dict(),
         }
         if case is not None:
             d["case"] = {"name": case.name, "path": str(case.source), "sha256": case.checksum}
@@ -769,12 +1132,32 @@ class State(param.Parameterized):
             st.annotations = annotations_from_list(d.get("annotations", []))
             st.target = target
             st.figure_settings = d.get("figure_settings")
+            ov = d.get("overlay") or {}
+            if not isinstance(ov, dict):
+                raise InputError("'overlay' of a workbench state must be a JSON object")
+            st.overlay_contour_interval = ov.get("contour_interval_m")
+            st.overlay_arrow_stride = ov.get("arrow_stride")
+            st.overlay_arrow_speed = ov.get("arrow_speed_ms")
+            st.overlay_left_out = ov.get("left_out") or []
+            if d.get("balance", "qg") not in ("qg", "nonlinear"):
+                raise InputError(f"balance {d.get('balance')!r} is unknown; use 'qg' or 'nonlinear'")
+            st.balance = d.get("balance", "qg")
+            st.balance_floor = bool(d.get("balance_floor", False))
+            for key in ("briefing", "whatif"):
+                if d.get(key) is not None and not isinstance(d.get(key), dict):
+                    raise InputError(f"{key!r} of a workbench state must be a JSON object")
+            st.briefing = dict(d.get("briefing") or {})
+            st.briefing_options()  # bad texts or page names refused on load
+            st.whatif = d.get("whatif")
+        st.history_from_dict(d.get("history"))
         return st
 
     #: What :meth:`assign` copies (the user's choices; not case, status or busy).
     CHOICES = ("time_index", "member", "surface", "field", "overlay_level", "reference",
                "threshold", "pieces", "sections", "active_section", "annotations", "target",
-               "figure_settings")
+               "figure_settings", "overlay_contour_interval", "overlay_arrow_stride",
+               "overlay_arrow_speed", "overlay_left_out", "balance", "balance_floor", "briefing",
+               "whatif")
 
     def assign(self, other):
         """Take over every choice of ``other`` (a State on the same case, e.g. a reloaded
@@ -793,4 +1176,5 @@ class State(param.Parameterized):
                 self._fit_to_case()
             for k, v in values.items():
                 setattr(self, k, v)
+        self.history_from_dict(other.history_to_dict())
         return self

@@ -1,18 +1,84 @@
-"""Case and time controls: valid time (with step buttons), surface, field, tropopause
-threshold, reference state, balanced-flow level, and what the mouse does on the map."""
+"""Case and time controls: valid time (with step buttons, a play/pause loop at a chosen rate
+and the ← → keys), surface, field, tropopause threshold, reference state, balanced-flow level,
+what the mouse does on the map, and undo/redo (buttons and Ctrl+Z / Ctrl+Shift+Z).
+
+The page's keys come from :class:`KeyBindings`, a small JavaScript component (shipped inline
+with the page, nothing fetched) that listens to ``keydown`` on the document and reports the
+keys it handles; keys typed into a text box, number box or list stay with that widget."""
 from __future__ import annotations
+
+import time
 
 import numpy as np
 import panel as pn
+import param
+from panel.custom import JSComponent
 
 from ..state import REFERENCE_KINDS
 from .base import StatePanel
 
-__all__ = ["CaseControls", "MODE_LABELS"]
+__all__ = ["CaseControls", "MODE_LABELS", "KeyBindings", "KEYS"]
 
 #: Mouse modes of the map: label -> PageChoices.mouse_mode
 MODE_LABELS = {"Pan / zoom": "pan", "Lasso a piece": "lasso", "Draw a section": "section",
-               "Pick target point": "target", "Place a label": "label"}
+               "Pick target point": "target", "Place a label": "label",
+               "Edit piece outlines": "edit", "Move labels": "move", "Draw an arrow": "arrow"}
+
+#: What the page's keys do (the key names KeyBindings reports -> meaning)
+KEYS = {"ArrowLeft": "previous time", "ArrowRight": "next time", "Ctrl+z": "undo",
+        "Ctrl+Shift+z": "redo", "Ctrl+y": "redo", "Escape": "cancel the lasso being drawn",
+        "Delete": "delete the selected piece or annotation"}
+
+
+class KeyBindings(JSComponent):
+    """Reports the page's keys (:data:`KEYS`) as ``press`` = ``"<count>:<key>"`` (the count
+    makes a repeated key a new value). Typing in an input, text area or list is left alone.
+    Escape while the mouse button is held also clears the map's lasso outline in the browser
+    (the lasso then ends with no outline and makes nothing)."""
+
+    press = param.String(default="")
+
+    _esm = """
+export function render({ model, el }) {
+  let count = 0;
+  let down = false;
+  const typing = (ev) => {
+    const t = (ev.composedPath && ev.composedPath()[0]) || ev.target;
+    const tag = ((t && t.tagName) || "").toLowerCase();
+    return tag === "input" || tag === "textarea" || tag === "select" || (t && t.isContentEditable);
+  };
+  const onDown = () => { down = true; };
+  const onUp = () => { down = false; };
+  const onKey = (ev) => {
+    if (typing(ev)) return;
+    const ctrl = ev.ctrlKey || ev.metaKey;
+    let key = null;
+    if (ctrl && (ev.key === "z" || ev.key === "Z")) key = ev.shiftKey ? "Ctrl+Shift+z" : "Ctrl+z";
+    else if (ctrl && (ev.key === "y" || ev.key === "Y")) key = "Ctrl+y";
+    else if (!ctrl && !ev.altKey && ["ArrowLeft", "ArrowRight", "Escape", "Delete"].includes(ev.key)) key = ev.key;
+    if (key === null) return;
+    ev.preventDefault();
+    if (key === "Escape" && down && window.Bokeh) {
+      for (const doc of window.Bokeh.documents) {
+        const tool = doc.get_model_by_name("pvwb-lasso");
+        if (tool && tool.overlay) tool.overlay.update({xs: [], ys: []});
+      }
+    }
+    count += 1;
+    model.press = count + ":" + key;
+  };
+  document.addEventListener("keydown", onKey, true);
+  document.addEventListener("pointerdown", onDown, true);
+  document.addEventListener("pointerup", onUp, true);
+  model.on("remove", () => {
+    document.removeEventListener("keydown", onKey, true);
+    document.removeEventListener("pointerdown", onDown, true);
+    document.removeEventListener("pointerup", onUp, true);
+  });
+  el.style.display = "none";
+  return el;
+}
+"""
 _REFERENCE_LABELS = {"time mean": "time_mean", "area mean": "area_mean",
                      "zonal mean": "zonal_mean"}
 
@@ -109,16 +175,126 @@ class CaseControls(StatePanel):
             visible=bool(case.data.attrs.get("native_crs")), css_classes=["pvwb-projection"])
         self.watch(lambda ev: setattr(st.page, "map_projection", ev.new), ["value"],
                    obj=self.map_projection)
+        time_row = self._build_time_loop()
         return [TextMarkdownOnce("**Map**"), pn.Row(self.time, self.prev_t, self.next_t),
+                time_row,
                 self.surface, self.field, self.map_projection,
                 self.threshold, self.reference,
                 pn.layout.Divider(margin=(4, 5)),
                 TextMarkdownOnce("**Mouse on the map**"), self.mode,
                 pn.Row(self.level)]
 
+    def detach(self, keep_case=False):
+        if getattr(self, "_loop", None) is not None:
+            self._loop.stop()
+            self._loop = None
+        super().detach(keep_case)
+
     def step_time(self, step):
         n = len(self.state.case.times)
         self.state.time_index = (self.state.time_index + step) % n
+
+    # ---------------------------------------------------------------- time loop, keys, undo
+    def _build_time_loop(self):
+        """Play/pause, frames per second, undo/redo buttons and the key listener."""
+        pg = self.state.page
+        self._loop = None
+        self.play = pn.widgets.Toggle(name="▶ Play", width=80, margin=(5, 2, 5, 5),
+                                      css_classes=["pvwb-play"])
+        self.fps = pn.widgets.FloatInput(name="", value=float(pg.play_fps), start=0.1, end=10.0,
+                                         step=0.5, width=60, css_classes=["pvwb-fps"],
+                                         margin=(5, 2, 5, 2))
+        self.undo_button = pn.widgets.Button(name="↶ Undo", width=70, css_classes=["pvwb-undo"],
+                                             margin=(5, 2, 5, 8))
+        self.redo_button = pn.widgets.Button(name="↷ Redo", width=70, css_classes=["pvwb-redo"],
+                                             margin=(5, 2, 5, 2))
+        self.undo_button.on_click(lambda e: self._guard(self.undo))
+        self.redo_button.on_click(lambda e: self._guard(self.redo))
+        self.keys = KeyBindings(css_classes=["pvwb-keys"], width=0, height=0, margin=0)
+        self.watch(lambda ev: self._play(ev.new), ["value"], obj=self.play)
+        self.watch(lambda ev: self._set_fps(ev.new), ["value"], obj=self.fps)
+        self.watch(lambda ev: self.key(ev.new.split(":", 1)[-1]), ["press"], obj=self.keys)
+        self.watch(lambda *ev: self._history_buttons(), ["undo_steps", "redo_steps"])
+        self._history_buttons()
+        return pn.Row(self.play, self.fps,
+                      pn.pane.Markdown("frames/s", margin=(12, 2, 5, 2),
+                                       styles={"font-size": "12px"}),
+                      self.undo_button, self.redo_button, self.keys)
+
+    def _set_fps(self, fps):
+        if fps is None:
+            return
+        self.state.page.play_fps = float(fps)
+        if self._loop is not None:
+            self._loop.period = int(1000.0 / self.state.page.play_fps)
+
+    def _play(self, on):
+        """Start (``on``) or stop the time loop (one step per 1/fps s, wrapping round)."""
+        if self._loop is not None:
+            self._loop.stop()
+            self._loop = None
+        if on:
+            self.play.name = "⏸ Pause"
+            self._loop = pn.state.add_periodic_callback(
+                lambda: self._guard(self.step_time, +1),
+                period=int(1000.0 / self.state.page.play_fps))
+        else:
+            self.play.name = "▶ Play"
+
+    def _history_buttons(self):
+        st = self.state
+        self.undo_button.disabled = not st.can_undo
+        self.redo_button.disabled = not st.can_redo
+
+    def undo(self):
+        t0 = time.perf_counter()
+        if not self.state.undo():
+            self.state.set_status("Nothing to undo.", "info")
+        else:
+            self.state.set_status(f"Undone ({time.perf_counter() - t0:.2f} s).", "info")
+        self._history_buttons()
+
+    def redo(self):
+        t0 = time.perf_counter()
+        if not self.state.redo():
+            self.state.set_status("Nothing to redo.", "info")
+        else:
+            self.state.set_status(f"Redone ({time.perf_counter() - t0:.2f} s).", "info")
+        self._history_buttons()
+
+    def key(self, name):
+        """Do what the page key ``name`` means (:data:`KEYS`)."""
+        if name == "ArrowLeft":
+            self.step_time(-1)
+        elif name == "ArrowRight":
+            self.step_time(+1)
+        elif name == "Ctrl+z":
+            self.undo()
+        elif name in ("Ctrl+Shift+z", "Ctrl+y"):
+            self.redo()
+        elif name == "Delete":
+            self.delete_selected()
+        elif name == "Escape":
+            self.state.set_status("Lasso cancelled." if self.state.page.mouse_mode == "lasso"
+                                  else "Escape: nothing to cancel.", "info")
+
+    def delete_selected(self):
+        """Delete the piece or annotation selected (``state.page.selected``)."""
+        from ..errors import InputError
+
+        st = self.state
+        sel = st.page.selected or ""
+        kind, _, ident = sel.partition(":")
+        if kind == "piece" and ident in st.piece_names:
+            st.remove_piece(ident)
+            st.set_status(f"Deleted piece {ident!r} (Ctrl+Z brings it back).", "info")
+        elif kind == "annotation" and any(a.id == ident for a in st.annotations):
+            a = st.remove_annotation(ident)
+            st.set_status(f"Deleted the {a.kind} (Ctrl+Z brings it back).", "info")
+        else:
+            raise InputError("nothing selected to delete: click a piece's row in the list, "
+                             "or a label or outline in the edit mode, then press Delete")
+        st.page.selected = None
 
 
 def TextMarkdownOnce(text):

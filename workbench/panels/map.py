@@ -45,12 +45,22 @@ class MapPanel(StatePanel):
         mv.on_label = lambda x, y: self._guard(place_label, st, x, y)
         mv.set_mode(st.page.mouse_mode)
         self.watch(lambda *ev: mv.set_mode(st.page.mouse_mode), ["mouse_mode"], obj=st.page)
+        self._attach_editing(mv)  # after the view's mode watcher: its tools win in its modes
         # the projection switch rebuilds the map (a new plane), like a new case
         self.watch(lambda *ev: self._rebuild(), ["map_projection"], obj=st.page)
         notes = ["grey arrows: wind on the map surface", "black line: the tropopause "
                  "threshold on PV maps", mv.coast_note]
         return [mv.pane, TextMarkdown(" · ".join(notes), margin=(0, 10),
                                       styles={"font-size": "11px", "color": "#666"})]
+
+    def _attach_editing(self, mv):
+        """Tracked outlines, vertex editing, label moving and arrow drawing
+        (:class:`~workbench.panels.map_edit.MapEditing`) on the map view."""
+        from .map_edit import MapEditing
+
+        if getattr(self, "editing", None) is not None:
+            self.editing.detach()
+        self.editing = MapEditing(mv, self.state)
 
     @property
     def map(self):
@@ -61,6 +71,8 @@ class MapPanel(StatePanel):
         super().detach(keep_case)
         if not keep_case and self.view is not None:
             self.view.detach()
+            if getattr(self, "editing", None) is not None:
+                self.editing.detach()
 
     # ---------------------------------------------------------------- gestures (methods)
     def lasso(self, polygon):
@@ -114,6 +126,8 @@ def lasso_piece(state, polygon):
     base = {"interior": "piece", "bottom": "surface θ′ (lasso)", "top": "lid θ′ (lasso)"}[kind]
     name = pg.piece_name.strip() or st.new_piece_name(base)
     kw = dict(name=name, kind=kind, polygon=polygon, sign=int(pg.sign))
+    if getattr(pg, "lasso_follow", False):  # follows its anomaly from the selected time
+        kw.update(follow="anomaly", follow_from=str(st.valid_time)[:19])
     if kind == "interior":
         layer = pg.layer
         if layer is None and pg.layer_coord == "pressure":

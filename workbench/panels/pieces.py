@@ -1,24 +1,31 @@
 """The lasso and pieces panel: what the next lasso makes (kind, layer, sign, minimum anomaly,
-moisture, name), the boundary pieces one click away, and the list of pieces (rename,
-show/hide, delete)."""
+moisture, name, whether it follows its anomaly), the boundary pieces one click away, and the
+list of pieces (rename, show/hide, fixed or following its anomaly, what tracking found at the
+selected time, select for Delete, delete)."""
 from __future__ import annotations
 
 import pandas as pd
 import panel as pn
 
-from ..errors import WorkbenchError
+from ..errors import PieceError, WorkbenchError
 from ..state import BOUNDARY_PIECES
 from .base import StatePanel
 
 __all__ = ["PiecesPanel", "LassoPanel", "piece_rows"]
 
 _SIGN_WORDS = {1: "positive", -1: "negative", 0: "both"}
+#: the follow choice as the list shows it
+FOLLOW_WORDS = {"fixed": "fixed", "anomaly": "follows its anomaly"}
+_CAN_FOLLOW = ("interior", "bottom", "top")
 _KIND_WORDS = {"interior": "interior PV", "bottom": "surface θ′", "top": "lid θ′",
                "lateral": "lateral boundary", "remainder": "remainder"}
 
 
-def piece_rows(pieces) -> pd.DataFrame:
-    """The pieces as the table shows them: name, kind, layer, sign (in words), shown."""
+def piece_rows(pieces, status=None) -> pd.DataFrame:
+    """The pieces as the table shows them: name, kind, layer, sign (in words), shown, follow
+    (fixed / follows its anomaly) and ``now`` (what tracking found at the selected time:
+    ``status`` = ``State.track_status()``)."""
+    status = status or {}
     rows = []
     for p in pieces:
         if p.kind == "interior":
@@ -30,9 +37,12 @@ def piece_rows(pieces) -> pd.DataFrame:
             layer = {"bottom": "lower boundary", "top": "upper boundary",
                      "lateral": "lateral boundary", "remainder": "the rest"}[p.kind]
         sign = _SIGN_WORDS[p.sign] if p.kind in ("interior", "bottom", "top") else ""
+        follow = FOLLOW_WORDS[p.follow] if p.kind in _CAN_FOLLOW and p.polygon is not None else ""
+        st, note = status.get(p.name, ("", ""))
+        now = {"start": "drawn here", "tracked": "tracked", "fixed": ""}.get(st, st)
         rows.append(dict(name=p.name, kind=_KIND_WORDS.get(p.kind, p.kind), layer=layer,
-                         sign=sign, show=p.visible))
-    return pd.DataFrame(rows, columns=["name", "kind", "layer", "sign", "show"])
+                         sign=sign, show=p.visible, follow=follow, now=now))
+    return pd.DataFrame(rows, columns=["name", "kind", "layer", "sign", "show", "follow", "now"])
 
 
 class LassoPanel(StatePanel):
@@ -66,6 +76,11 @@ class LassoPanel(StatePanel):
                                         end=100, step=5, width=70)
         self.p_name = pn.widgets.TextInput(label="Name of the next piece", placeholder="auto",
                                            width=250, value=pg.piece_name)
+        self.p_follow = pn.widgets.Checkbox(label="follows its anomaly at other times",
+                                            value=pg.lasso_follow, width=250,
+                                            css_classes=["pvwb-lasso-follow"])
+        self.watch(lambda ev: setattr(pg, "lasso_follow", bool(ev.new)), ["value"],
+                   obj=self.p_follow)
         self.boundary_buttons = []
         for kind, label in BOUNDARY_PIECES.items():
             b = pn.widgets.Button(label=f"+ {label}", width=120, css_classes=[f"pvwb-add-{kind}"])
@@ -98,6 +113,7 @@ class LassoPanel(StatePanel):
                                  margin=(0, 5)),
                 self.p_kind, self.p_coord, self.p_layer, self.p_sign,
                 pn.Row(self.p_threshold), pn.Row(self.p_moist, self.p_rh), self.p_name,
+                self.p_follow,
                 pn.pane.Markdown("**Boundary pieces**", margin=(0, 5)),
                 pn.GridBox(*self.boundary_buttons, ncols=2)]
 
@@ -115,20 +131,25 @@ class PiecesPanel(StatePanel):
         self.pieces_table = pn.widgets.Tabulator(
             piece_rows([]), show_index=False,
             editors={"name": "input", "show": {"type": "tickCross"}, "kind": None,
-                     "layer": None, "sign": None},
+                     "layer": None, "sign": None, "now": None,
+                     "follow": {"type": "list", "values": list(FOLLOW_WORDS.values())}},
             formatters={"show": {"type": "tickCross"}}, buttons={"delete": "✖"},
             sizing_mode="stretch_width", max_width=600, height=160,
             layout="fit_data_stretch", css_classes=["pvwb-pieces"], sortable=False,
             selectable=False)
         self.pieces_table.on_edit(lambda ev: self._guard(self._edited, ev))
         self.pieces_table.on_click(lambda ev: self._guard(self._clicked, ev))
-        self.watch(lambda *ev: self.later(self.refresh), ["pieces"])
+        self.watch(lambda *ev: self.later(self.refresh), ["pieces", "time_index", "member",
+                                                          "reference"])
         self.refresh()
         return [pn.pane.Markdown("**Pieces** (edit a name to rename; tick to show/hide; "
-                                 "✖ deletes)", margin=(0, 5)), self.pieces_table]
+                                 "*follow*: fixed outline or following its anomaly; click a "
+                                 "row to select it for Delete; ✖ deletes)", margin=(0, 5)),
+                self.pieces_table]
 
     def refresh(self):
-        self.pieces_table.value = piece_rows(self.state.pieces)
+        st = self.state
+        self.pieces_table.value = piece_rows(st.pieces, st.track_status())
 
     def _edited(self, ev):
         st = self.state
@@ -145,9 +166,23 @@ class PiecesPanel(StatePanel):
             st.set_status(f"Renamed {name!r} to {ev.value!r}.", "success")
         elif ev.column == "show":
             st.toggle_piece(name, bool(ev.value))
+        elif ev.column == "follow":
+            follow = {v: k for k, v in FOLLOW_WORDS.items()}.get(ev.value)
+            try:
+                if follow is None:
+                    raise PieceError(f"follow {ev.value!r}: choose "
+                                     f"{' or '.join(FOLLOW_WORDS.values())}")
+                st.set_follow(name, follow)
+            except WorkbenchError:
+                self.refresh()
+                raise
+            st.set_status(f"Piece {name!r}: {FOLLOW_WORDS[follow]}.", "success")
 
     def _clicked(self, ev):
         if ev.column != "delete":
+            names = self.state.piece_names
+            if 0 <= ev.row < len(names):
+                self.state.page.selected = f"piece:{names[ev.row]}"
             return
         names = self.state.piece_names
         if 0 <= ev.row < len(names):

@@ -1,0 +1,291 @@
+"""Editing on the map: tracked piece outlines at the selected time, piece outlines edited by
+dragging their vertices, labels moved by dragging, arrows drawn with the mouse.
+
+:class:`MapEditing` attaches to a :class:`~workbench.views.interactive.MapView` (built by the
+map panel) and adds its own tools and data sources to the same figure; it changes the State
+only through its methods (``_replace``, ``add_annotation``...), so every gesture is one undo
+step. Mouse modes (``state.page.mouse_mode``): ``"edit"`` (Bokeh ``PolyEditTool`` on the
+pieces' outlines: double-click an outline to show its vertices, drag one, click away to end),
+``"move"`` (``PointDrawTool`` on a handle under each label), ``"arrow"`` (``FreehandDrawTool``:
+drag from the tail to the head).
+
+Pieces that follow their anomaly (``Piece.follow == "anomaly"``) are drawn with their outline
+at the selected time (``State.pieces_now``) and a note when tracking found a split, a merge or
+lost the piece there.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = ["MapEditing", "TRACK_WORDS"]
+
+#: how the map labels a following piece at a time (tracking status -> suffix)
+TRACK_WORDS = {"tracked": "(tracked)", "split": "(tracked; split)", "merged": "(tracked; merged)",
+               "split+merged": "(tracked; split and merged)", "lost": "(lost here)",
+               "not tracked": "(not tracked here)"}
+_TOL = 1e-6  # degrees: outlines that differ less are the same
+
+
+class MapEditing:
+    """The map's editing tools and tracked outlines on ``view`` (a MapView) for ``state``."""
+
+    def __init__(self, view, state):
+        from bokeh.models import (ColumnDataSource, FreehandDrawTool, PointDrawTool,
+                                  PolyEditTool)
+
+        self.view, self.state = view, state
+        self._watchers = []
+        self._drawing = False
+        fig = view.figure
+        view.tools["lasso"].name = "pvwb-lasso"  # the page's Escape key finds it by name
+        S = ColumnDataSource
+        self.src = dict(
+            vertices=S(dict(x=[], y=[]), name="pvwb-piece-vertices"),
+            handles=S(dict(x=[], y=[], id=[]), name="pvwb-ann-handles"),
+            arrow_stroke=S(dict(xs=[], ys=[]), name="pvwb-arrow-stroke"),
+            lost=S(dict(x=[], y=[], text=[]), name="pvwb-track-notes"),
+        )
+        patches = next(r for r in fig.renderers if r.name == "pvwb-piece-patches")
+        vert = fig.scatter("x", "y", source=self.src["vertices"], size=9, fill_color="white",
+                           line_color="black", name="pvwb-piece-vertex-glyphs")
+        handles = fig.scatter("x", "y", source=self.src["handles"], marker="square", size=10,
+                              fill_color="white", fill_alpha=0.5, line_color="#444444",
+                              name="pvwb-ann-handle-glyphs")
+        stroke = fig.multi_line("xs", "ys", source=self.src["arrow_stroke"], line_color="black",
+                                line_width=2, line_dash="dotted")
+        fig.text("x", "y", text="text", source=self.src["lost"], text_color="#b00000",
+                 text_font_size="11px", text_align="left", background_fill_color="white",
+                 background_fill_alpha=0.7, name="pvwb-track-note-text")
+        self.tools = dict(
+            edit=PolyEditTool(renderers=[patches], vertex_renderer=vert,
+                              description="Edit piece outlines (double-click one, drag a vertex)"),
+            move=PointDrawTool(renderers=[handles], add=False, drag=True,
+                               description="Move labels (drag the square under a label)"),
+            arrow=FreehandDrawTool(renderers=[stroke], num_objects=1,
+                                   description="Draw an arrow (drag from tail to head)"),
+        )
+        fig.add_tools(*self.tools.values())
+        self.piece_src = view.src["pieces"]
+        self.piece_src.on_change("data", self._outline_changed)
+        self.piece_src.selected.on_change("indices", self._piece_selected)
+        self.src["handles"].on_change("data", self._handles_changed)
+        self.src["handles"].selected.on_change("indices", self._handle_selected)
+        self.src["arrow_stroke"].on_change("data", self._arrow_drawn)
+        for names, fn in ((["pieces", "time_index", "member", "reference"], self.refresh_pieces),
+                          (["annotations"], self.refresh_handles)):
+            self._watchers.append((state, state.param.watch(
+                lambda *ev, fn=fn: view._safe(fn), names)))
+        self._watchers.append((state.page, state.page.param.watch(
+            lambda *ev: self.set_mode(state.page.mouse_mode), ["mouse_mode"])))
+        self.refresh_pieces()
+        self.refresh_handles()
+        self.set_mode(state.page.mouse_mode)
+
+    def detach(self):
+        for obj, w in self._watchers:
+            obj.param.unwatch(w)
+        self._watchers = []
+
+    # ---------------------------------------------------------------- modes
+    def set_mode(self, mode):
+        """Activate the editing tool of ``mode`` (the view's own modes are left to it)."""
+        from ..views.interactive import _push
+
+        tb = self.view.figure.toolbar
+        if mode in self.tools:
+            tb.active_drag = self.tools[mode]
+            tb.active_tap = None
+            _push(self.view.pane)
+
+    # ---------------------------------------------------------------- drawing
+    def refresh_pieces(self):
+        """The pieces' outlines at the selected time (tracked ones where they follow their
+        anomaly), their labels, and a note where tracking split, merged or lost a piece."""
+        from ..views.interactive import _centroid
+
+        st = self.state
+        status = st.track_status()
+        now = {p.name: p for p in st.pieces_now()}
+        xs, ys, col, names, alpha = [], [], [], [], []
+        lx, ly, lt, lc = [], [], [], []
+        nx, ny, nt = [], [], []
+        for p in st.pieces:
+            q = now.get(p.name)
+            state_word = status.get(p.name, ("", ""))[0]
+            if q is None:  # lost at this time: the outline it was drawn with, as a reminder
+                if p.polygon is not None:
+                    cx, cy = _centroid(p.polygon)
+                    nx.append(cx)
+                    ny.append(cy)
+                    nt.append(f"{p.name}: lost at this time")
+                continue
+            if q.polygon is None:
+                continue
+            a = np.asarray(q.polygon, float)
+            xs.append(a[:, 0].tolist())
+            ys.append(a[:, 1].tolist())
+            c = p.colour or "#444444"
+            col.append(c)
+            names.append(p.name)
+            alpha.append(0.08 if p.visible else 0.0)
+            cx, cy = _centroid(q.polygon)
+            lx.append(cx)
+            ly.append(cy)
+            word = TRACK_WORDS.get(state_word, "")
+            lt.append(" ".join(x for x in (p.name, "" if p.visible else "(hidden)", word) if x))
+            lc.append(c)
+        self._drawing = True
+        try:
+            self.view._set("pieces", dict(xs=xs, ys=ys, colour=col, name=names, alpha=alpha))
+            self.view._set("piece_labels", dict(x=lx, y=ly, text=lt, colour=lc))
+            self._set_own("lost", dict(x=nx, y=ny, text=nt))
+        finally:
+            self._drawing = False
+
+    def _set_own(self, key, data):
+        v = self.view
+        if v.native:
+            data = dict(data)
+            px, py = v.fwd(data["x"], data["y"])
+            data["x"], data["y"] = np.asarray(px).tolist(), np.asarray(py).tolist()
+        self.src[key].data = data
+
+    def refresh_handles(self):
+        """A square handle under each map label (what the move mode drags)."""
+        from ..annotations import Label
+
+        x, y, ids = [], [], []
+        for a in self.state.annotations:
+            if isinstance(a, Label) and a.space == "map":
+                x.append(a.lon)
+                y.append(a.lat)
+                ids.append(a.id)
+        self._drawing = True
+        try:
+            self._set_own("handles", dict(x=x, y=y, id=ids))
+        finally:
+            self._drawing = False
+
+    # ---------------------------------------------------------------- gestures
+    def _outline_changed(self, attr, old, new):
+        if self._drawing:
+            return
+        self.view._safe(lambda: self.outline_edited(new))
+
+    def outline_edited(self, data):
+        """The pieces' source as the browser left it after a vertex drag: each outline that
+        moved becomes its piece's new polygon (a following piece's outline then counts as drawn
+        at the selected time). One State change, one undo step."""
+        st = self.state
+        # what Python itself draws there: the view's outlines (as drawn) or the ones at this
+        # time; data equal to either is a redraw, not an edit
+        drawn = {}
+        for p in list(st.pieces) + [q for q in st.pieces_now()]:
+            if p.polygon is not None:
+                a = np.asarray(p.polygon, float)
+                drawn.setdefault(p.name, []).append(tuple(np.asarray(v, float) for v in
+                                                          self.view.fwd(a[:, 0], a[:, 1])))
+        changed = {}
+        for name, xs, ys in zip(data.get("name", []), data.get("xs", []), data.get("ys", [])):
+            x, y = np.asarray(xs, float), np.asarray(ys, float)
+            if any(ox.shape == x.shape and np.allclose(ox, x, atol=_TOL, rtol=0)
+                   and np.allclose(oy, y, atol=_TOL, rtol=0) for ox, oy in drawn.get(name, [])):
+                continue
+            if name not in drawn:
+                continue
+            if len(x) < 3:
+                raise_error = f"the outline of {name!r} needs at least 3 vertices; undo (Ctrl+Z) or redraw it"
+                from ..errors import PieceError
+
+                self.refresh_pieces()
+                raise PieceError(raise_error)
+            lon, lat = self.view.inv(x, y)
+            changed[name] = [(float(a), float(b)) for a, b in zip(lon, lat)]
+        if not changed:
+            return
+        from ..inversion.pieces import Piece
+
+        new = []
+        for p in st.pieces:
+            if p.name in changed:
+                d = p.to_dict()
+                d["polygon"] = changed[p.name]
+                if p.follow == "anomaly":
+                    d["follow_from"] = str(st.valid_time)[:19]
+                p = Piece.from_dict(d)
+            new.append(p)
+        st.pieces = new
+        st.set_status(f"Outline of {', '.join(repr(n) for n in changed)} edited; inverted again "
+                      "(Ctrl+Z undoes).", "success")
+
+    def _piece_selected(self, attr, old, new):
+        names = self.piece_src.data.get("name", [])
+        if new and 0 <= new[0] < len(names):
+            self.state.page.selected = f"piece:{names[new[0]]}"
+
+    def _handle_selected(self, attr, old, new):
+        ids = self.src["handles"].data.get("id", [])
+        if new and 0 <= new[0] < len(ids):
+            self.state.page.selected = f"annotation:{ids[new[0]]}"
+
+    def _handles_changed(self, attr, old, new):
+        if self._drawing:
+            return
+        self.view._safe(lambda: self.handles_moved(new))
+
+    def handles_moved(self, data):
+        """Labels whose handle was dragged move there (one undo step)."""
+        from ..annotations import annotation_from_dict, annotations_from_list
+
+        lon, lat = self.view.inv(data.get("x", []), data.get("y", []))
+        where = {i: (float(a), float(b)) for i, a, b in zip(data.get("id", []), lon, lat)}
+        d = self.state.case.domain
+        out, moved = [], 0
+        for a in self.state.annotations:
+            if a.id in where and a.space == "map" and hasattr(a, "lon"):
+                x, y = where[a.id]
+                x = min(max(x, d["lon_min"]), d["lon_max"])
+                y = min(max(y, d["lat_min"]), d["lat_max"])
+                if abs(x - a.lon) > _TOL or abs(y - a.lat) > _TOL:
+                    dd = a.to_dict()
+                    dd.update(lon=x, lat=y)
+                    a = annotation_from_dict(dd)
+                    moved += 1
+            out.append(a)
+        if moved:
+            self.state.annotations = annotations_from_list(out)
+            self.state.set_status(f"Moved {moved} label(s) (Ctrl+Z undoes).", "success")
+
+    def _arrow_drawn(self, attr, old, new):
+        if self._drawing:
+            return
+        xs, ys = new.get("xs", []), new.get("ys", [])
+        if not xs or not len(xs[-1]):
+            return
+        x, y = list(xs[-1]), list(ys[-1])
+        self._drawing = True
+        try:
+            self.src["arrow_stroke"].data = dict(xs=[], ys=[])
+        finally:
+            self._drawing = False
+        if len(x) < 2:
+            return
+        lon, lat = self.view.inv([x[0], x[-1]], [y[0], y[-1]])
+        self.view._safe(lambda: self.add_arrow((float(lon[0]), float(lat[0])),
+                                               (float(lon[1]), float(lat[1]))))
+
+    def add_arrow(self, start, end):
+        """An arrow annotation from ``start`` to ``end`` (lon, lat) in the next annotation's
+        colour, with its text at the tail when one is typed."""
+        from ..annotations import Arrow
+        from ..errors import InputError
+
+        if np.hypot(end[0] - start[0], end[1] - start[1]) < 0.5:
+            raise InputError("the arrow is shorter than half a degree; drag a longer one")
+        pg = self.state.page
+        a = self.state.add_annotation(Arrow(start_lon=start[0], start_lat=start[1],
+                                            end_lon=end[0], end_lat=end[1],
+                                            colour=pg.label_colour,
+                                            text=pg.label_text.strip() or None))
+        self.state.set_status("Arrow added (Ctrl+Z undoes).", "success")
+        return a
