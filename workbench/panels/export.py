@@ -63,7 +63,14 @@ class FileTarget:
 
 
 class ExportPanel(StatePanel):
-    """Figures, briefing and netCDF export (watches ``figure_settings`` only)."""
+    """Figures, briefing and netCDF export (watches ``figure_settings`` and ``briefing``).
+
+    Every export is a background job (progress read-out and Cancel in the status area) on a
+    snapshot of the State taken when the button is pressed, so the page stays usable and later
+    changes do not leak into the file. The briefing fields (headline, summary, forecaster,
+    office, pages in order) live in ``State.briefing`` and are saved in the session."""
+
+    background_work = True
 
     def build(self):
         from ..session import PROJECTIONS
@@ -111,6 +118,7 @@ class ExportPanel(StatePanel):
             self.to_widget(self.projection, st.figure_settings["projection"])
 
         self.watch(fs_to_widgets, ["figure_settings"])
+        briefing_box = self._briefing_fields()
         where = st.page.output_dir or "(none: start with --output-dir)"
         return [TextHTML(f"Files are written to <b>{escape(where)}</b>.", margin=(0, 8),
                          styles={"font-size": "13px"}, css_classes=["pvwb-output-folder"]),
@@ -118,7 +126,76 @@ class ExportPanel(StatePanel):
                 TextMarkdown("**Figures and exports**", margin=(4, 8, 0, 8)),
                 self.export_name,
                 pn.FlexBox(self.projection, self.export_dpi, self.export_format),
-                pn.FlexBox(*buttons), self.files.download]
+                pn.FlexBox(*buttons), briefing_box, self.files.download]
+
+    # ---------------------------------------------------------------- briefing fields
+    def _briefing_fields(self):
+        from ..brief import PAGES, briefing_pages
+
+        st = self.state
+        b = dict(st.briefing or {})
+        w = dict(width=200, margin=(2, 5))
+        self.b_headline = pn.widgets.TextInput(label="Headline", value=b.get("headline") or "",
+                                               placeholder="one line on the title page",
+                                               sizing_mode="stretch_width", max_width=410,
+                                               css_classes=["pvwb-brief-headline"])
+        self.b_summary = pn.widgets.TextAreaInput(label="Summary", value=b.get("summary") or "",
+                                                  placeholder="free text in a box on the title page",
+                                                  height=80, sizing_mode="stretch_width",
+                                                  max_width=410, css_classes=["pvwb-brief-summary"])
+        self.b_author = pn.widgets.TextInput(label="Forecaster", value=b.get("author") or "",
+                                             css_classes=["pvwb-brief-author"], **w)
+        self.b_office = pn.widgets.TextInput(label="Office", value=b.get("office") or "",
+                                             css_classes=["pvwb-brief-office"], **w)
+        pages = b.get("pages")
+        self.b_pages = pn.widgets.MultiChoice(
+            label="Pages after the title page (in the order chosen)", options=list(PAGES),
+            value=list(briefing_pages(pages, False) if pages is None else pages),
+            sizing_mode="stretch_width", max_width=410, css_classes=["pvwb-brief-pages"])
+        for wid in (self.b_headline, self.b_summary, self.b_author, self.b_office, self.b_pages):
+            self.watch(lambda *ev: self.briefing_to_state(), ["value"], obj=wid)
+        self.watch(lambda *ev: self.briefing_to_widgets(), ["briefing"])
+        return pn.Column(pn.pane.Markdown("**Briefing**", margin=(4, 8, 0, 8)), self.b_headline,
+                         self.b_summary, pn.FlexBox(self.b_author, self.b_office), self.b_pages,
+                         sizing_mode="stretch_width", css_classes=["pvwb-brief-fields"])
+
+    def briefing_to_state(self):
+        """The briefing fields into ``State.briefing`` (checked first: a bad text stays out
+        of the State and its message goes to the status line)."""
+        from ..brief import briefing_pages, briefing_texts
+
+        texts = briefing_texts(self.b_headline.value or None, self.b_summary.value or None,
+                               self.b_author.value or None, self.b_office.value or None)
+        pages = list(self.b_pages.value or [])
+        if not pages:
+            raise InputError("choose at least one page for the briefing (e.g. map, attribution)")
+        briefing_pages(pages, "tendency" in pages)
+        new = {k: v for k, v in texts.items() if v}
+        new["pages"] = pages
+        if new != (self.state.briefing or {}):
+            self.state.briefing = new
+
+    def briefing_to_widgets(self):
+        from ..brief import briefing_pages
+
+        b = dict(self.state.briefing or {})
+        for wid, key in ((self.b_headline, "headline"), (self.b_summary, "summary"),
+                         (self.b_author, "author"), (self.b_office, "office")):
+            self.to_widget(wid, b.get(key) or "")
+        pages = b.get("pages")
+        self.to_widget(self.b_pages, list(briefing_pages(pages, False) if pages is None
+                                          else pages))
+
+    def _snapshot(self):
+        """A copy of the State for a background job (later changes do not reach it)."""
+        from ..state import State
+
+        st = self.state
+        snap = State.from_dict(st.to_dict(), st.case)
+        refined = st.__dict__.get("_refined")
+        if refined is not None:
+            snap.__dict__["_refined"] = refined
+        return snap
 
     # ---------------------------------------------------------------- paths
     def _write_folders(self):
@@ -158,9 +235,13 @@ class ExportPanel(StatePanel):
         self.files.refuse_existing(path, ExportError, "figure")
         dpi, overwrite = int(self.export_dpi.value), bool(self.files.overwrite.value)
 
-        def job():
-            fig = static.map_figure(st) if which == "map" else \
-                static.section_figure(st, st.active_section)
+        snap = self._snapshot()
+
+        def job(progress):
+            progress(0.1, f"drawing the {which}")
+            fig = static.map_figure(snap) if which == "map" else \
+                static.section_figure(snap, snap.active_section)
+            progress(0.8, "writing the file")
             static.save_figure(fig, path, dpi=dpi, overwrite=overwrite)
 
         self.work(f"Drawing the {which} figure", job,
@@ -175,8 +256,17 @@ class ExportPanel(StatePanel):
         path = self._export_path("briefing", ".pdf")
         self.files.refuse_existing(path, ExportError, "briefing")
         overwrite = bool(self.files.overwrite.value)
-        self.work("Making the briefing PDF", lambda: make_briefing(st.case, st, path,
-                                                                   overwrite=overwrite),
+        options = st.briefing_options()
+        pages = options["pages"]
+        snap = self._snapshot()
+        balance, floor = st.balance, bool(st.balance_floor)
+
+        def job(progress):
+            make_briefing(snap.case, snap, path, overwrite=overwrite, progress=progress,
+                          balance=balance, floor=floor,
+                          tendency=pages is not None and "tendency" in pages, **options)
+
+        self.work("Making the briefing PDF", job,
                   lambda: self.files.written(path, "Briefing saved to"))
         return path
 
@@ -192,7 +282,8 @@ class ExportPanel(StatePanel):
         path = self._export_path("balanced", ".nc")
         self.files.refuse_existing(path, ExportError, "netCDF export")
         overwrite = bool(self.files.overwrite.value)
+        snap, settings = self._snapshot(), st.to_dict()
         self.work("Writing the balanced fields", lambda: export_balanced(
-            st.results(), None, path, overwrite=overwrite, case=st.case,
-            settings=st.to_dict()), lambda: self.files.written(path, "Balanced fields saved to"))
+            snap.results(), None, path, overwrite=overwrite, case=snap.case,
+            settings=settings), lambda: self.files.written(path, "Balanced fields saved to"))
         return path

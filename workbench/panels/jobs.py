@@ -282,7 +282,7 @@ class JobReadout:
                                           css_classes=["pvwb-job-bar"])
         self.text = TextHTML("", margin=(4, 6), css_classes=["pvwb-job-text"],
                              sizing_mode="stretch_width")
-        self.cancel_button = pn.widgets.Button(label="Cancel", width=80, button_type="warning",
+        self.cancel_button = pn.widgets.Button(label="Cancel", width=80, color="warning",
                                                css_classes=["pvwb-job-cancel"], margin=(4, 6))
         self.cancel_button.on_click(lambda e: runner.cancel())
         self.layout = pn.Row(self.bar, self.text, self.cancel_button, visible=False,
