@@ -590,7 +590,9 @@ def briefing_figures(case, state, progress=None, tendency=False, balance="qg", f
             elif name == "tendency":  # the QG tendency attribution matrix (pvwb brief --tendency)
                 pages.append(_tendency_page(case, state))
                 tick()
-    return [_title_page(case, state, utc_now_iso(), _notes(caught), texts)] + pages
+    title = _title_page(case, state, utc_now_iso(), _notes(caught), texts)
+    tick()
+    return [title] + pages
 
 
 def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: bool = False,
