@@ -122,9 +122,14 @@ class Workbench:
         self.annotate = P.AnnotationPanel(st)
         self.sessions = P.SessionPanel(st)
         self.export = P.ExportPanel(st)
+        # overlay settings (sidebar) and the compare view (a tab beside the section; it
+        # follows the State only while shown)
+        self.overlay_settings = P.OverlayPanel(st)
+        self.compare = P.ComparePanel(st, live=False)
         self._panels = [self.status_panel, self.files, self.controls, self.lasso,
                         self.map_panel, self.section_panel, self.pieces, self.attribution,
-                        self.annotate, self.sessions, self.export]
+                        self.annotate, self.sessions, self.export, self.overlay_settings,
+                        self.compare]
         self.attr_box = self.attribution.layout
         self.annotate_box = self.annotate.layout
         self.export_box = pn.Column(self.sessions.layout, self.export.layout,
@@ -134,7 +139,8 @@ class Workbench:
                             sizing_mode="stretch_width", max_width=600)
         self.sidebar = pn.Column(self.controls.layout, pn.layout.Divider(margin=(4, 5)),
                                  self.lasso.layout, pn.layout.Divider(margin=(4, 5)),
-                                 self.files.layout, width=280, css_classes=["pvwb-side"])
+                                 self.overlay_settings.layout,
+                                 pn.layout.Divider(margin=(4, 5)), self.files.layout, width=280, css_classes=["pvwb-side"])
         self.hint = TextMarkdown("### No case open\nPick a file in the data folders on the "
                                  "left and press **Open**.", visible=case is None)
         self.side_tables = pn.Column(self.pieces.layout, self.tabs, min_width=300,
@@ -143,11 +149,15 @@ class Workbench:
         self.main = pn.FlexBox(self.hint, self.map_panel.layout, self.side_tables,
                                flex_wrap="wrap", sizing_mode="stretch_width",
                                css_classes=["pvwb-main"])
+        self.lower_tabs = pn.Tabs(("Section", self.section_panel.layout),
+                                  ("Compare", self.compare.layout), dynamic=True,
+                                  sizing_mode="stretch_width", css_classes=["pvwb-lower-tabs"])
+        self.lower_tabs.param.watch(lambda ev: self.compare.follow(ev.new == 1), "active")
         self.layout = pn.Column(
             self.status_panel.layout,
             # the sidebar (280 px) and the rest (at least 520 px) side by side from 800 px
             # on, one column below
-            pn.FlexBox(self.sidebar, pn.Column(self.main, self.section_panel.layout,
+            pn.FlexBox(self.sidebar, pn.Column(self.main, self.lower_tabs,
                                                sizing_mode="stretch_width", min_width=520,
                                                styles={"flex": "1 1 520px"}),
                        flex_wrap="wrap", sizing_mode="stretch_width"),

@@ -17,9 +17,11 @@ live on ``state.page`` (:class:`~workbench.state.PageChoices`).
 from .annotations import AnnotationPanel
 from .attribution import AttributionPanel
 from .base import StatePanel, offline_extension
+from .compare import ComparePanel
 from .controls import CaseControls
 from .export import ExportPanel
 from .map import MapPanel
+from .overlay import OverlayPanel
 from .pieces import LassoPanel, PiecesPanel
 from .section import SectionPanel
 from .sessions import SessionPanel
@@ -27,4 +29,4 @@ from .status import FilePanel, StatusPanel
 
 __all__ = ["StatePanel", "CaseControls", "MapPanel", "SectionPanel", "LassoPanel",
            "PiecesPanel", "AttributionPanel", "AnnotationPanel", "ExportPanel", "SessionPanel",
-           "StatusPanel", "FilePanel", "offline_extension"]
+           "StatusPanel", "FilePanel", "offline_extension", "OverlayPanel", "ComparePanel"]

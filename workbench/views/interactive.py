@@ -30,7 +30,8 @@ import numpy as np
 import panel as pn
 from bokeh.events import SelectionGeometry, Tap
 from bokeh.core.property.vectorization import value
-from bokeh.models import (BoxZoomTool, ColorBar, ColumnDataSource, CustomJSTickFormatter,
+from bokeh.models import (BoxZoomTool, ColorBar, ColumnDataSource, CustomJSHover,
+                          CustomJSTickFormatter,
                           FreehandDrawTool, HoverTool,
                           Label, LassoSelectTool, Legend, LegendItem, LinearColorMapper, PanTool,
                           Range1d, ResetTool, SaveTool, TapTool, WheelZoomTool)
@@ -57,6 +58,20 @@ WIND_COLOUR = "#8c8c8c"
 SECTION_COLOUR = "#1f1f1f"
 POS_CONTOUR = "#d55e00"
 NEG_CONTOUR = "#5e3c99"
+#: hover formatters: longitude as °E/°W, latitude as °N/°S (one decimal)
+_JS_LON = ("const x = ((value + 180) % 360 + 360) % 360 - 180;"
+           "const a = Math.abs(x).toFixed(1);"
+           "return (a == '0.0' || a == '180.0') ? a + '°' : a + (x > 0 ? '°E' : '°W');")
+_JS_LAT = ("const a = Math.abs(value).toFixed(1);"
+           "return a == '0.0' ? a + '°' : a + (value > 0 ? '°N' : '°S');")
+#: at most this many balanced height-anomaly contours of each sign
+MAX_CONTOURS = 200
+#: units as the read-outs write them
+_READ_UNITS = {"m s-1": "m/s"}
+#: tooltip number formats by field
+_READ_FORMAT = {"ertel_pv": "0.00", "ertel_pv_anomaly": "0.00", "potential_temperature": "0.0",
+                "pressure": "0", "geopotential_height": "0", "wind_speed": "0.0", "u": "0.0",
+                "v": "0.0"}
 
 
 @lru_cache(maxsize=None)
@@ -98,6 +113,16 @@ def field_style(field: str, values: np.ndarray):
         if hi <= lo:
             hi = lo + 1.0
     return palette(key), lo, hi, f"{label} ({units})", scale
+
+
+def difference_style(field: str, values: np.ndarray):
+    """(palette, low, high, colour-bar title, scale) of a difference map of ``field``:
+    a diverging colour map symmetric about zero."""
+    label, units = FIELD_LABELS.get(field, (field, ""))[:2]
+    scale = 0.01 if field == "pressure" else 1.0
+    v = np.abs(np.asarray(values, float)[np.isfinite(values)]) * scale
+    m = _nice(float(np.percentile(v, 99))) if v.size and np.percentile(v, 99) > 0 else 1.0
+    return palette("anomaly"), -m, m, f"{label} difference ({units})", scale
 
 
 # --------------------------------------------------------------------------- coastlines
@@ -271,8 +296,17 @@ class MapView:
     updates data sources in place. ``pane`` is the Panel pane to put in a layout.
     """
 
-    def __init__(self, state, width=820, max_height=640, projection=None):
+    def __init__(self, state, width=820, max_height=640, projection=None, prefix="pvwb",
+                 ranges=None, field_source=None):
         self.state = state
+        # Bokeh names start with ``prefix`` (a second map on the page, e.g. the compare
+        # view, takes its own); ``ranges`` = (x_range, y_range) of another map to share its
+        # pan and zoom; ``field_source()`` -> DataArray replaces ``state.map_field()``
+        self.prefix = prefix
+        self._shared_ranges = ranges
+        self.field_source = field_source
+        self._readout = {}
+        self._tips = {"field": [], "aux": [], "balanced": []}
         self.on_lasso = None
         self.on_section = None
         self.on_tap = None
@@ -300,7 +334,9 @@ class MapView:
                                   min_width=280)
         for names, fn in ((["case", "time_index", "member", "surface", "field", "reference",
                             "threshold"], self.refresh_field),
-                          (["pieces", "overlay_level", "time_index", "member", "reference"],
+                          (["pieces", "overlay_level", "time_index", "member", "reference",
+                            "overlay_contour_interval", "overlay_arrow_stride",
+                            "overlay_arrow_speed", "overlay_left_out"],
                            self.refresh_overlay),
                           (["pieces"], self.refresh_pieces),
                           (["sections", "active_section"], self.refresh_sections),
@@ -405,8 +441,12 @@ class MapView:
             pad_y = 0.5 * float(abs(lat[1] - lat[0])) if len(lat) > 1 else 0.5
             xa, xb = float(lon.min()) - pad_x, float(lon.max()) + pad_x
             ya, yb = float(lat.min()) - pad_y, float(lat.max()) + pad_y
-        x_range = Range1d(xa, xb, bounds=(xa, xb))
-        y_range = Range1d(ya, yb, bounds=(ya, yb))
+        P = self.prefix
+        if self._shared_ranges is not None:
+            x_range, y_range = self._shared_ranges
+        else:
+            x_range = Range1d(xa, xb, bounds=(xa, xb))
+            y_range = Range1d(ya, yb, bounds=(ya, yb))
         self.tools = dict(
             pan=PanTool(), wheel=WheelZoomTool(), box=BoxZoomTool(), reset=ResetTool(),
             save=SaveTool(),
@@ -415,7 +455,7 @@ class MapView:
                                      num_objects=1),
             target=TapTool(description="Pick the attribution target point"),
         )
-        fig = figure(name="pvwb-map", width=width, height=height, x_range=x_range,
+        fig = figure(name=f"{P}-map", width=width, height=height, x_range=x_range,
                      sizing_mode="scale_width", max_width=width, min_width=280,
                      y_range=y_range, tools=list(self.tools.values()), toolbar_location="above",
                      x_axis_label="longitude", y_axis_label="latitude",
@@ -437,50 +477,50 @@ class MapView:
         S = ColumnDataSource
         self.src = dict(
             field=S(dict(image=[np.zeros((1, 1))], x=[0.0], y=[0.0], dw=[1.0], dh=[1.0]),
-                    name="pvwb-field"),
-            trop=S(dict(xs=[], ys=[]), name="pvwb-pv2"),
-            coast=S(dict(xs=[], ys=[]), name="pvwb-coast"),
-            wind=S(_empty_vectors()[0], name="pvwb-wind"),
-            wind_head=S(_empty_vectors()[1], name="pvwb-wind-head"),
-            bal=S(_empty_vectors()[0], name="pvwb-balanced-vectors"),
-            bal_head=S(_empty_vectors()[1], name="pvwb-balanced-heads"),
-            zpos=S(dict(xs=[], ys=[]), name="pvwb-height-pos"),
-            zneg=S(dict(xs=[], ys=[]), name="pvwb-height-neg"),
-            pieces=S(dict(xs=[], ys=[], colour=[], name=[], alpha=[]), name="pvwb-pieces"),
-            piece_labels=S(dict(x=[], y=[], text=[], colour=[]), name="pvwb-piece-labels"),
-            sections=S(dict(xs=[], ys=[], width=[], alpha=[]), name="pvwb-sections"),
-            section_ends=S(dict(x=[], y=[], text=[]), name="pvwb-section-ends"),
-            stroke=S(dict(xs=[], ys=[]), name="pvwb-stroke"),
-            target=S(dict(x=[], y=[]), name="pvwb-target"),
-            grid=S(dict(x=[], y=[]), name="pvwb-grid"),
+                    name=f"{P}-field"),
+            trop=S(dict(xs=[], ys=[]), name=f"{P}-pv2"),
+            coast=S(dict(xs=[], ys=[]), name=f"{P}-coast"),
+            wind=S(_empty_vectors()[0], name=f"{P}-wind"),
+            wind_head=S(_empty_vectors()[1], name=f"{P}-wind-head"),
+            bal=S(_empty_vectors()[0], name=f"{P}-balanced-vectors"),
+            bal_head=S(_empty_vectors()[1], name=f"{P}-balanced-heads"),
+            zpos=S(dict(xs=[], ys=[]), name=f"{P}-height-pos"),
+            zneg=S(dict(xs=[], ys=[]), name=f"{P}-height-neg"),
+            pieces=S(dict(xs=[], ys=[], colour=[], name=[], alpha=[]), name=f"{P}-pieces"),
+            piece_labels=S(dict(x=[], y=[], text=[], colour=[]), name=f"{P}-piece-labels"),
+            sections=S(dict(xs=[], ys=[], width=[], alpha=[]), name=f"{P}-sections"),
+            section_ends=S(dict(x=[], y=[], text=[]), name=f"{P}-section-ends"),
+            stroke=S(dict(xs=[], ys=[]), name=f"{P}-stroke"),
+            target=S(dict(x=[], y=[]), name=f"{P}-target"),
+            grid=S(dict(x=[], y=[]), name=f"{P}-grid"),
             ann_text=S(dict(x=[], y=[], text=[], colour=[], size=[], style=[], fill=[]),
-                       name="pvwb-ann-text"),
+                       name=f"{P}-ann-text"),
             ann_poly=S(dict(xs=[], ys=[], colour=[], fill=[], alpha=[], width=[], dash=[]),
-                       name="pvwb-ann-regions"),
+                       name=f"{P}-ann-regions"),
             ann_arrow=S(dict(x0=[], y0=[], x1=[], y1=[], colour=[], width=[]),
-                        name="pvwb-ann-arrows"),
-            ann_head=S(dict(x=[], y=[], angle=[], colour=[]), name="pvwb-ann-arrow-heads"),
+                        name=f"{P}-ann-arrows"),
+            ann_head=S(dict(x=[], y=[], angle=[], colour=[]), name=f"{P}-ann-arrow-heads"),
         )
         src = self.src
         self.mapper = LinearColorMapper(palette=palette("pv"), low=0, high=8, nan_color=(0, 0, 0, 0))
         self.image = fig.image(image="image", x="x", y="y", dw="dw", dh="dh", source=src["field"],
-                               color_mapper=self.mapper, name="pvwb-field-image")
+                               color_mapper=self.mapper, name=f"{P}-field-image")
         self.colorbar = ColorBar(color_mapper=self.mapper, title="PV (PVU)", width=14,
                                  title_text_font_size="12px", major_label_text_font_size="11px",
-                                 name="pvwb-colorbar")
+                                 name=f"{P}-colorbar")
         fig.add_layout(self.colorbar, "right")
         fig.multi_line("xs", "ys", source=src["coast"], line_color="#3b3b3b", line_width=1.0)
         fig.multi_line("xs", "ys", source=src["trop"], line_color="#000000", line_width=1.6,
                        line_alpha=0.8)
         fig.segment("x0", "y0", "x1", "y1", source=src["wind"], line_color=WIND_COLOUR,
-                    line_width=1.0, line_alpha=0.8, name="pvwb-wind-shafts")
+                    line_width=1.0, line_alpha=0.8, name=f"{P}-wind-shafts")
         fig.scatter("x", "y", angle="angle", source=src["wind_head"], marker="triangle", size=5,
                     fill_color=WIND_COLOUR, line_color=None, fill_alpha=0.8)
         fig.patches("xs", "ys", source=src["ann_poly"], fill_alpha="alpha", fill_color="fill",
                     line_color="colour", line_width="width", line_dash="dash",
-                    name="pvwb-ann-region-patches")
+                    name=f"{P}-ann-region-patches")
         fig.patches("xs", "ys", source=src["pieces"], fill_color="colour", fill_alpha="alpha",
-                    line_color="colour", line_width=2.2, line_dash="dashed", name="pvwb-piece-patches")
+                    line_color="colour", line_width=2.2, line_dash="dashed", name=f"{P}-piece-patches")
         fig.text("x", "y", text="text", source=src["piece_labels"], text_color="colour",
                  text_font_size="12px", text_font_style="bold", text_align="center",
                  text_baseline="middle", background_fill_color="white",
@@ -491,7 +531,7 @@ class MapView:
             fig.multi_line("xs", "ys", source=src[key], line_color=colour, line_width=2.0,
                            line_dash=dash, name=f"pvwb-{key}-lines")
         fig.segment("x0", "y0", "x1", "y1", source=src["bal"], line_color=BALANCED_COLOUR,
-                    line_width=2.2, name="pvwb-balanced-shafts")
+                    line_width=2.2, name=f"{P}-balanced-shafts")
         fig.scatter("x", "y", angle="angle", source=src["bal_head"], marker="triangle", size=8,
                     fill_color=BALANCED_COLOUR, line_color="white", line_width=0.5)
         fig.multi_line("xs", "ys", source=src["sections"], line_color="white",
@@ -514,18 +554,16 @@ class MapView:
                  text_font_size="size", text_font_style="style", text_align="center",
                  text_baseline="middle", background_fill_color="fill",
                  background_fill_alpha=0.8, border_line_color="colour",
-                 border_line_alpha=0.6, padding=2, name="pvwb-ann-labels")
+                 border_line_alpha=0.6, padding=2, name=f"{P}-ann-labels")
         grid = fig.scatter("x", "y", source=src["grid"], size=1, alpha=0.0,
-                           nonselection_alpha=0.0, selection_alpha=0.0, name="pvwb-grid-points")
+                           nonselection_alpha=0.0, selection_alpha=0.0, name=f"{P}-grid-points")
         self.tools["lasso"].renderers = [grid]
         self.tools["target"].renderers = [grid]
-        tips = ([("x, y (m)", "$x{0,0}, $y{0,0}")] if self.native else
-                [("lon", "$x{0.00}"), ("lat", "$y{0.00}")])
-        fig.add_tools(HoverTool(renderers=[self.image], tooltips=tips + [("value",
-                                                                          "@image{0.00}")]))
+        self._build_readout(fig)
+        self._build_legend_arrow(fig)
         self.key = Label(x=6, y=6, x_units="screen", y_units="screen", text="",
                          text_font_size="11px", background_fill_color="white",
-                         background_fill_alpha=0.8, name="pvwb-overlay-key")
+                         background_fill_alpha=0.8, name=f"{P}-overlay-key")
         fig.add_layout(self.key)
         fig.on_event(SelectionGeometry, self._lasso_event)
         fig.on_event(Tap, self._tap_event)
@@ -612,11 +650,14 @@ class MapView:
 
     def refresh_field(self):
         st = self.state
-        da = st.map_field()
+        da = self.field_source() if self.field_source is not None else st.map_field()
         lat = da["latitude"].values
         lon = da["longitude"].values
         z = np.asarray(da.transpose("latitude", "longitude").values, float)
+        diff = da.attrs.get("difference")
         pal, lo, hi, title, scale = field_style(st.field, z)
+        if diff:
+            pal, lo, hi, title, scale = difference_style(st.field, z)
         img = z * scale
         if self.native:
             # display only: the field sampled (bilinear in lon/lat) at a regular grid of the
@@ -628,7 +669,7 @@ class MapView:
             pimg = f(np.stack([glat.ravel(), glon.ravel()], axis=-1)).reshape(glat.shape)
             gx, gy = self._gx, self._gy
             dx, dy = float(gx[1] - gx[0]), float(gy[1] - gy[0])
-            self.src["field"].data = dict(image=[pimg], x=[float(gx[0]) - dx / 2],
+            self.src["field"].data.update(image=[pimg], x=[float(gx[0]) - dx / 2],
                                           y=[float(gy[0]) - dy / 2], dw=[dx * len(gx)],
                                           dh=[dy * len(gy)])
             img = None
@@ -642,9 +683,10 @@ class MapView:
         if img is not None:
             dx = float(lon[1] - lon[0]) if len(lon) > 1 else 1.0
             dy = float(lat[1] - lat[0]) if len(lat) > 1 else 1.0
-            self.src["field"].data = dict(image=[img], x=[float(lon[0]) - dx / 2],
+            self.src["field"].data.update(image=[img], x=[float(lon[0]) - dx / 2],
                                           y=[float(lat[0]) - dy / 2], dw=[dx * len(lon)],
                                           dh=[dy * len(lat)])
+        self._refresh_field_readout(da, diff)
         self.mapper.update(palette=list(pal), low=lo, high=hi)
         self.colorbar.title = title
         if st.field == "ertel_pv":  # the threshold contour: the dynamic tropopause's trace
@@ -659,6 +701,8 @@ class MapView:
         self.figure.title.text = (f"{label} on {surface_label(st.surface, st.threshold)}, "
                                   f"valid {t}" + (f", member {st.member}" if st.member is not None
                                                   else ""))
+        if diff:
+            self.figure.title.text = f"{label} on {surface_label(st.surface, st.threshold)}: {diff}"
 
     def _refresh_wind(self):
         st = self.state
@@ -682,28 +726,36 @@ class MapView:
     def refresh_overlay(self):
         """Balanced flow of the visible pieces: vectors and height-anomaly contours, in place."""
         st = self.state
-        ov = st.overlay() if st.pieces else None
+        ov = st.overlay_readout() if st.pieces else None
         if ov is None:
             self._set_vectors("bal", *_empty_vectors())
             self._set("zpos", dict(xs=[], ys=[]))
             self._set("zneg", dict(xs=[], ys=[]))
-            self.key.text = "" if not st.pieces else "no visible piece (show one in the list)"
+            self._set_legend_arrow(None)
+            self._set_overlay_readout(None)
+            self.key.text = "" if not st.pieces else (
+                "no visible piece (show one in the list)" if not st.visible_results() else
+                "every visible piece is left out of the overlay (see the overlay settings)")
             return
         lon, lat = ov["longitude"].values, ov["latitude"].values
         u = ov["u"].transpose("latitude", "longitude").values
         v = ov["v"].transpose("latitude", "longitude").values
         z = ov["height_anomaly"].transpose("latitude", "longitude").values
-        speed = np.hypot(u, v)
+        speed = ov["wind_speed"].transpose("latitude", "longitude").values
         vmax = float(np.nanmax(speed)) if np.isfinite(speed).any() else 0.0
-        ref = _nice(max(vmax, 1e-3))
-        stride = max(1, int(round(len(lon) / 18)))
+        ref = st.overlay_arrow_speed or _nice(max(vmax, 1e-3))
+        stride = st.overlay_arrow_stride or max(1, int(round(len(lon) / 18)))
         spacing = stride * float(abs(lat[1] - lat[0]) if len(lat) > 1 else 1.0)
-        shafts, heads = _vector_data(lon, lat, u, v, stride, 1.1 * spacing / ref, self.coslat0,
+        scale = 1.1 * spacing / ref  # degrees of latitude per m/s
+        shafts, heads = _vector_data(lon, lat, u, v, stride, scale, self.coslat0,
                                      min_speed=0.05 * ref)
         self._set_vectors("bal", shafts, heads)
+        self._set_legend_arrow(ref, scale)
+        self._set_overlay_readout(ov)
         zmax = float(np.nanmax(np.abs(z))) if np.isfinite(z).any() else 0.0
-        step = _nice(zmax / 5.0) if zmax > 0 else 1.0
-        levels = np.arange(step, zmax + step, step)
+        step = st.overlay_contour_interval or (_nice(zmax / 5.0) if zmax > 0 else 1.0)
+        # at most MAX_CONTOURS lines of each sign (a tiny interval on a big anomaly)
+        levels = np.arange(step, min(zmax, MAX_CONTOURS * step) + step, step)
         xs, ys = _contour_lines(lon, lat, z, levels)
         self._set("zpos", dict(xs=xs, ys=ys))
         xs, ys = _contour_lines(lon, lat, z, -levels)
@@ -712,6 +764,142 @@ class MapView:
         self.key.text = (f"balanced flow at {ov.attrs['level_hpa']:g} hPa of {names}: "
                          f"arrow ≈ {ref:g} m/s per spacing; Z′ every {step:g} m "
                          "(orange +, purple dashed −)")
+
+    # ---------------------------------------------------------------- read-outs (hover)
+    def _build_readout(self, fig):
+        """The hover on the field image: the field's name, value and units, the point's
+        longitude/latitude (°E/°W, °N/°S), its pressure or θ, and the visible pieces'
+        balanced height anomaly and wind. Every value is a layer (an image-shaped column) of
+        the field's source, read from the State; the tooltip rows change with the field."""
+        self._lon_fmt = CustomJSHover(code=_JS_LON)
+        self._lat_fmt = CustomJSHover(code=_JS_LAT)
+        self.hover = HoverTool(renderers=[self.image], tooltips=[("", "")],
+                               formatters={"@lon": self._lon_fmt, "@lat": self._lat_fmt},
+                               name=f"{self.prefix}-hover")
+        fig.add_tools(self.hover)
+
+    def _display_layer(self, arr, nearest=True):
+        """A (latitude, longitude) layer of the case grid as the field image shows it: on
+        the projection plane's display grid, or on the uniform latitudes of the image
+        (nearest grid point: a read-out gives grid-point values, never blends them)."""
+        arr = np.asarray(arr, float)
+        lat, lon = self.lat, self.lon
+        if self.native:
+            from scipy.interpolate import RegularGridInterpolator
+
+            glat, glon = self._glonlat
+            f = RegularGridInterpolator((lat, lon), arr, method="nearest" if nearest else
+                                        "linear", bounds_error=False, fill_value=np.nan)
+            return f(np.stack([glat.ravel(), glon.ravel()], axis=-1)).reshape(glat.shape)
+        if len(lat) > 2 and np.ptp(np.diff(lat)) > 1e-6 * abs(lat[-1] - lat[0]):
+            ulat = np.linspace(lat.min(), lat.max(), len(lat))
+            j = np.abs(lat[:, None] - ulat[None, :]).argmin(axis=0)
+            return arr[j, :]
+        return arr
+
+    def _lonlat_layers(self):
+        if self.native:
+            glat, glon = self._glonlat
+            return np.asarray(glon, float), np.asarray(glat, float)
+        LON, LAT = np.meshgrid(self.lon, self.lat)
+        return self._display_layer(LON), self._display_layer(LAT)
+
+    def _refresh_field_readout(self, da, diff):
+        st = self.state
+        label, units = FIELD_LABELS.get(st.field, (st.field, ""))[:2]
+        units = _READ_UNITS.get(units, units)
+        fmt = _READ_FORMAT.get(st.field, "0.00")
+        name = f"{label} on {surface_label(st.surface, st.threshold)}"
+        if diff:
+            name = f"{name}, {diff}"
+        data = self.src["field"].data
+        lon, lat = self._lonlat_layers()
+        shape = lon.shape
+        # (longitudes and latitudes never change: sent once)
+        layers = {} if "lon" in data and np.shape(data["lon"][0]) == shape else \
+            dict(lon=[lon.astype(np.float32)], lat=[lat.astype(np.float32)])
+        aux_rows = []
+        try:
+            aux = st.map_point_field()
+        except Exception:  # noqa: BLE001  (a read-out never stops the map)
+            aux = None
+        if aux is not None:
+            a = np.asarray(aux.transpose("latitude", "longitude").values, float)
+            if aux.attrs.get("units") == "Pa":
+                layers["aux"] = [self._display_layer(a / 100.0)]
+                aux_rows = [(aux.attrs.get("label", "pressure"), "@aux{0} hPa")]
+            else:
+                layers["aux"] = [self._display_layer(a)]
+                aux_rows = [(aux.attrs.get("label", "θ"), "@aux{0.0} K")]
+        else:
+            layers["aux"] = [np.full_like(lon, np.nan)]
+        for key in ("zb", "bspd", "bdir"):
+            old = self._readout.get(key)
+            if old is None or old[0].shape != shape:
+                self._readout[key] = [np.full(shape, np.nan, np.float32)]
+            if key not in data or np.shape(data[key][0]) != shape:
+                layers[key] = self._readout[key]
+        layers["aux"] = [np.asarray(layers["aux"][0], np.float32)]
+        data.update(**layers)
+        self._tips["field"] = [(name, f"@image{{{fmt}}} {units}"),
+                               ("at", "@lon{custom}, @lat{custom}")]
+        self._tips["aux"] = aux_rows
+        self._update_tips()
+
+    def _set_overlay_readout(self, ov):
+        """The balanced height anomaly and wind of the overlay as read-out layers."""
+        if ov is None:
+            shape = self._lonlat_layers()[0].shape
+            self._readout = {k: [np.full(shape, np.nan, np.float32)] for k in ("zb", "bspd",
+                                                                                 "bdir")}
+            self._tips["balanced"] = []
+        else:
+            get = lambda n: ov[n].transpose("latitude", "longitude").values  # noqa: E731
+            self._readout = {k: [self._display_layer(get(n)).astype(np.float32)] for k, n in (
+                ("zb", "height_anomaly"), ("bspd", "wind_speed"),
+                ("bdir", "wind_from_direction"))}
+            names = ", ".join(ov.attrs["pieces"])
+            lev = f"{ov.attrs['level_hpa']:g} hPa"
+            self._tips["balanced"] = [(f"balanced Z′ ({lev})", "@zb{0.0} m"),
+                                      (f"balanced wind ({lev})", "@bspd{0.0} m/s from @bdir{0}°"),
+                                      ("of", names)]
+        if "image" in self.src["field"].data and \
+                self.src["field"].data["image"][0].shape == self._readout["zb"][0].shape:
+            self.src["field"].data.update(**self._readout)
+        self._update_tips()
+
+    def _update_tips(self):
+        self.hover.tooltips = (self._tips["field"] + self._tips["aux"] +
+                               self._tips["balanced"]) or [("", "")]
+
+    # ---------------------------------------------------------------- legend arrow
+    def _build_legend_arrow(self, fig):
+        S, P = ColumnDataSource, self.prefix
+        self.src["legend_arrow"] = S(_empty_vectors()[0], name=f"{P}-legend-arrow")
+        self.src["legend_head"] = S(_empty_vectors()[1], name=f"{P}-legend-arrow-head")
+        self.src["legend_text"] = S(dict(x=[], y=[], text=[]), name=f"{P}-legend-arrow-text")
+        fig.segment("x0", "y0", "x1", "y1", source=self.src["legend_arrow"],
+                    line_color=BALANCED_COLOUR, line_width=2.2)
+        fig.scatter("x", "y", angle="angle", source=self.src["legend_head"], marker="triangle",
+                    size=8, fill_color=BALANCED_COLOUR, line_color="white", line_width=0.5)
+        fig.text("x", "y", text="text", source=self.src["legend_text"], text_font_size="12px",
+                 text_font_style="bold", text_align="left", text_baseline="middle",
+                 x_offset=6, background_fill_color="white", background_fill_alpha=0.8)
+
+    def _set_legend_arrow(self, speed, scale=None):
+        """An eastward arrow of ``speed`` m/s drawn as the overlay's arrows are (same scale),
+        near the domain's north-west corner, labelled e.g. "20 m/s"; None removes it."""
+        if speed is None:
+            self._set_vectors("legend_arrow", *_empty_vectors(), head_key="legend_head")
+            self._set("legend_text", dict(x=[], y=[], text=[]))
+            return
+        lon, lat = self.lon, self.lat
+        x0 = float(lon.min()) + 0.04 * float(np.ptp(lon))
+        y0 = float(lat.max()) - 0.05 * float(np.ptp(lat))
+        shafts, heads = _vector_data(np.array([x0]), np.array([y0]), np.array([[speed]]),
+                                     np.array([[0.0]]), 1, scale, self.coslat0)
+        self._set_vectors("legend_arrow", shafts, heads, head_key="legend_head")
+        self._set("legend_text", dict(x=[shafts["x1"][0]], y=[y0], text=[f"{speed:g} m/s"]))
 
     def refresh_pieces(self):
         xs, ys, col, names, alpha = [], [], [], [], []
@@ -881,9 +1069,10 @@ class SectionView:
     def _cells(self, fig, key, mapper):
         self.src[key] = ColumnDataSource(dict(left=[], right=[], bottom=[], top=[], value=[]),
                                          name=f"pvwb-section-{key}")
-        fig.quad(left="left", right="right", bottom="bottom", top="top", source=self.src[key],
-                 fill_color={"field": "value", "transform": mapper},
-                 line_color={"field": "value", "transform": mapper}, line_width=0.6)
+        return fig.quad(left="left", right="right", bottom="bottom", top="top",
+                        source=self.src[key],
+                        fill_color={"field": "value", "transform": mapper},
+                        line_color={"field": "value", "transform": mapper}, line_width=0.6)
 
     def _build(self):
         self.src = {}
@@ -891,7 +1080,14 @@ class SectionView:
         top = self._frame("Section", 330, x_range, "pvwb-section-plot")
         self.pv_mapper = LinearColorMapper(palette=list(palette("pv")), low=0, high=8,
                                            nan_color=(0, 0, 0, 0))
-        self._cells(top, "pv", self.pv_mapper)
+        cells = self._cells(top, "pv", self.pv_mapper)
+        # hover read-out: every value a column of the PV cells' source (from the section)
+        self.hover = HoverTool(renderers=[cells], name="pvwb-section-hover", tooltips=[
+            ("distance from A", "@dist{0} km"), ("at", "@lon{custom}, @lat{custom}"),
+            ("pressure", "@pres{0} hPa"), ("PV", "@value{0.00} PVU"), ("θ", "@theta{0.0} K"),
+            ("normal wind", "@vn{0.0} m/s (+: to the left of A→B)")],
+            formatters={"@lon": CustomJSHover(code=_JS_LON), "@lat": CustomJSHover(code=_JS_LAT)})
+        top.add_tools(self.hover)
         self.pv_bar = ColorBar(color_mapper=self.pv_mapper, title="PV (PVU)", width=12,
                                title_text_font_size="11px")
         top.add_layout(self.pv_bar, "right")
@@ -986,7 +1182,15 @@ class SectionView:
         pal, lo, hi, ctitle, _ = field_style("ertel_pv", pv)
         self.pv_mapper.update(palette=list(pal), low=lo, high=hi)
         self.pv_bar.title = ctitle
-        self.src["pv"].data = _cell_data(d, p, pv)
+        th = sec["potential_temperature"].transpose("pressure", "distance").values
+        vn = sec["normal_wind"].transpose("pressure", "distance").values
+        D, Pr = np.meshgrid(d, p)
+        lon2, _ = np.meshgrid(sec["longitude"].values, p)
+        lat2, _ = np.meshgrid(sec["latitude"].values, p)
+        self.src["pv"].data = dict(_cell_data(d, p, pv), dist=D.ravel(), pres=Pr.ravel(),
+                                   theta=np.asarray(th, float).ravel(),
+                                   vn=np.asarray(vn, float).ravel(), lon=lon2.ravel(),
+                                   lat=lat2.ravel())
         th = sec["potential_temperature"].transpose("pressure", "distance").values
         lo5 = 5 * math.floor(np.nanmin(th) / 5)
         tlev = np.concatenate([np.arange(lo5, 360.0, 5.0),
