@@ -67,7 +67,7 @@ def test_briefing_pages_titles_caution_and_summary(invented_case, tmp_path):
     assert "PV diagnosis briefing" in title and invented_case.name in title
     assert "Invented case" in title
     assert invented_case.checksum in title
-    assert "upper (interior, 150-400 hPa, positive" in title
+    assert "upper (interior PV, 150-400 hPa, sign positive" in title
     assert "2031-01-01 00:00 UTC" in title
     assert "Ertel PV (PVU) on the 320 K isentropic surface" in pages[1]
     assert "potential temperature (K) on the dynamic tropopause (2 PVU)" in pages[2]

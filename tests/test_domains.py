@@ -19,9 +19,9 @@ def _open(lat, lon):
 
 def test_periodic_grid_longitudes_are_reported_as_the_points_lie():
     case = _open(np.arange(20.0, 80.01, 5.0), np.arange(0.0, 359.99, 5.0))
-    assert "0..355 E, periodic" in repr(case)
+    assert "0°E..355°E, periodic" in repr(case)
     regional = _open(np.arange(20.0, 80.01, 5.0), np.arange(-40.0, 40.01, 5.0))
-    assert "-40..40 E (" in repr(regional)
+    assert "40°W..40°E (" in repr(regional)
 
 
 def test_domain_reaching_the_equator_is_refused_before_any_work(tmp_path, capsys):

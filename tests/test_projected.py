@@ -343,7 +343,7 @@ def test_cli_region_with_negative_western_edge(capsys):
 
     assert main(["info", str(ff.SAMPLE), "--region", "-40,-10,40,60", "--times", "0..2"]) == 0
     out = capsys.readouterr().out
-    assert "40..60 N, -40..-10 E" in out and "(3 times)" in out
+    assert "40°N..60°N, 40°W..10°W" in out and "(3 times)" in out
 
 
 def test_region_across_the_seam_of_a_global_grid(tmp_path):

@@ -396,7 +396,7 @@ def test_main_writes_atomically_and_never_overwrites_silently(tmp_path):
         assert json.loads(f.attrs["generator_settings"])["hours"] == 6.0
     assert [p.name for p in tmp_path.iterdir()] == ["short.nc"]  # no temporary file left
     before = out.read_bytes()
-    with pytest.raises(InputError, match="--force"):
+    with pytest.raises(InputError, match="--overwrite"):
         sample.main(["-o", str(out), "--hours", "6", "--quiet"])
     assert out.read_bytes() == before
     with pytest.raises(InputError, match="does not exist"):

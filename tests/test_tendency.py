@@ -45,9 +45,9 @@ def test_maps_agree_with_the_matrix(explained):
     entry = explained.map("upper trough", "reference state")
     assert float(T.interpolate(entry.values, w)) == pytest.approx(
         explained.matrix.loc["upper trough", "reference state"], rel=1e-10, abs=1e-10)
-    row = explained.map(row="surface theta")
+    row = explained.map(row="surface θ′")
     assert float(T.interpolate(row.values, w)) == pytest.approx(
-        explained.matrix.loc["surface theta"].sum(), rel=1e-10, abs=1e-10)
+        explained.matrix.loc["surface θ′"].sum(), rel=1e-10, abs=1e-10)
     total = explained.map(level_hpa=500)
     assert total.dims == ("latitude", "longitude") and np.all(total.values[0] == 0.0)  # boundary held
     with pytest.raises(InputError, match="not one of"):
@@ -109,7 +109,7 @@ def test_cli_explain(tmp_path, capsys):
     assert pvwb(["explain", "--time", "6", "-o", str(out)]) == 0
     text = capsys.readouterr().out
     assert "not a forecast" in text and "closure" in text and "upper trough" in text
-    assert out.read_text().startswith("wind of,reference state")
+    assert out.read_text().splitlines()[1].startswith("wind of,reference state")  # after the caution line
     assert pvwb(["explain", "--time", "99"]) == 2
     assert "time" in capsys.readouterr().err
     assert pvwb(["explain", "--target", "200,50,500"]) == 2

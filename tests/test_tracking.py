@@ -14,6 +14,7 @@ import xarray as xr
 
 import workbench as wb
 from workbench.errors import InputError, PieceError
+from workbench.export import read_csv
 from workbench.inversion.pieces import Piece, polygon_mask
 from workbench.tracking import outline_polygon, track_piece, tracked_shares
 
@@ -240,7 +241,7 @@ def test_track_command_table_and_plot(tmp_path, capsys):
             "--reference", str(tmp_path / "ref.nc"), "--target", "centroid",
             "-o", str(tmp_path / "shares.csv"), "--plot", str(tmp_path / "shares.png")]
     assert pvwb(args) == 0
-    table = pd.read_csv(tmp_path / "shares.csv")
+    table = read_csv(tmp_path / "shares.csv")  # skips the caution comment line
     blob = table[table.piece == "blob"]
     assert blob.status.tolist() == ["start", "tracked", "tracked"]
     assert np.ptp(blob.height_share_pct) < 1.0

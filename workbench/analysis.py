@@ -64,8 +64,8 @@ def standard_pieces(upper=(550.0, 100.0), lower=(950.0, 600.0), threshold=0.0, r
               threshold=threshold, colour="#1f5fa6"),
         Piece("lower anomaly", kind="interior", layer=lower, layer_coord="pressure", sign=sign,
               threshold=threshold, rh_min=rh_min if moist else None, colour="#c8553d"),
-        Piece("surface theta", kind="bottom", colour="#2a9d8f"),
-        Piece("lid theta", kind="top", colour="#8d6cab"),
+        Piece("surface θ′", kind="bottom", colour="#2a9d8f"),
+        Piece("lid θ′", kind="top", colour="#8d6cab"),
         Piece("lateral boundary", kind="lateral", colour="#7f7f7f"),
         Piece("remainder", kind="remainder", colour="#b8b8b8"),
     ]
@@ -217,7 +217,8 @@ def load_pieces(path):
 
 
 def main(argv=None):
-    """``pvwb info|invert [CASE] [--region W,E,S,N] [--times SPEC] [--time T] [--member M]
+    """``pvwb info [CASE ...] [--region W,E,S,N] [--times SPEC]`` and
+    ``pvwb invert [CASE ...] [--region W,E,S,N] [--times SPEC] [--time T] [--member M]
     [--target LON,LAT,HPA] [--pieces FILE] [--reference R] [-o CSV [--overwrite]] [--quiet]
     [--balance qg|nonlinear] [--floor] [--balance-check]``.
 
@@ -229,19 +230,32 @@ def main(argv=None):
     from . import cli
 
     argv = list(argv or [])
-    prog = f"pvwb {argv[0]}" if argv and argv[0] in ("info", "invert") else "pvwb"
-    parser = cli.build_parser(prog, "Describe a case or run a piecewise inversion.")
-    parser.add_argument("command", choices=["info", "invert"])
-    parser.add_argument("case", nargs="?", help="case file (default: the invented sample storm)")
+    if not argv or argv[0] not in ("info", "invert"):  # called without a command: info
+        argv = ["info", *argv]
+    command, argv = argv[0], argv[1:]
+    # one parser per command, so `pvwb info --help` shows only what info takes
+    if command == "info":
+        parser = cli.build_parser("pvwb info", "Describe a case: times, levels, domain, variables and "
+                                               "how the data were read.")
+        cli.add_case_argument(parser)
+        cli.add_selection_options(parser)
+        args = parser.parse_args(argv)
+        case = wb.open_case(cli.case_source(args.case) or default_case_path(), **cli.selection_options(args))
+        print(case)
+        return 0
+    parser = cli.build_parser("pvwb invert", "Piecewise QG inversion and the attribution table at the storm "
+                                             "centre, for every time (or --time).")
+    cli.add_case_argument(parser)
     cli.add_selection_options(parser)
-    parser.add_argument("--time", default=None, help="time index or ISO time (default: every time for invert)")
-    parser.add_argument("--member", default=None)
+    parser.add_argument("--time", default=None, help="time index or ISO time (default: every time)")
+    parser.add_argument("--member", default=None, help="ensemble member: index or label (default: the first)")
     parser.add_argument("--target", default=None, help="lon,lat,pressure_hPa (default: storm centre, 2nd level)")
     parser.add_argument("--pieces", default=None, help="JSON file with a list of pieces (default: standard pieces)")
     parser.add_argument("--reference", default=None,
                         help="time_mean | area_mean | zonal_mean | PATH (default: the case's, see `pvwb info`)")
-    parser.add_argument("-o", "--output", default=None, help="write the attribution table(s) as CSV")
-    parser.add_argument("--overwrite", action="store_true", help="replace an existing output file")
+    parser.add_argument("-o", "--output", default=None,
+                        help="write the attribution table(s) as CSV (first line: the caution, as a # comment)")
+    cli.add_overwrite_option(parser)
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
     parser.add_argument("--balance", choices=["qg", "nonlinear"], default="qg",
                         help="qg (constant f0, default) or nonlinear (nonlinear balance, f varying with latitude)")
@@ -253,17 +267,12 @@ def main(argv=None):
     args = parser.parse_args(argv)
     if args.floor and args.balance != "nonlinear" and not args.balance_check:
         parser.error("--floor applies to --balance nonlinear or --balance-check only")
-    if args.balance_check and args.command != "invert":
-        parser.error("--balance-check applies to `pvwb invert` only")
     target = _parse_target(args.target)
     if args.output:
         cli.check_output(args.output, args.overwrite)
     pieces = load_pieces(args.pieces) if args.pieces else None
-    path = args.case or default_case_path()
+    path = cli.case_source(args.case) or default_case_path()
     case = wb.open_case(path, **cli.selection_options(args))
-    if args.command == "info":
-        print(case)
-        return 0
     cli.check_target(case, target)
     cli.check_pieces(case, pieces)
     member = cli.member_arg(case, args.member)
@@ -273,16 +282,18 @@ def main(argv=None):
     import pandas as pd
 
     from .inversion.pieces import format_share
+    from .views.styles import lat_label, lon_label
 
     tables = []
     print(case)
-    print("\nDiagnostic analysis of model/analysis data, not a forecast or warning. Decisions follow "
-          "the official warnings of the responsible meteorological service and local procedures.\n")
+    from .export import CAUTION
+
+    print(f"\n{CAUTION}\n")
     for t in cli.progress(times, desc="invert", unit="time", enabled=None if not args.quiet else False):
         _, table, target_used = analyse(case, t, member, pieces, target, args.reference, balance=args.balance,
                                         floor=args.floor and args.balance == "nonlinear")
         label = str(case.times[t])[:16]
-        print(f"{label}  target {target_used[0]:.1f} E, {target_used[1]:.1f} N, {target_used[2]:g} hPa; "
+        print(f"{label}  target {lon_label(target_used[0])}, {lat_label(target_used[1])}, {target_used[2]:g} hPa; "
               f"reference {table.attrs['reference'].replace('_', ' ')}; {BALANCE_LABELS[args.balance]}")
         for note in table.attrs.get("notes", []):
             print(f"note: {note}")
@@ -295,10 +306,10 @@ def main(argv=None):
             print_balance_check(case, t, member, args.reference, args.floor)
         tables.append(table.assign(time=label, balance=args.balance).reset_index())
     if args.output:
-        from .export import atomic_target
+        from .export import atomic_target, csv_text
 
         with atomic_target(args.output, overwrite=args.overwrite, what="attribution table") as tmp:
-            tmp.write_text(pd.concat(tables).to_csv(index=False))
+            tmp.write_text(csv_text(pd.concat(tables), index=False))
         print(f"wrote {args.output}")
     return 0
 

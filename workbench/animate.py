@@ -166,7 +166,7 @@ def main(argv=None) -> int:
     from .analysis import default_case_path, load_pieces
 
     parser = cli.build_parser("pvwb animate", "An animated map loop (GIF, or MP4 when ffmpeg is present).")
-    parser.add_argument("case", nargs="?", help="case file (default: the invented sample storm)")
+    cli.add_case_argument(parser)
     cli.add_selection_options(parser)
     parser.add_argument("-o", "--output", required=True, help="the loop file: .gif (or .mp4 with ffmpeg)")
     parser.add_argument("--field", default="ertel_pv", help="map field (a Case.MAP_FIELDS name; default ertel_pv)")
@@ -174,11 +174,11 @@ def main(argv=None) -> int:
                         help="theta in K, 'tropopause' or e.g. '500hPa' (default 320)")
     parser.add_argument("--fps", type=cli.positive_number("--fps"), default=2.0, help="frames per second (default 2)")
     parser.add_argument("--dpi", type=cli.count(30, 300, "--dpi"), default=None, help="frame resolution (30..300)")
-    parser.add_argument("--member", default=None)
+    parser.add_argument("--member", default=None, help="ensemble member: index or label (default: the first)")
     parser.add_argument("--pieces", default=None, help="JSON file with a list of pieces (their overlay is drawn)")
     parser.add_argument("--overlay", nargs="+", default=None, metavar="NAME",
                         help="pieces whose balanced flow is drawn (default: the visible pieces)")
-    parser.add_argument("--overwrite", action="store_true")
+    cli.add_overwrite_option(parser)
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
     args = parser.parse_args(argv)
     cli.check_output(args.output, args.overwrite, suffixes=SUFFIXES, what="animation")
@@ -191,7 +191,7 @@ def main(argv=None) -> int:
         raise InputError("--overlay names pieces: give them with --pieces FILE")
     import workbench as wb
 
-    case = wb.open_case(args.case or default_case_path(), **cli.selection_options(args))
+    case = wb.open_case(cli.case_source(args.case) or default_case_path(), **cli.selection_options(args))
     cli.check_pieces(case, pieces)
     if args.overlay:
         names = {p.name for p in pieces}

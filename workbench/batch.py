@@ -411,7 +411,7 @@ def main(argv=None):
     from .analysis import default_case_path
 
     parser = cli.build_parser("pvwb batch", "Attribution over every time and member, serially or on Dask.")
-    parser.add_argument("case", nargs="?", help="case file (default: the invented sample storm)")
+    cli.add_case_argument(parser)
     cli.add_selection_options(parser)
     parser.add_argument("--pieces", help="JSON file with a list of pieces (default: standard pieces)")
     parser.add_argument("--target", help="lon,lat,hPa (default: each time's storm centre)")
@@ -427,7 +427,7 @@ def main(argv=None):
     parser.add_argument("-o", "--output", help="write the joined table as CSV")
     parser.add_argument("--store", metavar="ZARR", help="write each time/member into this Zarr store "
                         "as it finishes; a rerun with the same settings skips the finished ones")
-    parser.add_argument("--overwrite", action="store_true")
+    cli.add_overwrite_option(parser)
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
     parser.add_argument("--balance", choices=["qg", "nonlinear"], default="qg",
                         help="qg (default) or nonlinear balance (adds the 'nonlinear remainder' row)")
@@ -443,7 +443,7 @@ def main(argv=None):
     if args.output:
         cli.check_output(args.output, args.overwrite)
     pieces = load_pieces(args.pieces) if args.pieces else None
-    path = args.case or default_case_path()
+    path = cli.case_source(args.case) or default_case_path()
     options = cli.selection_options(args)
     import workbench as wb
 
@@ -473,10 +473,13 @@ def main(argv=None):
     cols = ["time", "member", "piece", "height_anomaly", "wind_speed", "height_share_pct"]
     with pd.option_context("display.width", 160, "display.max_rows", 500, "display.precision", 2):
         print(table[cols].to_string(index=False))
+    from .export import CAUTION
+
+    print(f"\n{CAUTION}")
     if args.output:
-        from .export import atomic_target
+        from .export import atomic_target, csv_text
 
         with atomic_target(args.output, overwrite=args.overwrite, what="batch table") as tmp:
-            tmp.write_text(table.to_csv(index=False))
+            tmp.write_text(csv_text(table, index=False))
         print(f"wrote {args.output}")
     return 0

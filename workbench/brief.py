@@ -37,6 +37,7 @@ import numpy as np
 
 from workbench.errors import ExportError, InputError, WorkbenchError
 from workbench.export import CAUTION, atomic_target, invented_label, package_version, utc_now_iso
+from workbench.views.styles import domain_label, lat_label, lon_label
 
 __all__ = ["make_briefing", "briefing_figures", "briefing_texts", "briefing_pages", "PAGES", "piece_summaries",
            "main"]
@@ -112,21 +113,30 @@ def _state_of(case, state_or_session):
 
 
 def _fmt_lonlat(lon, lat) -> str:
-    lon_n = ((float(lon) + 180.0) % 360.0) - 180.0
-    return f"{abs(lat):.1f}{'N' if lat >= 0 else 'S'} {abs(lon_n):.1f}{'E' if lon_n >= 0 else 'W'}"
+    """A point as the page and the command line write it: ``43.5°W, 53.0°N``."""
+    return f"{lon_label(lon)}, {lat_label(lat)}"
+
+
+#: piece kinds and signs in words, as the page's pieces table shows them
+KIND_WORDS = {"interior": "interior PV", "bottom": "surface θ′", "top": "lid θ′",
+              "lateral": "lateral boundary", "remainder": "remainder"}
+SIGN_WORDS = {1: "positive", -1: "negative", 0: "both"}
 
 
 def _piece_line(p) -> str:
-    bits = [f"{p.name} ({p.kind}"]
+    bits = [f"{p.name} ({KIND_WORDS.get(p.kind, p.kind)}"]
     if getattr(p, "layer", None):
         lo, hi = p.layer
         unit = "hPa" if p.layer_coord == "pressure" else "K"
         bits.append(f", {min(lo, hi):g}-{max(lo, hi):g} {unit}")
-    sign = {1: "positive", -1: "negative", 0: "both signs"}.get(getattr(p, "sign", 0), "")
+    sign = SIGN_WORDS.get(getattr(p, "sign", 0), "")
     if p.kind in ("interior", "bottom", "top") and sign:
-        bits.append(f", {sign}")
+        bits.append(f", sign {sign}")
     if getattr(p, "threshold", 0):
-        bits.append(f", |PV'| >= {p.threshold:g} PVU")
+        if p.kind == "interior":
+            bits.append(f", minimum |PV anomaly| {p.threshold:g} PVU")
+        else:
+            bits.append(f", minimum |θ′| {p.threshold:g} K")
     if getattr(p, "rh_min", None) is not None:
         bits.append(f", RH >= {p.rh_min:g} %")
     if getattr(p, "polygon", None):
@@ -353,10 +363,10 @@ def _title_page_at(case, state, generated, notes, texts, scale):
         info.append(f"Ensemble member: {case.members[state.member or 0]}")
     d = case.domain
     info += [
-        f"Domain: {d['lat_min']:g} to {d['lat_max']:g} N, {d['lon_min']:g} to {d['lon_max']:g} E; "
+        f"Domain: {domain_label(d)}; "
         f"{len(case.levels_hpa)} pressure levels {case.levels_hpa.max():g}-{case.levels_hpa.min():g} hPa",
         f"Map: {field_label} {_surface_label(state.surface, state.threshold)}; balanced flow at "
-        f"{state.overlay_level:g} hPa; dynamic tropopause {state.threshold:g} PVU; "
+        f"{state.overlay_level:g} hPa; tropopause threshold {state.threshold:g} PVU; "
         f"reference state: {state.reference}",
     ]
     if state.target is not None:
@@ -498,7 +508,8 @@ def _tendency_page(case, state):
     lon, lat, p = ex.target
     y = _text_page(fig, y, f"Height tendency (m per 6 h) at {_fmt_lonlat(lon, lat)}, {p:g} hPa, {ex.time} UTC: "
                           "row = the balanced wind of a piece, column = the PV (or boundary theta) it carries; "
-                          f"entries add up to the total {ex.total:+.1f} m per 6 h.", size=10)
+                          f"entries add up to the full inversion's tendency {ex.total:+.1f} m per 6 h.",
+                   size=10)
     for note in ex.notes:
         y = _text_page(fig, y, note, size=9.5, color="#8a3b00")
     m = ex.matrix
@@ -661,13 +672,12 @@ def main(argv=None) -> int:
         "Make a multi-page briefing PDF (maps, sections, attribution) from a case "
         "and a saved session. " + CAUTION,
     )
-    ap.add_argument("case", nargs="?", help="case file (netCDF, GRIB2 or Zarr; default: the invented "
-                    "sample storm)")
+    cli.add_case_argument(ap)
     cli.add_selection_options(ap)
     ap.add_argument("--session", "-s", help="session file (JSON) saved from the workbench (default: the "
                     "standard pieces at the time of the deepest low, target at the storm centre)")
     ap.add_argument("-o", "--output", default="briefing.pdf", help="output PDF (default briefing.pdf)")
-    ap.add_argument("--overwrite", action="store_true", help="replace the output if it exists")
+    cli.add_overwrite_option(ap)
     ap.add_argument("--accept-modified-session", action="store_true",
                     help="use a session file that was changed after it was saved (or has no "
                          "body checksum); without this it is refused")
@@ -705,7 +715,7 @@ def main(argv=None) -> int:
         cli.check_output(args.output, args.overwrite, suffixes=(".pdf",), what="briefing")
         if args.session is not None and not Path(args.session).expanduser().is_file():
             raise ExportError(f"--session {args.session!r} is not a file; give a session saved from the workbench")
-        case = open_case(args.case or default_case_path(), **cli.selection_options(args))
+        case = open_case(cli.case_source(args.case) or default_case_path(), **cli.selection_options(args))
         cli.check_inversion_domain(case)  # a domain reaching the equator: refused before any work
         session = args.session
         if session and args.accept_modified_session:

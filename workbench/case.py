@@ -377,27 +377,31 @@ class Case:
         trange = t[0] if len(t) == 1 else f"{t[0]} .. {t[-1]} ({len(t)} times)"
         mem = "" if s["members"] is None else f"\n  members:   {len(s['members'])}"
         lev = self.levels_hpa
+        from .views.styles import lat_range
         return (f"<workbench.Case {self.name!r}>\n"
                 f"  source:    {self.source}\n"
                 f"  times:     {trange}{mem}\n"
                 f"  levels:    {len(lev)} from {lev.max():g} to {lev.min():g} hPa\n"
-                f"  domain:    {d['lat_min']:g}..{d['lat_max']:g} N, {self._lon_range()} "
+                f"  domain:    {lat_range(d['lat_min'], d['lat_max'])}, {self._lon_range()} "
                 f"({s['grid']['ny']} x {s['grid']['nx']} points)\n"
                 f"  variables: {', '.join(self.variables)}"
                 + "".join(f"\n  note:      {n}" for n in self.notes)
                 + ("\n  note:      invented demonstration case, not real weather" if self.invented else ""))
 
     def _lon_range(self) -> str:
-        """"W..E E"; a zonally periodic grid (uniform, n * step = 360 degrees) is given in
-        0..360 as the grid points lie (e.g. "0..359.75 E, periodic"), whatever the order or
-        the convention the longitudes are held in."""
+        """"80°W..20°E" (``views.styles.lon_range``, as the page and the briefing write it); a
+        zonally periodic grid (uniform, n * step = 360 degrees) is given in 0..360 as the grid
+        points lie (e.g. "0°E..359.75°E, periodic"), whatever the order or the convention the
+        longitudes are held in."""
+        from .views.styles import lon_range
+
         lon = np.asarray(self.data["longitude"].values, dtype=float)
         if lon.size > 2:
             step = np.diff(lon)
             if np.allclose(step, step[0], rtol=1e-6, atol=1e-9) and abs(lon.size * step[0] - 360.0) < 1e-6 * 360:
                 wrapped = np.mod(np.round(lon, 9), 360.0)
-                return f"{wrapped.min():g}..{wrapped.max():g} E, periodic"
-        return f"{lon.min():g}..{lon.max():g} E"
+                return f"{wrapped.min():g}°E..{wrapped.max():g}°E, periodic"
+        return lon_range(lon.min(), lon.max())
 
     def _repr_html_(self):
         rows = "".join(f"<tr><th style='text-align:left'>{html.escape(k)}</th><td style='text-align:left'>"

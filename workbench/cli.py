@@ -27,6 +27,7 @@ import os
 import sys
 
 from .errors import InputError, WorkbenchError
+from .views.styles import domain_label, lat_label, lat_range, lon_label, lon_range
 
 USAGE = """pvwb [--debug] [--quiet] <command> [options]
 
@@ -222,6 +223,39 @@ def add_selection_options(parser):
                         help="read only these times: A..B (inclusive) or A,B,C; indices or ISO times")
 
 
+def add_case_argument(parser, what="case"):
+    """The case as one or more files (``pvwb info a.grib2 b.grib2``): a file, a folder, a glob
+    pattern, or several files of one case split by time, which ``open_case`` joins."""
+    parser.add_argument("case", nargs="*", metavar="CASE",
+                        help=f"{what} file(s): netCDF, GRIB2 or Zarr; several files (or a folder, or a "
+                             "quoted glob pattern) of one case split by time are joined (default: the "
+                             "invented sample storm)")
+
+
+def case_source(value):
+    """What ``open_case`` takes for the files given by :func:`add_case_argument`: None (no file),
+    the path itself for one file, the list for several."""
+    if value is None or isinstance(value, str):
+        return value or None
+    value = [str(v) for v in value]
+    if not value:
+        return None
+    return value[0] if len(value) == 1 else value
+
+
+#: the one name of the option that lets a command replace an existing output file
+OVERWRITE = "--overwrite"
+
+
+def add_overwrite_option(parser, *aliases):
+    """``--overwrite`` (the one name, in every command that writes files); older names given in
+    ``aliases`` stay accepted but are hidden from ``--help``."""
+    parser.add_argument(OVERWRITE, dest="overwrite", action="store_true",
+                        help="replace an existing output file (without it an existing file is refused)")
+    for alias in aliases:
+        parser.add_argument(alias, dest="overwrite", action="store_true", help=argparse.SUPPRESS)
+
+
 def selection_options(args) -> dict:
     """The ``open_case`` keywords of :func:`add_selection_options` that were given."""
     out = {}
@@ -242,7 +276,7 @@ def check_inversion_domain(case):
         south = d["lat_max"] > -d["lat_min"]
         cut = (f"{d['lon_min']:g},{d['lon_max']:g},{5 if south else d['lat_min']:g},"
                f"{d['lat_max'] if south else -5:g}")
-        raise DomainError(f"the domain spans {d['lat_min']:g}..{d['lat_max']:g} N and reaches the equator, "
+        raise DomainError(f"the domain spans {lat_range(d['lat_min'], d['lat_max'])} and reaches the equator, "
                           "where QG inversion with a constant f0 does not hold; cut it to one hemisphere, "
                           f"e.g. --region {cut}")
 
@@ -261,8 +295,8 @@ def check_target(case, target):
         or d["lon_min"] <= lon - 360 <= d["lon_max"]
     if not (lon_in and d["lat_min"] <= lat <= d["lat_max"]):
         raise InputError(
-            f"--target {lon:g},{lat:g} lies outside the domain ({d['lon_min']:g}..{d['lon_max']:g} E, "
-            f"{d['lat_min']:g}..{d['lat_max']:g} N); give a point inside it")
+            f"--target {lon:g},{lat:g} ({lon_label(lon, None)}, {lat_label(lat, None)}) lies outside the "
+            f"domain ({domain_label(d)}); give a point inside it")
     lev = case.levels_hpa
     if not float(lev.min()) <= p <= float(lev.max()):
         raise InputError(f"--target pressure {p:g} hPa is outside the levels of the case "
@@ -285,9 +319,8 @@ def check_pieces(case, pieces):
             xs = [x for x, _ in piece.polygon]
             ys = [y for _, y in piece.polygon]
             raise InputError(
-                f"piece {piece.name!r}: its polygon ({min(xs):g}..{max(xs):g} E, {min(ys):g}..{max(ys):g} N) "
-                f"encloses no grid point of the domain ({d['lon_min']:g}..{d['lon_max']:g} E, "
-                f"{d['lat_min']:g}..{d['lat_max']:g} N); draw it inside the domain")
+                f"piece {piece.name!r}: its polygon ({lat_range(min(ys), max(ys))}, {lon_range(min(xs), max(xs))}) "
+                f"encloses no grid point of the domain ({domain_label(d)}); draw it inside the domain")
     return pieces
 
 
@@ -352,7 +385,7 @@ _ERRNO_HINTS = {
     errno.EISDIR: "it is a folder; give a file name",
     errno.ENOTDIR: "a part of the path is not a folder",
     errno.ENOENT: "no such file or folder",
-    errno.EADDRINUSE: "the address/port is in use; choose another --port (or 0 for any free port)",
+    errno.EADDRINUSE: "the address/port is in use; choose another --page-port (or 0 for any free port)",
     errno.EADDRNOTAVAIL: "this machine has no such address; give one of its own addresses (e.g. 127.0.0.1)",
     errno.ECONNREFUSED: "connection refused (nothing listens there)",
     errno.EHOSTUNREACH: "host unreachable",

@@ -32,13 +32,40 @@ import xarray as xr
 
 from workbench.errors import ExportError, WorkbenchError
 
-__all__ = ["atomic_target", "temp_file_next_to", "clean_stale_temps", "install_exit_handlers", "export_balanced", "BALANCED_CF", "utc_now_iso", "package_version"]
+__all__ = ["atomic_target", "temp_file_next_to", "clean_stale_temps", "install_exit_handlers", "export_balanced", "BALANCED_CF", "utc_now_iso", "package_version",
+           "CAUTION", "csv_text", "read_csv"]
 
 #: Caution line carried by every briefing output and export.
 CAUTION = (
     "Diagnostic analysis of model/analysis data, not a forecast or warning. Decisions follow "
     "the official warnings of the responsible meteorological service and local procedures."
 )
+
+
+#: Lines of a CSV file written by the package that start with this are comments (the caution).
+CSV_COMMENT = "#"
+
+
+def csv_text(table, **to_csv) -> str:
+    """``table.to_csv(**to_csv)`` preceded by one comment line with the caution (and the
+    package version), so a table that leaves the tool carries it. Read such files back with
+    :func:`read_csv` (or ``pandas.read_csv(path, comment="#")`` when no cell holds a "#")."""
+    return (f"{CSV_COMMENT} PV Workbench {package_version()}: {CAUTION}\n"
+            + table.to_csv(**to_csv))
+
+
+def read_csv(path, **kwargs):
+    """A CSV file written by :func:`csv_text` (or any CSV) as a DataFrame: the leading comment
+    lines are skipped, and only those ("#" inside a cell, e.g. a piece's name, is kept)."""
+    import pandas as pd
+
+    skip = 0
+    with open(path, encoding="utf-8") as fh:
+        for line in fh:
+            if not line.startswith(CSV_COMMENT):
+                break
+            skip += 1
+    return pd.read_csv(path, skiprows=skip, **kwargs)
 
 
 def utc_now_iso() -> str:

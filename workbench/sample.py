@@ -744,7 +744,7 @@ def build_sample(path=None, *, overwrite=False, progress=None, **settings) -> xr
         if target.exists() and not overwrite:
             raise InputError(
                 f"sample output {target}: the file exists and was left untouched; pass overwrite=True "
-                "(command line: --force) to replace it, or choose another path.")
+                "(command line: --overwrite) to replace it, or choose another path.")
         if not target.parent.exists():
             raise InputError(f"sample output {target}: the folder {target.parent} does not exist; create it first.")
     hours, fields, model = _run(s, progress)
@@ -810,7 +810,7 @@ def write_case(ds: xr.Dataset, path, *, overwrite=False):
     if target.exists() and not overwrite:
         raise InputError(
             f"sample output {target}: the file exists and was left untouched; pass overwrite=True "
-            "(command line: --force) to replace it.")
+            "(command line: --overwrite) to replace it.")
     encoding = {}
     for name, da in ds.data_vars.items():
         chunks = (1,) + da.shape[1:]
@@ -871,7 +871,7 @@ def track_low(ds: xr.Dataset, *, margin_deg=8.0, search_km=900.0, start=None):
 # ---------------------------------------------------------------------------------------------
 
 def main(argv=None) -> int:
-    """``pvwb sample [-o PATH] [--force] [--hours H] [--no-latent-heating] [--set NAME=VALUE ...]``."""
+    """``pvwb sample [-o PATH] [--overwrite] [--hours H] [--no-latent-heating] [--set NAME=VALUE ...]``."""
     from . import cli
 
     parser = cli.build_parser(
@@ -880,7 +880,7 @@ def main(argv=None) -> int:
                      "life-cycle simulation written as pressure-level fields."))
     parser.add_argument("-o", "--output", default=str(DEFAULT_PATH),
                         help=f"netCDF file to write (default: {DEFAULT_PATH})")
-    parser.add_argument("--force", action="store_true", help="replace the output file if it exists")
+    cli.add_overwrite_option(parser, "--force")
     parser.add_argument("--hours", type=cli.positive_number("--hours"), default=None,
                         help="length of the run in hours")
     parser.add_argument("--no-latent-heating", action="store_true", help="switch off the demonstration heating")
@@ -911,7 +911,7 @@ def main(argv=None) -> int:
         bar.update(n + 1 - bar.n)
 
     try:
-        ds = build_sample(args.output, overwrite=args.force, progress=progress, **overrides)
+        ds = build_sample(args.output, overwrite=args.overwrite, progress=progress, **overrides)
     finally:
         bar.close()
     track = track_low(ds)

@@ -432,22 +432,22 @@ def main(argv=None) -> int:
 
     parser = cli.build_parser("pvwb explain", "QG tendency attribution: which piece's wind, carrying which "
                               "piece's PV, is changing the heights at the target (m per 6 h).")
-    parser.add_argument("case", nargs="?", help="case file (default: the invented sample storm)")
+    cli.add_case_argument(parser)
     cli.add_selection_options(parser)
     parser.add_argument("--time", default=None, help="time index or ISO time (default: the first)")
-    parser.add_argument("--member", default=None)
+    parser.add_argument("--member", default=None, help="ensemble member: index or label (default: the first)")
     parser.add_argument("--target", default=None, help="lon,lat,pressure_hPa (default: storm centre, 2nd level)")
     parser.add_argument("--pieces", default=None, help="JSON file with a list of pieces (default: standard pieces)")
     parser.add_argument("--reference", default=None, help="time_mean | area_mean | zonal_mean | PATH")
     parser.add_argument("--hold-lid", action="store_true", help="do not advect the lid's theta")
     parser.add_argument("-o", "--output", default=None, help="write the matrix as CSV")
-    parser.add_argument("--overwrite", action="store_true", help="replace an existing output file")
+    cli.add_overwrite_option(parser)
     args = parser.parse_args(argv)
     target = _parse_target(args.target)
     if args.output:
         cli.check_output(args.output, args.overwrite, suffixes=(".csv",), what="matrix")
     pieces = load_pieces(args.pieces) if args.pieces else None
-    case = wb.open_case(args.case or default_case_path(), **cli.selection_options(args))
+    case = wb.open_case(cli.case_source(args.case) or default_case_path(), **cli.selection_options(args))
     cli.check_target(case, target)
     cli.check_pieces(case, pieces)
     member = cli.member_arg(case, args.member)
@@ -466,9 +466,9 @@ def main(argv=None) -> int:
     for line in ex.summary:
         print(line)
     if args.output:
-        from .export import atomic_target
+        from .export import atomic_target, csv_text
 
         with atomic_target(args.output, overwrite=args.overwrite, what="matrix") as tmp:
-            tmp.write_text(ex.matrix.to_csv())
+            tmp.write_text(csv_text(ex.matrix))
         print(f"wrote {args.output}")
     return 0

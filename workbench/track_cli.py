@@ -35,7 +35,7 @@ def main(argv=None) -> int:
     from .tracking import tracked_shares
 
     parser = cli.build_parser("pvwb track", "Shares over time of pieces that follow their anomaly.")
-    parser.add_argument("case", nargs="?", help="case file (default: the invented sample storm)")
+    cli.add_case_argument(parser)
     cli.add_selection_options(parser)
     parser.add_argument("--pieces", required=True,
                         help="JSON file with a list of pieces; those with \"follow\": \"anomaly\" are tracked")
@@ -46,10 +46,10 @@ def main(argv=None) -> int:
                         help="storm (each time's storm centre, default), centroid (each tracked piece's centre) "
                              "or lon,lat,hPa")
     parser.add_argument("--reference", default=None, help="time_mean | area_mean | zonal_mean | PATH")
-    parser.add_argument("--member", default=None)
+    parser.add_argument("--member", default=None, help="ensemble member: index or label (default: the first)")
     parser.add_argument("-o", "--output", help="write the table as CSV")
     parser.add_argument("--plot", help="write the time-series figure (.png, .svg or .pdf)")
-    parser.add_argument("--overwrite", action="store_true")
+    cli.add_overwrite_option(parser)
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
     args = parser.parse_args(argv)
     target = _target(args.target)
@@ -60,7 +60,7 @@ def main(argv=None) -> int:
     pieces = load_pieces(args.pieces)
     import workbench as wb
 
-    case = wb.open_case(args.case or default_case_path(), **cli.selection_options(args))
+    case = wb.open_case(cli.case_source(args.case) or default_case_path(), **cli.selection_options(args))
     if isinstance(target, tuple):
         cli.check_target(case, target)
     cli.check_pieces(case, pieces)
@@ -81,10 +81,10 @@ def main(argv=None) -> int:
     for row in table[table.status.isin(["split", "merged", "split+merged", "lost"])].itertuples():
         print(f"note: {row.time} {row.piece}: {row.note}")
     if args.output:
-        from .export import atomic_target
+        from .export import atomic_target, csv_text
 
         with atomic_target(args.output, overwrite=args.overwrite, what="tracked-shares table") as tmp:
-            tmp.write_text(table.to_csv(index=False))
+            tmp.write_text(csv_text(table, index=False))
         print(f"wrote {args.output}")
     if args.plot:
         from .views.static import save_figure

@@ -524,7 +524,7 @@ def main(argv=None) -> int:
 
     parser = cli.build_parser("pvwb whatif", f"{LABEL}: change one PV piece of the analysis (scale, remove, "
                               "shift) and run the QG model forward, with the unchanged control.")
-    parser.add_argument("case", nargs="?", help="case file (default: the invented sample storm)")
+    cli.add_case_argument(parser)
     cli.add_selection_options(parser)
     parser.add_argument("--piece", required=True, help="name of the piece to change (e.g. 'upper trough')")
     parser.add_argument("--scale", type=_finite_number, default=1.0, help="multiply the piece by this (0 removes it; default 1)")
@@ -532,12 +532,12 @@ def main(argv=None) -> int:
     parser.add_argument("--hours", type=cli.positive_number("--hours"), default=36.0,
                         help=f"length of the run, a multiple of 6 up to {MAX_HOURS:g} (default 36)")
     parser.add_argument("--time", default=None, help="analysis time to start from (index or ISO; default the first)")
-    parser.add_argument("--member", default=None)
+    parser.add_argument("--member", default=None, help="ensemble member: index or label (default: the first)")
     parser.add_argument("--pieces", default=None, help="JSON file with a list of pieces (default: standard pieces)")
     parser.add_argument("--reference", default=None, help="time_mean | area_mean | zonal_mean | PATH")
     parser.add_argument("--moist", action="store_true", help="add the engine's demonstration latent heating")
     parser.add_argument("-o", "--output", default=None, help="write the run as netCDF")
-    parser.add_argument("--overwrite", action="store_true", help="replace an existing output file")
+    cli.add_overwrite_option(parser)
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
     args = parser.parse_args(argv)
     shift = (0.0, 0.0)
@@ -554,7 +554,7 @@ def main(argv=None) -> int:
     if args.output:
         cli.check_output(args.output, args.overwrite, suffixes=(".nc",), what="what-if file")
     pieces = load_pieces(args.pieces) if args.pieces else None
-    case = wb.open_case(args.case or default_case_path(), **cli.selection_options(args))
+    case = wb.open_case(cli.case_source(args.case) or default_case_path(), **cli.selection_options(args))
     cli.check_pieces(case, pieces)
     member = cli.member_arg(case, args.member)
     time = cli.time_arg(case, args.time)

@@ -42,6 +42,8 @@ from .fields import FIELDS
 from ..sections import great_circle_path
 from ..state import surface_label
 from ..textsafe import escape
+from .styles import (HEIGHT_NEGATIVE, HEIGHT_POSITIVE, OMEGA_ASCENT, OMEGA_DESCENT, height_key,
+                     lat_label, lon_label, omega_key)
 
 __all__ = ["MapView", "SectionView", "TextHTML", "TextMarkdown", "lon_label", "lat_label", "palette", "field_style", "coastline_lines", "FIELD_LABELS",
            "MODES"]
@@ -56,8 +58,8 @@ MODES = {"Pan / zoom": "pan", "Lasso a piece": "lasso", "Draw a section": "secti
 BALANCED_COLOUR = "#000000"
 WIND_COLOUR = "#8c8c8c"
 SECTION_COLOUR = "#1f1f1f"
-POS_CONTOUR = "#d55e00"
-NEG_CONTOUR = "#5e3c99"
+POS_CONTOUR = HEIGHT_POSITIVE["colour"]
+NEG_CONTOUR = HEIGHT_NEGATIVE["colour"]
 #: hover formatters: longitude as °E/°W, latitude as °N/°S (one decimal)
 _JS_LON = ("const x = ((value + 180) % 360 + 360) % 360 - 180;"
            "const a = Math.abs(x).toFixed(1);"
@@ -525,7 +527,8 @@ class MapView:
                  text_font_size="12px", text_font_style="bold", text_align="center",
                  text_baseline="middle", background_fill_color="white",
                  background_fill_alpha=0.7)
-        for key, colour, dash in (("zpos", POS_CONTOUR, "solid"), ("zneg", NEG_CONTOUR, "dashed")):
+        for key, colour, dash in (("zpos", POS_CONTOUR, HEIGHT_POSITIVE["dash"]),
+                                  ("zneg", NEG_CONTOUR, HEIGHT_NEGATIVE["dash"])):
             fig.multi_line("xs", "ys", source=src[key], line_color="white", line_width=4.0,
                            line_alpha=0.7)  # a halo keeps the lines legible on any shading
             fig.multi_line("xs", "ys", source=src[key], line_color=colour, line_width=2.0,
@@ -762,8 +765,7 @@ class MapView:
         self._set("zneg", dict(xs=xs, ys=ys))
         names = ", ".join(ov.attrs["pieces"])
         self.key.text = (f"balanced flow at {ov.attrs['level_hpa']:g} hPa of {names}: "
-                         f"arrow ≈ {ref:g} m/s per spacing; Z′ every {step:g} m "
-                         "(orange +, purple dashed −)")
+                         f"arrow ≈ {ref:g} m/s per spacing; {height_key(step)}")
 
     # ---------------------------------------------------------------- read-outs (hover)
     def _build_readout(self, fig):
@@ -1115,10 +1117,12 @@ class SectionView:
         self._lines(low, "bw_pos", "#000000", width=1.5)
         self._lines(low, "bw_neg", "#000000", dash="dashed", width=1.5)
         self._labels(low, "bw_labels", "#000000")
-        self._lines(low, "om_up", "#cc79a7", dash="dashed", width=2)
-        self._lines(low, "om_down", "#cc79a7", width=1.2)
+        self._lines(low, "om_up", OMEGA_ASCENT["colour"], dash=OMEGA_ASCENT["dash"],
+                    width=OMEGA_ASCENT["width"])
+        self._lines(low, "om_down", OMEGA_DESCENT["colour"], dash=OMEGA_DESCENT["dash"],
+                    width=OMEGA_DESCENT["width"])
         bw = low.line([], [], line_color="#000000")
-        om = low.line([], [], line_color="#cc79a7", line_width=2)
+        om = low.line([], [], line_color=OMEGA_ASCENT["colour"], line_width=OMEGA_ASCENT["width"])
         self.low_legend = Legend(items=[LegendItem(label="balanced normal wind", renderers=[bw]),
                                         LegendItem(label="QG ω due to the pieces", renderers=[om])])
         _legend_below(low, self.low_legend)
@@ -1241,7 +1245,7 @@ class SectionView:
                 olev = np.arange(ostep, omax + ostep, ostep)
                 self._set_lines("om_up", d, p, om, -olev)
                 self._set_lines("om_down", d, p, om, olev)
-                text = f"QG ω due to the pieces every {ostep:g} Pa/s (dashed: ascent)"
+                text = omega_key("due to the pieces", ostep)
         self.low_legend.items[1].label = value(text)
 
 
@@ -1254,20 +1258,7 @@ def _legend_below(fig, legend):
     fig.add_layout(legend, "below")
 
 
-def lon_label(lon: float, digits: int = 1) -> str:
-    """A longitude as °E / °W (0 and 180 without a letter), e.g. ``-43.5`` -> ``43.5°W``."""
-    x = (float(lon) + 180.0) % 360.0 - 180.0
-    if abs(x) < 0.5 * 10 ** -digits or abs(abs(x) - 180.0) < 0.5 * 10 ** -digits:
-        return f"{abs(x):.{digits}f}°"
-    return f"{abs(x):.{digits}f}°{'E' if x > 0 else 'W'}"
-
-
-def lat_label(lat: float, digits: int = 1) -> str:
-    """A latitude as °N / °S, e.g. ``-33`` -> ``33.0°S``."""
-    y = float(lat)
-    if abs(y) < 0.5 * 10 ** -digits:
-        return f"{0:.{digits}f}°"
-    return f"{abs(y):.{digits}f}°{'N' if y > 0 else 'S'}"
+# lon_label / lat_label: from .styles (shared with the command line and the figures)
 
 
 def _cell_data(d, p, values):

@@ -46,6 +46,8 @@ import cartopy.crs as ccrs
 import workbench.annotations as ann
 from workbench.errors import ExportError, InputError
 from workbench.export import CAUTION, atomic_target, invented_label, package_version
+from workbench.views.styles import (HEIGHT_NEGATIVE, HEIGHT_POSITIVE, OMEGA_ASCENT, OMEGA_COLOURS,
+                                    OMEGA_DESCENT, height_key, lat_label, lon_label, omega_key)
 from workbench.views.fields import FIELDS
 from workbench.session import PROJECTIONS, FigureSettings
 
@@ -773,9 +775,11 @@ def draw_map(data: MapData, settings: FigureSettings | dict | None = None,
         z = np.asarray(o.height_anomaly.transpose("latitude", "longitude").values, float)
         zlev, zstep = _symmetric_levels(z, floor=NEGLIGIBLE["height"])
         if zlev:
-            cs = ax.contour(lon_c, lat_c, closed(z), levels=zlev, colors=o.colour, linewidths=1.4,
-                            linestyles=["dashed" if x < 0 else "solid" for x in zlev],
-                            transform=data_crs, zorder=4)
+            # signs drawn as in the page (views.styles): orange solid positive, purple dashed negative
+            sty = [HEIGHT_NEGATIVE if x < 0 else HEIGHT_POSITIVE for x in zlev]
+            cs = ax.contour(lon_c, lat_c, closed(z), levels=zlev, colors=[t["colour"] for t in sty],
+                            linewidths=[0.7 * t["width"] for t in sty],
+                            linestyles=[t["dash"] for t in sty], transform=data_crs, zorder=4)
             ax.clabel(cs, fmt="%g", fontsize=7)
         sy = max(1, lat.size // settings.vector_spacing)
         sx = max(1, lon.size // settings.vector_spacing)
@@ -790,7 +794,7 @@ def draw_map(data: MapData, settings: FigureSettings | dict | None = None,
                      color=o.colour)
         desc = f"{o.name}: balanced flow at {o.level_hpa:g} hPa"
         if zstep:
-            desc += f", height anomaly every {zstep:g} m (dashed < 0)"
+            desc += f"; {height_key(zstep)}"
         handles.append(Line2D([], [], color=o.colour, lw=1.6, label=desc))
     if handles:
         ax.legend(handles=handles, loc="lower left", fontsize=7.5, framealpha=0.85)
@@ -1012,10 +1016,8 @@ def section_data(
 
 
 def _fmt_point(lon, lat) -> str:
-    ew = "E" if lon >= 0 else "W"
-    ns = "N" if lat >= 0 else "S"
-    lon_n = ((lon + 180.0) % 360.0) - 180.0
-    return f"{abs(lat):.1f}{ns} {abs(lon_n):.1f}{ew}"
+    """A section end as the page writes it: ``(30.0°W, 45.0°N)``."""
+    return f"({lon_label(lon)}, {lat_label(lat)})"
 
 
 def draw_section(data: SectionData, settings: FigureSettings | dict | None = None,
@@ -1091,23 +1093,22 @@ def draw_section(data: SectionData, settings: FigureSettings | dict | None = Non
             for n in ds["qg_omega"]["piece"].values:
                 omegas.append((f"of {n}", ds["qg_omega"].sel(piece=n)))
         else:
-            omegas.append(("of the full flow", ds["qg_omega"]))
+            omegas.append(("of the full inversion", ds["qg_omega"]))
     if "piece_qg_omega" in ds and data.omega_pieces:
         for n in ds["piece_qg_omega"]["piece"].values:
             if str(n) in data.omega_pieces:
                 omegas.append((f"due to {n}", ds["piece_qg_omega"].sel(piece=n)))
-    # greys: piece colours take the colour-blind-safe hues
-    omega_styles = (("#606060", 1.1), ("#9a9a9a", 1.1), ("#303030", 1.1))
+    # drawn as in the page (views.styles): ascent (omega < 0) dashed, descent solid
     for k, (olabel, om) in enumerate(omegas):
         ov = np.asarray(om.values, float)
         ol, ostep = _symmetric_levels(ov, floor=NEGLIGIBLE["omega"])
-        colour, lw = omega_styles[k % len(omega_styles)]
+        colour = OMEGA_COLOURS[k % len(OMEGA_COLOURS)]
         if ol:
-            ax.contour(x, p, ov, levels=ol, colors=colour, linewidths=lw,
-                       linestyles=["solid" if v < 0 else "dotted" for v in ol], zorder=5)
-            handles.append(Line2D([], [], color=colour, lw=lw,
-                                  label=f"QG omega {olabel} (every {ostep:g} Pa s-1; "
-                                        "solid < 0 ascent, dotted > 0 descent)"))
+            sty = [OMEGA_ASCENT if v < 0 else OMEGA_DESCENT for v in ol]
+            ax.contour(x, p, ov, levels=ol, colors=colour, linewidths=[0.7 * t["width"] for t in sty],
+                       linestyles=[t["dash"] for t in sty], zorder=5)
+            handles.append(Line2D([], [], color=colour, lw=0.7 * OMEGA_ASCENT["width"],
+                                  ls=OMEGA_ASCENT["dash"], label=omega_key(olabel, ostep)))
     ax.set_yscale("log")
     ticks = [t for t in (1000, 850, 700, 600, 500, 400, 300, 250, 200, 150, 100, 70, 50)
              if p.min() - 1e-6 <= t <= p.max() + 1e-6]
