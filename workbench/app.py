@@ -414,7 +414,10 @@ def serve(case=None, address="127.0.0.1", port=0, data_dirs=None, token=None, sh
         raise InputError(f"cannot listen on {address} port {port}: {os_error_message(exc)}") from None
     host = f"[{address}]" if ":" in address else address
     if verbose:
+        from .export import CAUTION
+
         print(f"PV Workbench at http://{host}:{server.port}/", flush=True)
+        print(CAUTION, flush=True)
         if data_dirs:
             print("data folders: " + ", ".join(str(d) for d in _folders(data_dirs)), flush=True)
         out = _folders([output_dir]) if output_dir else _folders(data_dirs)[:1]
@@ -430,8 +433,9 @@ def serve(case=None, address="127.0.0.1", port=0, data_dirs=None, token=None, sh
 
 
 def main(argv=None):
-    """``pvwb serve [CASE] [--port N] [--address A] [--token-file F] [--data-dir D ...]
-    [--output-dir O] [--region W,E,S,N] [--times SPEC]``.
+    """``pvwb serve [CASE ...] [--page-port N] [--page-address A] [--token-file F]
+    [--data-folder D ...] [--output-folder O] [--open-page] [--region W,E,S,N] [--times SPEC]``
+    (``--port``, ``--address``, ``--data-dir``, ``--output-dir``, ``--show`` are hidden aliases).
 
     The token (needed off loopback, optional on it) comes from the environment variable
     PVWB_TOKEN or from ``--token-file``, never from the command line, where every user of the
@@ -443,22 +447,33 @@ def main(argv=None):
     if argv and argv[0] == "serve":
         argv = argv[1:]
     ap = cli.build_parser("pvwb serve", "Serve the PV Workbench page in a browser.")
-    ap.add_argument("case", nargs="?", help="case file (netCDF, GRIB2 or Zarr)")
+    cli.add_case_argument(ap)
     cli.add_selection_options(ap)
-    ap.add_argument("--port", type=cli.port_number, default=0,
-                    help="port 1..65535 (default 0: any free port)")
-    ap.add_argument("--address", type=cli.host_address, default="127.0.0.1",
-                    help=f"address to bind (default 127.0.0.1; others need a token: {TOKEN_ENV} or --token-file)")
+    # the project's own option names; the older generic names stay accepted, hidden from --help
+    hidden = argparse.SUPPRESS
+    ap.add_argument("--page-port", dest="port", type=cli.port_number, default=0, metavar="N",
+                    help="port of the page, 1..65535 (default 0: any free port)")
+    ap.add_argument("--port", dest="port", type=cli.port_number, help=hidden)
+    ap.add_argument("--page-address", dest="address", type=cli.host_address, default="127.0.0.1",
+                    metavar="ADDRESS",
+                    help=f"address the page listens on (default 127.0.0.1; others need the access key: "
+                         f"{TOKEN_ENV} or --token-file)")
+    ap.add_argument("--address", dest="address", type=cli.host_address, help=hidden)
     ap.add_argument("--token-file", dest="token_file", metavar="FILE",
-                    help=f"file whose first line is the secret the page asks for (default: env {TOKEN_ENV})")
-    ap.add_argument("--token", "--password", dest="cmdline_token", metavar="SECRET", help=argparse.SUPPRESS)
-    ap.add_argument("--data-dir", action="append", dest="data_dirs",
+                    help=f"file whose first line is the access key the page asks for (default: the "
+                         f"environment variable {TOKEN_ENV})")
+    ap.add_argument("--token", "--password", dest="cmdline_token", metavar="SECRET", help=hidden)
+    ap.add_argument("--data-folder", action="append", dest="data_dirs", metavar="FOLDER",
                     help="folder the page may open files from (repeatable; default: the "
                          "case's folder)")
-    ap.add_argument("--output-dir", dest="output_dir",
+    ap.add_argument("--data-dir", action="append", dest="data_dirs", help=hidden)
+    ap.add_argument("--output-folder", dest="output_dir", metavar="FOLDER",
                     help="folder the page saves sessions, figures and exports to (default: "
                          "the first data folder)")
-    ap.add_argument("--show", action="store_true", help="open a browser tab")
+    ap.add_argument("--output-dir", dest="output_dir", help=hidden)
+    ap.add_argument("--open-page", dest="show", action="store_true",
+                    help="open the page in a browser tab on this machine")
+    ap.add_argument("--show", dest="show", action="store_true", help=hidden)
     args = ap.parse_args(argv)
     try:
         if args.cmdline_token is not None:
@@ -473,7 +488,7 @@ def main(argv=None):
                     raise InputError(f"data folder {d!r} does not exist; give an existing folder")
         if args.output_dir is not None and not Path(args.output_dir).expanduser().is_dir():
             raise InputError(f"output folder {args.output_dir!r} does not exist; create it first")
-        case = args.case
+        case = cli.case_source(args.case)
         sel = cli.selection_options(args)
         if case is not None and sel:
             from .io import open_case
