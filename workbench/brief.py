@@ -732,7 +732,7 @@ def main(argv=None) -> int:
     except WorkbenchError as exc:
         print(f"pvwb brief: error: {cli.one_line(exc)}", file=sys.stderr)
         return 2
-    print(f"briefing written to {out}")
+    print(f"briefing written to {out}. {CAUTION}")
     return 0
 
 

@@ -357,7 +357,9 @@ def summarise(matrix, total, target, top=True, n_terms=3):
     """Plain-language sentences about the largest entries, rows and columns."""
     lon, lat, p = target
     trend = "falling (the low deepens)" if total < 0 else "rising (the low fills)"
-    out = [f"QG height tendency at {lon:.1f} E, {lat:.1f} N, {p:g} hPa: {_describe(total)}, heights {trend}."]
+    from .views.styles import lat_label, lon_label
+
+    out = [f"QG height tendency at {lon_label(lon)}, {lat_label(lat)}, {p:g} hPa: {_describe(total)}, heights {trend}."]
     vals = matrix.values
     order = np.argsort(-np.abs(vals), axis=None)[:n_terms]
     for flat in order:
@@ -454,14 +456,16 @@ def main(argv=None) -> int:
     time = cli.time_arg(case, args.time)
     ex = explain(case, time, pieces, target, member=member, reference=args.reference, top=not args.hold_lid)
     print(f"{LABEL}\n")
-    print(f"{ex.time}  target {ex.target[0]:.1f} E, {ex.target[1]:.1f} N, {ex.target[2]:g} hPa; "
+    from .views.styles import lat_label, lon_label
+
+    print(f"{ex.time}  target {lon_label(ex.target[0])}, {lat_label(ex.target[1])}, {ex.target[2]:g} hPa; "
           f"reference {str(ex.matrix.attrs.get('reference')).replace('_', ' ')}")
     for note in ex.notes:
         print(f"note: {note}")
     print("height tendency (m per 6 h); rows: the wind of; columns: the PV/theta of")
     with pd.option_context("display.width", 200, "display.max_columns", 20):
         print(ex.matrix.to_string(float_format="{:+.1f}".format))
-    print(f"sum of entries {ex.matrix.values.sum():+.2f}, total QG tendency {ex.total:+.2f} "
+    print(f"sum of entries {ex.matrix.values.sum():+.2f}, QG tendency of the full inversion {ex.total:+.2f} "
           f"(closure {ex.closure_error:.1e})\n")
     for line in ex.summary:
         print(line)
