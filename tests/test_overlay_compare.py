@@ -258,7 +258,7 @@ def test_file_list_shows_times_and_sizes(bench, data_dir):
     row = table.loc["data/wave.nc"]
     assert row["times"].startswith("2: 2031-01-01 00:00 … 2031-01-01 06:00")
     assert row["size"].endswith(("kB", "MB"))
-    assert table.loc["data/notes.txt", "note"] == "not a data file"
+    assert table.loc["data/notes.txt", "times"] == "not a data file"
 
 
 def test_upload_a_good_file_opens_it(bench, small_case_path, data_dir):

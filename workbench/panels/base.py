@@ -24,7 +24,7 @@ def offline_extension(comms=None):
         # gets them from the server's own static routes)
         pn.config.inline = True
         kw["inline"] = True
-    pn.extension("tabulator", raw_css=[_CSS], notifications=False, **kw)
+    pn.extension("tabulator", "filedropper", raw_css=[_CSS], notifications=False, **kw)
 
 
 def notebook_bundle(obj, include=None, exclude=None):

@@ -185,8 +185,8 @@ def data_file_table(data_dirs, limit=500):
         times = "" if info["times"] is None else (
             f"{info['times']}: {info['first']} … {info['last']} UTC" if info["first"] else
             str(info["times"]))
-        rows.append({"file": label, "size": _size_text(info["size"]), "times": times,
-                     "note": info["note"], "path": path})
+        rows.append({"file": label, "size": _size_text(info["size"]),
+                     "times": times or info["note"], "note": info["note"], "path": path})
     return pd.DataFrame(rows, columns=["file", "size", "times", "note", "path"])
 
 
@@ -220,7 +220,9 @@ class FilePanel(StatePanel):
         self.open_button.on_click(lambda e: self._guard(self.open_file))
         self.file_table = pn.widgets.Tabulator(
             data_file_table([]), disabled=True, selectable=1, show_index=False,
-            hidden_columns=["path"], layout="fit_data_table", height=160, width=260,
+            hidden_columns=["path", "note"], layout="fit_columns", height=170, width=262,
+            widths={"file": 100, "size": 58, "times": 102},
+            formatters={"file": {"type": "textarea"}, "times": {"type": "textarea"}},
             sizing_mode="fixed", css_classes=["pvwb-file-table"], name="pvwb-file-table")
         self.file_table.param.watch(lambda ev: self._guard(self._picked, ev.new), "selection")
         self.refresh_files_button = pn.widgets.Button(label="Refresh list", width=110,
