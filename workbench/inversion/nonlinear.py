@@ -252,8 +252,9 @@ class BalanceGrid:
                               + D[-1, -1] * a[..., -1, :, :])
         return out
 
-    def lap_and_div_f_grad(self, a):
-        """(lap a, div(f grad a)) at the interior nodes, sharing the differences of a."""
+    def lap_and_div_f_grad(self, a, coeffs=None):
+        """(lap a, div(f grad a)) at the interior nodes, sharing the differences of a
+        (``coeffs``: the two coefficient dicts, default the grid's float64 ones)."""
         if self.periodic:
             c = a[..., 1:-1, :]
             dz = np.roll(c, -1, axis=-1) + np.roll(c, 1, axis=-1)
@@ -267,7 +268,7 @@ class BalanceGrid:
         dz -= c
         dz -= c
         out = []
-        for co in (self.hc, self.divf):
+        for co in coeffs or (self.hc, self.divf):
             o = co["north"][:, None] * dn
             o -= co["south"][:, None] * ds
             o += co["zonal"][:, None] * dz
@@ -489,7 +490,7 @@ class _Jacobian:
         spp[0] = grad[0]
         spp[-1] = -grad[-1]
         spp *= self._rhs
-        lapY = g._flux_form(Y, self._hc)
+        lapY, divfY = g.lap_and_div_f_grad(Y, (self._hc, self._divf))
         r1 = self.cE * g.interior(spp)
         r1 += self.cS * lapY
         Xp = self._dpi(X, False)
@@ -508,7 +509,7 @@ class _Jacobian:
         r1 -= t
         # balance equation
         r2 = g._flux_form(X, self._hc)
-        r2 -= g._flux_form(Y, self._divf)
+        r2 -= divfY
         lapY *= self.c_lap
         r2 += lapY
         Yi = Y[..., ls]
