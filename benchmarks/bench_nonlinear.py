@@ -31,8 +31,9 @@ def main(argv=None):
         for r in records:
             extra = ""
             if r["method"] == "nonlinear_balance":
-                extra = (f" ({r['first_guess']}) = {r['qg_solves']:.0f} QG solves, Newton {r['newton_iterations']}, GMRES "
-                         f"{r['gmres_iterations']}, residual {r['final_relative_residual']:.1e}")
+                extra = (f" ({r['first_guess']}) = {r['qg_solves']:.0f} QG solves ({r['qg_solves_cpu']:.0f} by CPU "
+                         f"time), Newton {r['newton_iterations']}, GMRES {r['gmres_iterations']}, residual "
+                         f"{r['final_relative_residual']:.1e}")
             print(f"{r['grid']:7} {'x'.join(map(str, r['shape'])):>10} {r['method']:18} {r['median_s']:.4g} s{extra}")
     return records
 

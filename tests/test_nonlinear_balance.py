@@ -282,3 +282,58 @@ def test_floored_point_on_model_top_is_refused_clearly():
     assert not res.converged and res.n_pv_floored == 1
     with pytest.raises(DomainError, match="model top level"):
         nl._require_converged(res, "full inversion")
+
+
+def test_single_precision_inner_solves_reach_the_same_answer():
+    # the inner GMRES solves run in single precision by default; the residual and the stopping test
+    # are double precision, so both settings must give the same discrete solution (difference
+    # bounded by the tolerance times the conditioning, far below the 1e-8 of the newton_krylov check)
+    g, q, tb, tt, Phi, psi = nl.bench_problem((7, 15, 19), amplitude=1.0)
+    single = nl.solve_balance(g, q, tb, tt, Phi, psi, guess=(Phi, psi), tol=1e-11)
+    double = nl.solve_balance(g, q, tb, tt, Phi, psi, guess=(Phi, psi), tol=1e-11, inner_precision="double")
+    assert single.converged and double.converged
+    assert single.inner_precision == "single" and double.inner_precision == "double"
+    assert single.residual_history[-1] <= 1e-11 and double.residual_history[-1] <= 1e-11
+    assert np.abs(single.Phi - double.Phi).max() <= 1e-9 * np.abs(double.Phi).max()
+    assert np.abs(single.psi - double.psi).max() <= 1e-9 * np.abs(double.psi).max()
+    assert sum(single.gmres_per_newton) == single.gmres_iterations
+    assert len(single.gmres_per_newton) == single.newton_iterations
+
+
+def test_right_preconditioned_gmres_solves_a_linear_system():
+    # the small GMRES loop against numpy.linalg.solve (LAPACK) on a non-symmetric system with a
+    # Jacobi preconditioner, in double and in single precision
+    rng = np.random.default_rng(7)
+    n = 60
+    A = np.eye(n) * 4.0 + rng.standard_normal((n, n)) * 0.3 + np.diag(np.linspace(1.0, 6.0, n))
+    b = rng.standard_normal(n)
+    exact = np.linalg.solve(A, b)
+    dinv = 1.0 / np.diag(A)
+    for dt, rtol, tol_x in ((np.float64, 1e-12, 1e-10), (np.float32, 1e-5, 1e-4)):
+        Ad = A.astype(dt)
+        x, its, rel = nl._gmres_right(lambda v: Ad @ v, lambda v: (dinv * v).astype(dt), b.astype(dt), rtol, 200,
+                                      restart=25)
+        assert x.dtype == dt and rel <= rtol and 0 < its <= 200
+        assert np.abs(x - exact).max() <= tol_x * np.abs(exact).max()
+        assert np.linalg.norm(b - A @ x) <= 10 * rtol * np.linalg.norm(b)
+
+
+def test_progress_is_reported_once_per_newton_step():
+    g, q, tb, tt, Phi, psi = nl.bench_problem((6, 11, 13), amplitude=1.0)
+    calls = []
+    res = nl.solve_balance(g, q, tb, tt, Phi, psi, guess=(Phi, psi), progress=lambda f, t: calls.append((f, t)))
+    assert len(calls) == res.newton_iterations >= 2
+    fr = [f for f, _ in calls]
+    assert all(0.0 <= f <= 1.0 for f in fr) and fr == sorted(fr) and fr[-1] == 1.0
+    assert "relative residual" in calls[0][1]
+
+
+def test_bench_records_name_the_balance_and_the_cost():
+    recs = nl.bench_nonlinear("tiny", (5, 11, 13), repeat=1)
+    assert [r["method"] for r in recs] == ["qg_balance", "nonlinear_balance", "nonlinear_balance"]
+    for r in recs[1:]:
+        assert r["converged"] and r["final_relative_residual"] <= r["tol"]
+        assert r["qg_solves"] == pytest.approx(r["median_s"] / recs[0]["median_s"])
+        assert r["qg_solves_cpu"] > 0 and r["target_qg_solves"] == 30
+        assert r["newton_iterations"] == len(r["residual_history"]) - 1 == len(r["gmres_per_newton"])
+        assert r["preconditioner_applications"] >= r["gmres_iterations"] > 0 and r["preconditioner_builds"] >= 1

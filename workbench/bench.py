@@ -287,9 +287,10 @@ def _table(records):
         if r.get("fast_speedup") is not None:
             notes.append(f"fast solver {r['fast_speedup']:.0f}x faster")
         if r.get("qg_solves") is not None:  # nonlinear balance (workbench.inversion.nonlinear.bench_nonlinear)
-            notes.append(f"{r['qg_solves']:.0f} QG solves, Newton {r['newton_iterations']}, GMRES "
-                         f"{r['gmres_iterations']}, residual {r['final_relative_residual']:.1e}, "
-                         f"first guess {r['first_guess']}")
+            cpu = r.get("qg_solves_cpu")
+            notes.append(f"{r['qg_solves']:.0f} QG solves" + ("" if cpu is None else f" ({cpu:.0f} by CPU time)")
+                         + f", Newton {r['newton_iterations']}, GMRES {r['gmres_iterations']}, residual "
+                         f"{r['final_relative_residual']:.1e}, first guess {r['first_guess']}")
         if r.get("method") == "analyse":
             notes.append(f"peak {r['peak_mem_mb']:.0f} MB = {r['mem_ratio']:.1f}x one time's input "
                          f"({r['input_mb']:.1f} MB), solver {100 * r['solver_share']:.0f} % of the time")
