@@ -703,8 +703,8 @@ class State(param.Parameterized):
         return out
 
     def _label(self):
-        t = self.time_labels[self.time_index]
-        return t + ("" if self.member is None else f" m{self.member}")
+        t = str(self.valid_time)[:13].replace("T", " ") + " UTC"
+        return t + ("" if self.member is None else f" member {self.member}")
 
     def attribution(self, target=None):
         """Each piece's share at the target point (lon, lat, pressure hPa), a pandas DataFrame
