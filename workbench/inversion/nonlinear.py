@@ -425,22 +425,28 @@ class _Jacobian:
         self._w = [np.asarray(w, dt)[:, None] for w in g._dphi_w]  # d/dlat weights per interior row
         self._v = [np.asarray(w, dt)[:, None] for w in g._d2phi_w]  # d2/dlat2 weights
         inv_x = 1.0 / (2.0 * g.dlam * a * g.cos)  # raw centred lon difference -> d/dx
+        shape = g.interior_shape
 
-        def c(x):
-            return np.asarray(x, dt)
+        def c(x, factor):
+            """x * factor written straight into ``dtype`` (one pass over the field)"""
+            out = np.empty(shape, dt)
+            np.multiply(x, factor, out=out, casting="same_kind" if dt == np.float64 else "unsafe")
+            return out
 
-        self.cE = c(C * eta)
-        self.cS = c(C * (d["Spp"] if clipped is None else np.where(clipped, 0.0, d["Spp"])))
-        self.cspx = c(C * d["spx"] * inv_x)
-        self.cPpx = c(C * d["Ppx"] * inv_x)
-        self.cspy = c(C * d["spy"] / a)
-        self.cPpy = c(C * d["Ppy"] / a)
+        self.cE = c(eta, C)
+        self.cS = c(d["Spp"] if clipped is None else np.where(clipped, 0.0, d["Spp"]), C)
+        self.cspx = c(d["spx"], C * inv_x)
+        self.cPpx = c(d["Ppx"], C * inv_x)
+        self.cspy = c(d["spy"], C / a)
+        self.cPpy = c(d["Ppy"], C / a)
         hxx, hyy, hxy = d["hxx"], d["hyy"], d["hxy"]
-        self.c_lap = c(-2.0 * hyy)
-        self.c_d2 = c(-2.0 * (hxx - hyy) / a ** 2)
-        self.c_lat = c(2.0 * d["psy"] / a ** 3)
-        self.c_xy = c(4.0 * hxy / (a * a * g.cos * 2.0 * g.dlam))
-        self.c_lon = c((4.0 * hxy * g.tan / (a * a * g.cos) + 2.0 * d["psx"] / (a ** 3 * g.cos)) / (2.0 * g.dlam))
+        self.c_lap = c(hyy, -2.0)
+        self.c_d2 = c(hxx - hyy, -2.0 / a ** 2)
+        self.c_lat = c(d["psy"], 2.0 / a ** 3)
+        self.c_xy = c(hxy, 4.0 / (a * a * g.cos * 2.0 * g.dlam))
+        lon = hxy * (4.0 * g.tan / (a * a * g.cos * 2.0 * g.dlam))
+        lon += d["psx"] * (2.0 / (a ** 3 * g.cos * 2.0 * g.dlam))
+        self.c_lon = c(lon, 1.0)
         self._hc, self._divf = g.coefficients(dt)
         self._rdpi = (1.0 / g.dpi).astype(dt)[:, None, None]
         self._rhs = (1.0 / g.hs).astype(dt)[:, None, None]
