@@ -337,3 +337,35 @@ def test_bench_records_name_the_balance_and_the_cost():
         assert r["qg_solves_cpu"] > 0 and r["target_qg_solves"] == 30
         assert r["newton_iterations"] == len(r["residual_history"]) - 1 == len(r["gmres_per_newton"])
         assert r["preconditioner_applications"] >= r["gmres_iterations"] > 0 and r["preconditioner_builds"] >= 1
+
+
+@pytest.mark.parametrize("periodic,uniform", [(True, True), (False, False), (True, False)])
+def test_jacobian_product_on_periodic_and_non_uniform_grids(periodic, uniform):
+    # the in-place Jacobian product (both precisions) against the central difference of the residual
+    # (common practice; exact up to round-off for this quadratic system) on a 360-degree grid and on
+    # non-uniform latitudes, the two stencil branches the benchmark grid does not reach
+    lat = np.linspace(30.0, 70.0, 11) if uniform else np.array([30, 33, 37, 40, 44, 47, 52, 56, 61, 65, 70.0])
+    lon = np.arange(0.0, 360.0, 20.0) if periodic else np.linspace(-40.0, 40.0, 13)
+    g = nl.BalanceGrid(lat, lon, np.linspace(100000.0, 20000.0, 6))
+    assert g.periodic == periodic and g.uniform_lat == uniform
+    Phi, u, v, tb, tt = nl._invented_state(g, 0.5)
+    psi = nl.streamfunction(g, u, v)
+    q = nl.ertel_pv_nb(g, Phi, psi, tb, tt)
+    rng = np.random.default_rng(11)
+    a = rng.standard_normal(g.interior_shape) * 50.0
+    b = rng.standard_normal(g.interior_shape) * 5.0e5
+    d = nl._terms(g, Phi, psi, tb, tt)
+    h = 1e-3
+    P1, S1, P2, S2 = Phi.copy(), psi.copy(), Phi.copy(), psi.copy()
+    for arr, x, s in ((P1, a, h), (S1, b, h), (P2, a, -h), (S2, b, -h)):
+        arr[:, 1:-1, g.ls] += s * x
+    rp, rm = nl.balance_residual(g, P1, S1, q, tb, tt), nl.balance_residual(g, P2, S2, q, tb, tt)
+    for dtype, rtol in ((np.float64, 1e-7), (np.float32, 2e-5)):
+        J = nl._Jacobian(g, d, g.fi + d["zeta"], None, dtype=dtype)
+        j1, j2 = (x.copy() for x in J.apply(a.astype(dtype), b.astype(dtype)))
+        J.apply(b.astype(dtype), a.astype(dtype))  # work arrays are reused: a second product must not leak in
+        j1b, j2b = J.apply(a.astype(dtype), b.astype(dtype))
+        for j, jb, x, y in ((j1, j1b, rp[0], rm[0]), (j2, j2b, rp[1], rm[1])):
+            fd = (x - y) / (2 * h)
+            assert np.abs(j - fd).max() <= rtol * np.abs(fd).max()
+            assert np.array_equal(j, jb)

@@ -452,6 +452,7 @@ class _Jacobian:
         self._rhs = (1.0 / g.hs).astype(dt)[:, None, None]
         self._X = np.zeros(g.shape, dt)
         self._Y = np.zeros(g.shape, dt)
+        self._work = {}
 
     def _dlon(self, b):
         """Raw centred longitude difference b[i+1] - b[i-1] at the interior longitudes."""
@@ -459,13 +460,16 @@ class _Jacobian:
             return np.roll(b, -1, axis=-1) - np.roll(b, 1, axis=-1)
         return b[..., 2:] - b[..., :-2]
 
-    def _dpi(self, b, ends):
+    def _dpi(self, b, ends, out=None):
         lo, md, up = self._dpi_w
-        out = np.empty(b.shape, b.dtype)
+        out = np.empty(b.shape, b.dtype) if out is None else out
+        tmp = self._buf("dpi_t", b.shape)[1:-1]
         o = out[1:-1]
         np.multiply(lo, b[:-2], out=o)
-        o += md * b[1:-1]
-        o += up * b[2:]
+        np.multiply(md, b[1:-1], out=tmp)
+        o += tmp
+        np.multiply(up, b[2:], out=tmp)
+        o += tmp
         if ends:
             e = self._dpi_end
             out[0] = e[0] * b[0] + e[1] * b[1] + e[2] * b[2]
@@ -475,64 +479,120 @@ class _Jacobian:
             out[-1] = 0.0
         return out
 
-    def _lat(self, b, w):
-        """w[0] b[j-1] + w[1] b[j] + w[2] b[j+1] at the interior rows (b: all rows); w per row."""
-        out = w[0] * b[..., :-2, :]
-        out += w[2] * b[..., 2:, :]
-        if w is self._v or not self._uniform:
-            out += w[1] * b[..., 1:-1, :]
+    def _buf(self, name, shape):
+        """A work array of this operator, reused by every product (no allocation per product)."""
+        b = self._work.get(name)
+        if b is None:
+            b = self._work[name] = np.empty(shape, self.dtype)
+        return b
+
+    def _dlon_into(self, b, out):
+        """Raw centred longitude difference b[i+1] - b[i-1] at the interior longitudes, into out."""
+        if self.g.periodic:
+            np.subtract(b[..., 2:], b[..., :-2], out=out[..., 1:-1])
+            np.subtract(b[..., 1], b[..., -1], out=out[..., 0])
+            np.subtract(b[..., 0], b[..., -2], out=out[..., -1])
+        else:
+            np.subtract(b[..., 2:], b[..., :-2], out=out)
         return out
 
+    def _lat_into(self, b, w, out, tmp):
+        """w[0] b[j-1] + w[1] b[j] + w[2] b[j+1] at the interior rows (b: all rows), into out."""
+        if self._uniform and w is self._w:  # w[0] = -w[2], w[1] = 0
+            np.subtract(b[..., 2:, :], b[..., :-2, :], out=out)
+            out *= w[2]
+            return out
+        np.multiply(b[..., :-2, :], w[0], out=out)
+        np.multiply(b[..., 2:, :], w[2], out=tmp)
+        out += tmp
+        np.multiply(b[..., 1:-1, :], w[1], out=tmp)
+        out += tmp
+        return out
+
+    def _flux_into(self, a, cos, outs, c):
+        """Flux-form operators (north/south/zonal coefficient dicts ``cos``) of a at the interior
+        nodes into ``outs``, sharing the differences of a; ``c`` the centre view of a."""
+        g = self.g
+        sh = outs[0].shape
+        dn, ds, dz = self._buf("dn", sh), self._buf("ds", sh), self._buf("dz", sh)
+        if g.periodic:
+            np.subtract(a[..., 2:, :], c, out=dn)
+            np.subtract(c, a[..., :-2, :], out=ds)
+            np.add(c[..., 2:], c[..., :-2], out=dz[..., 1:-1])
+            np.add(c[..., 1], c[..., -1], out=dz[..., 0])
+            np.add(c[..., 0], c[..., -2], out=dz[..., -1])
+        else:
+            np.subtract(a[..., 2:, 1:-1], c, out=dn)
+            np.subtract(c, a[..., :-2, 1:-1], out=ds)
+            np.add(a[..., 1:-1, 2:], a[..., 1:-1, :-2], out=dz)
+        dz -= c
+        dz -= c
+        t = self._buf("ft", sh)
+        for co, out in zip(cos, outs):
+            np.multiply(dn, co["north"][:, None], out=out)
+            np.multiply(ds, co["south"][:, None], out=t)
+            out -= t
+            np.multiply(dz, co["zonal"][:, None], out=t)
+            out += t
+        return outs
+
     def apply(self, x1, x2):
+        """(E1, E2) increments for interior increments (x1, x2) of (Phi, psi).  The two arrays
+        returned are work arrays of this operator, overwritten by its next product."""
         g = self.g
         ls = g.ls
         X, Y = self._X, self._Y
         X[..., 1:-1, ls] = x1
         Y[..., 1:-1, ls] = x2
-        # PV equation
-        grad = X[1:] - X[:-1]
+        ish = g.interior_shape
+        nz, nyi, nxi = ish
+        buf = self._buf
+        t, t2 = buf("t", ish), buf("t2", ish)
+        r1, r2 = buf("r1", ish), buf("r2", ish)
+        # PV equation: Phi_pipi at the interior nodes (finite volume, no boundary flux for increments)
+        Xi = X[..., 1:-1, ls]
+        grad = buf("grad", (nz - 1, nyi, nxi))
+        np.subtract(Xi[1:], Xi[:-1], out=grad)
         grad *= self._rdpi
-        spp = np.empty(g.shape, self.dtype)
-        spp[1:-1] = grad[1:] - grad[:-1]
+        spp = buf("spp", ish)
+        np.subtract(grad[1:], grad[:-1], out=spp[1:-1])
         spp[0] = grad[0]
-        spp[-1] = -grad[-1]
+        np.negative(grad[-1], out=spp[-1])
         spp *= self._rhs
-        lapY, divfY = g.lap_and_div_f_grad(Y, (self._hc, self._divf))
-        r1 = self.cE * g.interior(spp)
-        r1 += self.cS * lapY
-        Xp = self._dpi(X, False)
-        Yp = self._dpi(Y, True)
-        t = self._dlon(Xp)[..., 1:-1, :]
-        t *= self.cspx
-        r1 -= t
-        t = self._dlon(Yp)[..., 1:-1, :]
-        t *= self.cPpx
-        r1 -= t
-        t = self._lat(Xp[..., ls], self._w)
-        t *= self.cspy
-        r1 -= t
-        t = self._lat(Yp[..., ls], self._w)
-        t *= self.cPpy
-        r1 -= t
+        np.multiply(self.cE, spp, out=r1)
+        lapY, divfY = buf("lapY", ish), buf("divfY", ish)
+        cY = Y[..., 1:-1, 1:-1] if not g.periodic else Y[..., 1:-1, :]
+        self._flux_into(Y, (self._hc, self._divf), (lapY, divfY), cY)
+        np.multiply(self.cS, lapY, out=t)
+        r1 += t
+        Xp = self._dpi(X, False, out=buf("Xp", g.shape))
+        Yp = self._dpi(Y, True, out=buf("Yp", g.shape))
+        for P, cx, cy in ((Xp, self.cspx, self.cspy), (Yp, self.cPpx, self.cPpy)):
+            self._dlon_into(P[..., 1:-1, :], t)
+            t *= cx
+            r1 -= t
+            self._lat_into(P[..., ls], self._w, t, t2)
+            t *= cy
+            r1 -= t
         # balance equation
-        r2 = g._flux_form(X, self._hc)
+        cX = X[..., 1:-1, 1:-1] if not g.periodic else X[..., 1:-1, :]
+        self._flux_into(X, (self._hc,), (r2,), cX)
         r2 -= divfY
         lapY *= self.c_lap
         r2 += lapY
         Yi = Y[..., ls]
-        t = self._lat(Yi, self._v)
+        self._lat_into(Yi, self._v, t, t2)
         t *= self.c_d2
         r2 += t
-        t = self._lat(Yi, self._w)
+        self._lat_into(Yi, self._w, t, t2)
         t *= self.c_lat
         r2 += t
-        dY = self._dlon(Y)
-        t = self._lat(dY, self._w)
+        dY = self._dlon_into(Y, buf("dY", (nz, g.ny, nxi)))
+        self._lat_into(dY, self._w, t, t2)
         t *= self.c_xy
         r2 += t
-        dY = dY[..., 1:-1, :]
-        dY *= self.c_lon
-        r2 += dY
+        np.multiply(dY[..., 1:-1, :], self.c_lon, out=t)
+        r2 += t
         return r1, r2
 
 
