@@ -99,7 +99,7 @@ class AttributionPanel(StatePanel):
         self.attr_title = TextMarkdown("", margin=(0, 5))
         self.attr_table = pn.widgets.Tabulator(
             pd.DataFrame(), show_index=False, disabled=True, sizing_mode="stretch_width",
-            max_width=600, height=200, layout="fit_data_stretch",
+            max_width=600, height=280, layout="fit_data_stretch",
             css_classes=["pvwb-attribution"], sortable=False, selectable=False)
         self.quality_title = TextMarkdown("", margin=(0, 5), visible=False)
         self.quality_table = pn.widgets.Tabulator(

@@ -280,13 +280,17 @@ class JobReadout:
         self.bar = pn.indicators.Progress(value=0, max=1000, width=160, height=14,
                                           bar_color="primary", margin=(10, 6, 4, 6),
                                           css_classes=["pvwb-job-bar"])
-        self.text = TextHTML("", margin=(4, 6), css_classes=["pvwb-job-text"],
-                             sizing_mode="stretch_width")
+        self.text = TextHTML("", margin=(4, 6), css_classes=["pvwb-job-text"], width=320)
         self.cancel_button = pn.widgets.Button(label="Cancel", width=80, color="warning",
                                                css_classes=["pvwb-job-cancel"], margin=(4, 6))
         self.cancel_button.on_click(lambda e: runner.cancel())
+        # fixed at the bottom right of the window: seen wherever the page is scrolled to
         self.layout = pn.Row(self.bar, self.text, self.cancel_button, visible=False,
-                             sizing_mode="stretch_width", css_classes=["pvwb-job"])
+                             width=600, css_classes=["pvwb-job"],
+                             styles={"position": "fixed", "right": "16px", "bottom": "16px",
+                                     "z-index": "1000", "background": "#ffffff",
+                                     "border": "1px solid #9bb7d4", "border-radius": "6px",
+                                     "box-shadow": "0 2px 8px rgba(0,0,0,0.25)"})
         self._w = runner.param.watch(self.show, ["label", "fraction", "text", "running"])
         self.show()
 

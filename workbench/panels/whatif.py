@@ -33,19 +33,25 @@ _RUN_COLOURS = {"control": "#333333", "experiment": "#c8553d"}
 
 
 def track_rows(track) -> pd.DataFrame:
-    """The low's track, control beside experiment, one row per output time (plain numbers)."""
+    """The low's track, control beside experiment, one row per output time: central pressure
+    (hPa), experiment minus control, and positions as °E/°W °N/°S."""
+    from ..views.interactive import lat_label, lon_label
+
     t = pd.DataFrame(track)
     out = None
     for run in ("control", "experiment"):
         r = t[t["run"] == run].set_index("lead_time_h")
-        part = pd.DataFrame({f"{run} lon": r["longitude"].round(1),
-                             f"{run} lat": r["latitude"].round(1),
-                             f"{run} hPa": r["mslp_hpa"].round(1)})
+        part = pd.DataFrame({f"{run} hPa": r["mslp_hpa"].round(1),
+                             f"{run} at": [f"{lon_label(x, 1)} {lat_label(y, 1)}"
+                                           for x, y in zip(r["longitude"], r["latitude"])]},
+                            index=r.index)
         out = part if out is None else out.join(part, how="outer")
     out.index.name = "+h"
     out = out.reset_index()
+    out["+h"] = out["+h"].round().astype(int)
     if "experiment hPa" in out and "control hPa" in out:
         out["Δ hPa"] = (out["experiment hPa"] - out["control hPa"]).round(1)
+        out = out[["+h", "control hPa", "experiment hPa", "Δ hPa", "control at", "experiment at"]]
     return out
 
 
@@ -272,7 +278,7 @@ class WhatIfPanel(StatePanel):
         from bokeh.models import ColumnDataSource, HoverTool
         from bokeh.plotting import figure
 
-        fig = figure(width=430, height=260, title="Surface low track (+h labels)",
+        fig = figure(width=430, height=260, title="Surface low track (a dot every 6 h)",
                      x_axis_label="longitude (°E)", y_axis_label="latitude (°N)",
                      toolbar_location=None, match_aspect=True, name="pvwb-whatif-track-fig")
         for run, colour in _RUN_COLOURS.items():
