@@ -122,6 +122,7 @@ class Workbench:
         self.annotate = P.AnnotationPanel(st)
         self.sessions = P.SessionPanel(st)
         self.export = P.ExportPanel(st)
+        self.whatif = P.WhatIfPanel(st)  # tendency attribution and what-if runs (a tab)
         # overlay settings (sidebar) and the compare view (a tab beside the section; it
         # follows the State only while shown)
         self.overlay_settings = P.OverlayPanel(st)
@@ -129,12 +130,13 @@ class Workbench:
         self._panels = [self.status_panel, self.files, self.controls, self.lasso,
                         self.map_panel, self.section_panel, self.pieces, self.attribution,
                         self.annotate, self.sessions, self.export, self.overlay_settings,
-                        self.compare]
+                        self.compare, self.whatif]
         self.attr_box = self.attribution.layout
         self.annotate_box = self.annotate.layout
         self.export_box = pn.Column(self.sessions.layout, self.export.layout,
                                     name="Save & export", sizing_mode="stretch_width")
         self.tabs = pn.Tabs(("Attribution", self.attr_box), ("Annotate", self.annotate_box),
+                            ("Why & what if", self.whatif.layout),
                             ("Save & export", self.export_box), css_classes=["pvwb-tabs"],
                             sizing_mode="stretch_width", max_width=600)
         self.sidebar = pn.Column(self.controls.layout, pn.layout.Divider(margin=(4, 5)),

@@ -26,7 +26,9 @@ from .pieces import LassoPanel, PiecesPanel
 from .section import SectionPanel
 from .sessions import SessionPanel
 from .status import FilePanel, StatusPanel
+from .whatif import WhatIfPanel
 
 __all__ = ["StatePanel", "CaseControls", "MapPanel", "SectionPanel", "LassoPanel",
            "PiecesPanel", "AttributionPanel", "AnnotationPanel", "ExportPanel", "SessionPanel",
-           "StatusPanel", "FilePanel", "offline_extension", "OverlayPanel", "ComparePanel"]
+           "StatusPanel", "FilePanel", "offline_extension", "OverlayPanel", "ComparePanel",
+           "WhatIfPanel"]
