@@ -412,10 +412,13 @@ class _Jacobian:
     solves).  ``dtype`` float32 gives the single-precision products of the inner solves
     (coefficients are formed in float64 and stored in ``dtype``)."""
 
-    def __init__(self, grid, d, eta, clipped, dtype=np.float64):
+    def __init__(self, grid, d, eta, clipped, dtype=np.float64, reuse=None):
         g = self.g = grid
         a = g.a
         dt = self.dtype = np.dtype(dtype)
+        # the arrays of an operator no longer needed (the previous Newton step's) are written over
+        # instead of allocating new ones (measured: fresh arrays cost more than the arithmetic)
+        old = reuse.__dict__ if reuse is not None and reuse.g is g and reuse.dtype == dt else {}
         C = g.C[:, None, None]
         D = np.gradient(np.eye(g.nz), g.pi, axis=0, edge_order=2)  # d/dpi as a matrix (np.gradient's weights)
         self._dpi_end = [float(x) for x in (D[0, 0], D[0, 1], D[0, 2], D[-1, -3], D[-1, -2], D[-1, -1])]
@@ -427,32 +430,34 @@ class _Jacobian:
         inv_x = 1.0 / (2.0 * g.dlam * a * g.cos)  # raw centred lon difference -> d/dx
         shape = g.interior_shape
 
-        def c(x, factor):
+        def c(name, x, factor):
             """x * factor written straight into ``dtype`` (one pass over the field)"""
-            out = np.empty(shape, dt)
+            out = old.get(name)
+            if out is None:
+                out = np.empty(shape, dt)
             np.multiply(x, factor, out=out, casting="same_kind" if dt == np.float64 else "unsafe")
-            return out
+            setattr(self, name, out)
 
-        self.cE = c(eta, C)
-        self.cS = c(d["Spp"] if clipped is None else np.where(clipped, 0.0, d["Spp"]), C)
-        self.cspx = c(d["spx"], C * inv_x)
-        self.cPpx = c(d["Ppx"], C * inv_x)
-        self.cspy = c(d["spy"], C / a)
-        self.cPpy = c(d["Ppy"], C / a)
+        c("cE", eta, C)
+        c("cS", d["Spp"] if clipped is None else np.where(clipped, 0.0, d["Spp"]), C)
+        c("cspx", d["spx"], C * inv_x)
+        c("cPpx", d["Ppx"], C * inv_x)
+        c("cspy", d["spy"], C / a)
+        c("cPpy", d["Ppy"], C / a)
         hxx, hyy, hxy = d["hxx"], d["hyy"], d["hxy"]
-        self.c_lap = c(hyy, -2.0)
-        self.c_d2 = c(hxx - hyy, -2.0 / a ** 2)
-        self.c_lat = c(d["psy"], 2.0 / a ** 3)
-        self.c_xy = c(hxy, 4.0 / (a * a * g.cos * 2.0 * g.dlam))
+        c("c_lap", hyy, -2.0)
+        c("c_d2", hxx - hyy, -2.0 / a ** 2)
+        c("c_lat", d["psy"], 2.0 / a ** 3)
+        c("c_xy", hxy, 4.0 / (a * a * g.cos * 2.0 * g.dlam))
         lon = hxy * (4.0 * g.tan / (a * a * g.cos * 2.0 * g.dlam))
         lon += d["psx"] * (2.0 / (a ** 3 * g.cos * 2.0 * g.dlam))
-        self.c_lon = c(lon, 1.0)
+        c("c_lon", lon, 1.0)
         self._hc, self._divf = g.coefficients(dt)
         self._rdpi = (1.0 / g.dpi).astype(dt)[:, None, None]
         self._rhs = (1.0 / g.hs).astype(dt)[:, None, None]
-        self._X = np.zeros(g.shape, dt)
-        self._Y = np.zeros(g.shape, dt)
-        self._work = {}
+        self._X = old["_X"] if "_X" in old else np.zeros(g.shape, dt)  # lateral nodes stay 0
+        self._Y = old["_Y"] if "_Y" in old else np.zeros(g.shape, dt)
+        self._work = old.get("_work", {})
 
     def _dlon(self, b):
         """Raw centred longitude difference b[i+1] - b[i-1] at the interior longitudes."""
@@ -789,7 +794,8 @@ def _gmres_right(matvec, precond, b, rtol, maxiter, restart=30):
     """Right-preconditioned GMRES from x = 0: ``A M y = b``, ``x = M y``.
 
     The residual it minimises is the true residual ``b - A x`` (right preconditioning), so
-    ``rtol`` means what the inexact Newton forcing asks for.  One operator product and one
+    ``rtol`` means what the inexact Newton forcing asks for (``matvec`` may return the same work
+    array every time: the loop copies what it keeps).  One operator product and one
     preconditioner application per iteration; the preconditioned directions ``z_k = M v_k``
     are kept (flexible-GMRES storage), so forming x costs no further preconditioner
     application.  Classical Gram-Schmidt, re-orthogonalised once when the new vector lost
@@ -994,7 +1000,7 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
     _level_mean_stability(g, d0["Spp"])  # refuses a statically unstable mean state
     n_int = int(np.prod(g.interior_shape))
     counts = dict(gmres=0, res=0, per_step=[], pc=0, pc_builds=0)
-    P = None
+    P = Jk = None
 
     def residual(Phi, psi, d=None):
         counts["res"] += 1
@@ -1014,12 +1020,13 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
     eta_k, prev = eta0, history[0]
     newton = 0
     inner = np.dtype(np.float32 if inner_precision == "single" else np.float64)
+    mv_out = np.empty(2 * n_int, inner)
     # single-precision inner solves cannot resolve relative reductions much below ~1e-6
     rtol_floor = 1e-4 if inner == np.float32 else 0.0
     with _blas_threads(1):
         while history[-1] > tol and newton < max_newton:
             newton += 1
-            Jk = _Jacobian(g, d, eta, clipped, dtype=inner)
+            Jk = _Jacobian(g, d, eta, clipped, dtype=inner, reuse=Jk)
             if P is None or not _preconditioner_still_fits(P, g, d["Spp"], eta):
                 P = _make_preconditioner(g, d["Spp"], eta, dtype=inner)
                 counts["pc_builds"] += 1
@@ -1027,9 +1034,8 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
             s1, s2 = inner.type(1.0 / qs), inner.type(1.0 / bs)
             a1, a2 = inner.type(qs), inner.type(bs)
 
-            def matvec(v, Jk=Jk, buf=buf, s1=s1, s2=s2):
+            def matvec(v, Jk=Jk, out=mv_out, s1=s1, s2=s2):  # GMRES does not keep this array
                 j1, j2 = Jk.apply(v[:n_int].reshape(g.interior_shape), v[n_int:].reshape(g.interior_shape))
-                out = np.empty_like(buf)
                 np.multiply(j1.reshape(-1), s1, out=out[:n_int])
                 np.multiply(j2.reshape(-1), s2, out=out[n_int:])
                 return out
