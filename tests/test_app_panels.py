@@ -64,8 +64,10 @@ def test_each_panel_watches_only_what_it_shows(state):
     assert _watched(panels.PiecesPanel(state)) == {"pieces", "time_index", "member", "reference"}
     assert _watched(panels.AnnotationPanel(state)) == {"annotations"}
     assert _watched(panels.StatusPanel(state)) == {"status", "status_level", "busy"}
+    # the attribution panel also shows the balance choice (QG or nonlinear) and its floor box
     assert _watched(panels.AttributionPanel(state)) == {"pieces", "target", "time_index",
-                                                       "member", "reference"}
+                                                       "member", "reference", "balance",
+                                                       "balance_floor"}
     assert "pieces" not in _watched(panels.CaseControls(state))
 
 
