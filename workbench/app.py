@@ -7,13 +7,17 @@ list and the attribution table beside it, the section below and a status line at
 Display it in a notebook cell (``wb`` or ``pn.panel(wb)``) or serve it with :func:`serve` /
 ``pvwb serve CASE``.
 
-Beside the map, three tabs: the attribution table, *Annotate* (text labels placed with the
+Beside the map, four tabs: the attribution table (QG preview, refined to nonlinear balance in
+the background), *Annotate* (text labels placed with the
 "Place a label" mouse mode, highlighted regions lassoed when "A lasso makes" is set to
-"highlighted region", delete the last / all) and *Save & export*: save and load sessions
+"highlighted region", delete the last / all), *Why & what if* (tendency attribution and QG
+what-if runs, :class:`workbench.panels.WhatIfPanel`) and *Save & export*: save and load sessions
 (:mod:`workbench.session`), the map and the active section as PNG/SVG/PDF
 (:func:`workbench.views.static.map_figure` / ``section_figure`` + ``save_figure``), the
 briefing PDF (:func:`workbench.brief.make_briefing`) and the pieces' balanced fields as netCDF
 (:func:`workbench.export.export_balanced`); each written file is also offered for download.
+Long work runs in the background with a progress read-out and Cancel
+(:mod:`workbench.panels.jobs`).
 
 Security: :func:`serve` binds 127.0.0.1 unless told otherwise, and any other address needs a
 token (asked for on a login page). The page's "open file" control only opens files inside the
