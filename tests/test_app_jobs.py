@@ -242,6 +242,7 @@ def sample_state(sample_case_path):
     return st
 
 
+@pytest.mark.slow
 def test_refine_replaces_the_table_and_overlay_and_names_the_balance(sample_state):
     from workbench.inversion.pieces import attribution
     from workbench.panels.attribution import AttributionPanel
