@@ -169,6 +169,8 @@ class BalanceGrid:
         self.rx = 1.0 / (2.0 * self.dlam * self.a * self.cos)  # raw centred lon difference -> d/dx
         D = np.gradient(np.eye(self.nz), self.pi, axis=0, edge_order=2)  # d/dpi (np.gradient's weights)
         self._dpi_matrix = D
+        self._dphi_w_a = tuple(w / self.a for w in self._dphi_w)
+        self._d2phi_w_a2 = tuple(w / self.a ** 2 for w in self._d2phi_w)
 
     @property
     def key(self):
@@ -253,28 +255,35 @@ class BalanceGrid:
                               + D[-1, -1] * a[..., -1, :, :])
         return out
 
-    def lap_and_div_f_grad(self, a, coeffs=None):
+    def lap_and_div_f_grad(self, a, coeffs=None, outs=None, work=None):
         """(lap a, div(f grad a)) at the interior nodes, sharing the differences of a
-        (``coeffs``: the two coefficient dicts, default the grid's float64 ones)."""
+        (``coeffs``: the coefficient dicts, default the grid's float64 (Laplacian, div(f grad));
+        ``outs``: arrays of the interior shape to write into; ``work``: four scratch arrays)."""
+        coeffs = coeffs or (self.hc, self.divf)
+        sh = a.shape[:-2] + (self.ny - 2, self.qg.interior_shape[-1])
+        dn, ds, dz, t = work if work is not None else (np.empty(sh, a.dtype) for _ in range(4))
         if self.periodic:
             c = a[..., 1:-1, :]
-            dz = np.roll(c, -1, axis=-1) + np.roll(c, 1, axis=-1)
-            dn = a[..., 2:, :] - c
-            ds = c - a[..., :-2, :]
+            np.add(c[..., 2:], c[..., :-2], out=dz[..., 1:-1])
+            np.add(c[..., 1], c[..., -1], out=dz[..., 0])
+            np.add(c[..., 0], c[..., -2], out=dz[..., -1])
+            np.subtract(a[..., 2:, :], c, out=dn)
+            np.subtract(c, a[..., :-2, :], out=ds)
         else:
             c = a[..., 1:-1, 1:-1]
-            dz = a[..., 1:-1, 2:] + a[..., 1:-1, :-2]
-            dn = a[..., 2:, 1:-1] - c
-            ds = c - a[..., :-2, 1:-1]
+            np.add(a[..., 1:-1, 2:], a[..., 1:-1, :-2], out=dz)
+            np.subtract(a[..., 2:, 1:-1], c, out=dn)
+            np.subtract(c, a[..., :-2, 1:-1], out=ds)
         dz -= c
         dz -= c
-        out = []
-        for co in coeffs or (self.hc, self.divf):
-            o = co["north"][:, None] * dn
-            o -= co["south"][:, None] * ds
-            o += co["zonal"][:, None] * dz
-            out.append(o)
-        return tuple(out)
+        outs = outs or tuple(np.empty(sh, a.dtype) for _ in coeffs)
+        for co, o in zip(coeffs, outs):
+            np.multiply(dn, co["north"][:, None], out=o)
+            np.multiply(ds, co["south"][:, None], out=t)
+            o -= t
+            np.multiply(dz, co["zonal"][:, None], out=t)
+            o += t
+        return tuple(outs)
 
     def d2_pi(self, a, theta_b, theta_t):
         """Phi_pipi by finite volume; the outer faces carry dPhi/dpi = -theta."""
@@ -290,67 +299,121 @@ def _zero2(grid):
     return np.zeros(grid.shape[1:])
 
 
-def _terms(grid, Phi, psi, theta_b, theta_t):
+def _terms(grid, Phi, psi, theta_b, theta_t, ws=None):
     """Derived quantities at the interior nodes shared by the residual and the Jacobian.
 
     The same stencils as the grid's derivative methods, written with the metric factors
     folded into per-row weights and the differences of psi shared between its Laplacian and
-    div(f grad psi) (fewer passes over the 3-D fields: this runs once per Newton step)."""
+    div(f grad psi) (fewer passes over the 3-D fields: this runs once per Newton step).
+    ``ws``: a dict of arrays from an earlier call that may be written over (the results then
+    live in those arrays); None allocates new ones."""
     g = grid
     a = g.a
     ls = g.ls
-    Pp = g.d_pi(Phi)
+    Phi = np.asarray(Phi, float)
+    psi = np.asarray(psi, float)
+    theta_b, theta_t = np.asarray(theta_b, float), np.asarray(theta_t, float)
+    lead = Phi.shape[:-3]
+    nz, nyi, nxi = g.interior_shape
+    ish = lead + g.interior_shape
+
+    def arr(key, shape=ish):
+        if ws is None:
+            return np.empty(shape)
+        b = ws.get(key)
+        if b is None or b.shape != shape:
+            b = ws[key] = np.empty(shape)
+        return b
+
+    tmp = arr("tmp", lead + g.shape)
+    D = g._dpi_matrix
+
+    def dpi(b, out):
+        """d/dpi (np.gradient's second-order weights) of a full-grid field into out"""
+        k = np.arange(1, nz - 1)
+        o, t = out[..., 1:-1, :, :], tmp[..., 1:-1, :, :]
+        np.multiply(b[..., :-2, :, :], D[k, k - 1][:, None, None], out=o)
+        np.multiply(b[..., 1:-1, :, :], D[k, k][:, None, None], out=t)
+        o += t
+        np.multiply(b[..., 2:, :, :], D[k, k + 1][:, None, None], out=t)
+        o += t
+        out[..., 0, :, :] = D[0, 0] * b[..., 0, :, :] + D[0, 1] * b[..., 1, :, :] + D[0, 2] * b[..., 2, :, :]
+        out[..., -1, :, :] = (D[-1, -3] * b[..., -3, :, :] + D[-1, -2] * b[..., -2, :, :]
+                              + D[-1, -1] * b[..., -1, :, :])
+        return out
+
+    Pp = dpi(Phi, arr("Pp", lead + g.shape))
     Pp[..., 0, :, :] = -theta_b
     Pp[..., -1, :, :] = -theta_t
-    Spp = g.d2_pi(g.interior(Phi), theta_b[..., 1:-1, ls], theta_t[..., 1:-1, ls])
-    sp_ = g.d_pi(psi)
+    sp_ = dpi(psi, arr("sp", lead + g.shape))
+    # Phi_pipi by finite volume at the interior nodes; the outer faces carry dPhi/dpi = -theta
+    Pi = Phi[..., 1:-1, ls]
+    grad = tmp[..., :nz - 1, 1:-1, ls]
+    np.subtract(Pi[..., 1:, :, :], Pi[..., :-1, :, :], out=grad)
+    grad *= (1.0 / g.dpi)[:, None, None]
+    Spp = arr("Spp")
+    np.subtract(grad[..., 1:, :, :], grad[..., :-1, :, :], out=Spp[..., 1:-1, :, :])
+    np.add(grad[..., 0, :, :], theta_b[..., 1:-1, ls], out=Spp[..., 0, :, :])
+    np.subtract(-theta_t[..., 1:-1, ls], grad[..., -1, :, :], out=Spp[..., -1, :, :])
+    Spp *= (1.0 / g.hs)[:, None, None]
     rx = g.rx  # 1 / (2 dlam a cos lat) at the interior rows
 
-    def dlon(b):
-        """raw centred longitude difference at the interior rows and longitudes"""
+    def gx(b, key):
+        """d/dx at the interior nodes (raw centred longitude difference times rx)"""
+        out = arr(key)
+        c = b[..., 1:-1, :]
         if g.periodic:
-            c = b[..., 1:-1, :]
-            return np.roll(c, -1, axis=-1) - np.roll(c, 1, axis=-1)
-        return b[..., 1:-1, 2:] - b[..., 1:-1, :-2]
-
-    def gx(b):
-        out = dlon(b)
+            np.subtract(c[..., 2:], c[..., :-2], out=out[..., 1:-1])
+            np.subtract(c[..., 1], c[..., -1], out=out[..., 0])
+            np.subtract(c[..., 0], c[..., -2], out=out[..., -1])
+        else:
+            np.subtract(c[..., 2:], c[..., :-2], out=out)
         out *= rx
         return out
 
-    def lat(b, w):
-        if g.uniform_lat:
-            out = b[..., 2:, :] - b[..., :-2, :]
+    def lat(b, w, key, first=True):
+        """w[0] b[j-1] + w[1] b[j] + w[2] b[j+1] at the interior rows (b: all rows); ``first``:
+        first-derivative weights (w[1] = 0 and w[0] = -w[2] on uniform latitudes)"""
+        out = arr(key)
+        if first and g.uniform_lat:
+            np.subtract(b[..., 2:, :], b[..., :-2, :], out=out)
             out *= w[2][:, None]
             return out
-        return w[0][:, None] * b[..., :-2, :] + w[1][:, None] * b[..., 1:-1, :] + w[2][:, None] * b[..., 2:, :]
+        t = tmp[..., :nz, :nyi, :nxi]
+        np.multiply(b[..., :-2, :], w[0][:, None], out=out)
+        np.multiply(b[..., 1:-1, :], w[1][:, None], out=t)
+        out += t
+        np.multiply(b[..., 2:, :], w[2][:, None], out=t)
+        out += t
+        return out
 
-    wy = [w / a for w in g._dphi_w]
+    wy = g._dphi_w_a  # d/dlat weights / a
 
-    def gy(b):
-        return lat(b[..., ls], wy)
-
-    zeta, divf = g.lap_and_div_f_grad(psi)
-    # psi derivatives
+    work = tuple(arr(k) for k in ("w1", "w2", "w3", "w4"))
+    zeta, divf = g.lap_and_div_f_grad(psi, outs=(arr("zeta"), arr("divf")), work=work)
+    (lapPhi,) = g.lap_and_div_f_grad(Phi, coeffs=(g.hc,), outs=(arr("lapPhi"),), work=work)
+    psx = gx(psi, "psx")
+    psy = lat(psi[..., ls], wy, "psy")
+    hyy = lat(psi[..., ls], g._d2phi_w_a2, "hyy", first=False)
+    hxx = arr("hxx")
+    np.subtract(zeta, hyy, out=hxx)
+    # hxy = (d/dlat of the raw lon difference) rx / a + tan psx / a
+    sx_rows = arr("sx_rows", lead + (nz, g.ny, nxi))
     if g.periodic:
-        sx_rows = np.roll(psi, -1, axis=-1) - np.roll(psi, 1, axis=-1)
+        np.subtract(psi[..., 2:], psi[..., :-2], out=sx_rows[..., 1:-1])
+        np.subtract(psi[..., 1], psi[..., -1], out=sx_rows[..., 0])
+        np.subtract(psi[..., 0], psi[..., -2], out=sx_rows[..., -1])
     else:
-        sx_rows = psi[..., 2:] - psi[..., :-2]
-    psx = sx_rows[..., 1:-1, :] * rx
-    psy = gy(psi)
-    v0, v1, v2 = (w[:, None] / a ** 2 for w in g._d2phi_w)
-    pi_ = psi[..., ls]
-    hyy = v0 * pi_[..., :-2, :]
-    hyy += v1 * pi_[..., 1:-1, :]
-    hyy += v2 * pi_[..., 2:, :]
-    hxx = zeta - hyy
-    hxy = lat(sx_rows, g._dphi_w)
+        np.subtract(psi[..., 2:], psi[..., :-2], out=sx_rows)
+    hxy = lat(sx_rows, g._dphi_w, "hxy")
     hxy *= rx / a
-    hxy += (g.tan / a) * psx
+    t = tmp[..., :nz, :nyi, :nxi]
+    np.multiply(psx, g.tan / a, out=t)
+    hxy += t
     return dict(
-        Spp=Spp, Ppx=gx(Pp), Ppy=gy(Pp), spx=gx(sp_), spy=gy(sp_), zeta=zeta,
-        hxx=hxx, hyy=hyy, hxy=hxy, psx=psx, psy=psy,
-        lapPhi=g.lap(Phi), divf=divf,
+        Spp=Spp, Ppx=gx(Pp, "Ppx"), Ppy=lat(Pp[..., ls], wy, "Ppy"), spx=gx(sp_, "spx"),
+        spy=lat(sp_[..., ls], wy, "spy"), zeta=zeta, hxx=hxx, hyy=hyy, hxy=hxy, psx=psx, psy=psy,
+        lapPhi=lapPhi, divf=divf,
     )
 
 
@@ -989,7 +1052,8 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
                       ("bottom theta", theta_b), ("top theta", theta_t)):
         if not np.all(np.isfinite(arr)):
             raise InputError(f"nonlinear balance: {name} contains NaN or infinite values; give complete fields.")
-    d0 = _terms(g, Phi, psi, theta_b, theta_t)
+    spaces = [{}, {}]  # the current state's terms live in one, a trial step's in the other
+    d0 = _terms(g, Phi, psi, theta_b, theta_t, ws=spaces[0])
     q_used, pv_mask = check_ellipticity(g, q, g.fi + d0["zeta"], pv_floor if floor else None,
                                         eta_floor if floor else None)
     ef = eta_floor if floor else None
@@ -1004,8 +1068,8 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
 
     def residual(Phi, psi, d=None):
         counts["res"] += 1
-        if d is None:
-            d = _terms(g, Phi, psi, theta_b, theta_t)
+        if d is None:  # a trial state: write over the arrays not holding the current state's terms
+            d = _terms(g, Phi, psi, theta_b, theta_t, ws=spaces[1])
         eta, clipped = _eta(g, d, ef)
         r1 = _pv(g, d, eta) - g.interior(q_used)
         r2 = _balance(g, d)
@@ -1071,6 +1135,7 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
             else:
                 break
             Phi, psi, d, eta, clipped, r1, r2 = Pn, Sn, dn, en, cn, r1n, r2n
+            spaces.reverse()
             history.append(rn)
             if verbose:
                 print(f"newton {newton}: relative residual {rn:.3e} (step {step:g}, gmres rtol {rtol:.2g}, "
