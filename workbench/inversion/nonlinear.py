@@ -877,6 +877,7 @@ def _gmres_right(matvec, precond, b, rtol, maxiter, restart=30):
     reorth = 0.7 if dt == np.float64 else 0.01
     beta0 = float(np.linalg.norm(b))
     x = np.zeros(n, dtype=dt)
+    tmp = np.empty(n, dtype=dt)
     if beta0 == 0.0:
         return x, 0, 0.0
     its = 0
@@ -899,11 +900,13 @@ def _gmres_right(matvec, precond, b, rtol, maxiter, restart=30):
             its += 1
             w0 = float(np.linalg.norm(w))
             h = (w @ V[:k + 1].T).astype(float)  # (this layout is the fast BLAS product, measured)
-            w -= h.astype(dt) @ V[:k + 1]
+            np.matmul(h.astype(dt), V[:k + 1], out=tmp)
+            w -= tmp
             hn = float(np.linalg.norm(w))
             if hn < reorth * w0:  # re-orthogonalise once (CGS2) when cancellation was large
                 h2 = (w @ V[:k + 1].T).astype(float)
-                w -= h2.astype(dt) @ V[:k + 1]
+                np.matmul(h2.astype(dt), V[:k + 1], out=tmp)
+                w -= tmp
                 h += h2
                 hn = float(np.linalg.norm(w))
             H[:k + 1, k] = h
@@ -927,7 +930,8 @@ def _gmres_right(matvec, precond, b, rtol, maxiter, restart=30):
         for i in range(kk - 1, -1, -1):  # back substitution on the rotated Hessenberg matrix
             y[i] = (gv[i] - H[i, i + 1:kk] @ y[i + 1:]) / H[i, i]
         for i in range(kk):
-            x += dt.type(y[i]) * Z[i]
+            np.multiply(Z[i], dt.type(y[i]), out=tmp)
+            x += tmp
         del Z, V
         rel = abs(gv[kk]) / beta0
         if rel <= rtol or its >= maxiter:
