@@ -22,7 +22,8 @@ __all__ = ["CaseControls", "MODE_LABELS", "KeyBindings", "KEYS"]
 #: Mouse modes of the map: label -> PageChoices.mouse_mode
 MODE_LABELS = {"Pan / zoom": "pan", "Lasso a piece": "lasso", "Draw a section": "section",
                "Pick target point": "target", "Place a label": "label",
-               "Edit piece outlines": "edit", "Move labels": "move", "Draw an arrow": "arrow"}
+               "Edit piece outlines": "edit", "Move labels": "move",
+               "Draw an arrow (click tail, then head)": "arrow"}
 
 #: What the page's keys do (the key names KeyBindings reports -> meaning)
 KEYS = {"ArrowLeft": "previous time", "ArrowRight": "next time", "Ctrl+z": "undo",
@@ -75,8 +76,9 @@ export function render({ model, el }) {
     document.removeEventListener("pointerdown", onDown, true);
     document.removeEventListener("pointerup", onUp, true);
   });
-  el.style.display = "none";
-  return el;
+  const span = document.createElement("span");
+  span.style.display = "none";
+  return span;
 }
 """
 _REFERENCE_LABELS = {"time mean": "time_mean", "area mean": "area_mean",
@@ -204,9 +206,9 @@ class CaseControls(StatePanel):
         self.fps = pn.widgets.FloatInput(name="", value=float(pg.play_fps), start=0.1, end=10.0,
                                          step=0.5, width=60, css_classes=["pvwb-fps"],
                                          margin=(5, 2, 5, 2))
-        self.undo_button = pn.widgets.Button(name="↶ Undo", width=70, css_classes=["pvwb-undo"],
-                                             margin=(5, 2, 5, 8))
-        self.redo_button = pn.widgets.Button(name="↷ Redo", width=70, css_classes=["pvwb-redo"],
+        self.undo_button = pn.widgets.Button(name="↶ Undo (Ctrl+Z)", width=120,
+                                             css_classes=["pvwb-undo"], margin=(5, 2, 5, 5))
+        self.redo_button = pn.widgets.Button(name="↷ Redo", width=80, css_classes=["pvwb-redo"],
                                              margin=(5, 2, 5, 2))
         self.undo_button.on_click(lambda e: self._guard(self.undo))
         self.redo_button.on_click(lambda e: self._guard(self.redo))
@@ -216,10 +218,10 @@ class CaseControls(StatePanel):
         self.watch(lambda ev: self.key(ev.new.split(":", 1)[-1]), ["press"], obj=self.keys)
         self.watch(lambda *ev: self._history_buttons(), ["undo_steps", "redo_steps"])
         self._history_buttons()
-        return pn.Row(self.play, self.fps,
-                      pn.pane.Markdown("frames/s", margin=(12, 2, 5, 2),
-                                       styles={"font-size": "12px"}),
-                      self.undo_button, self.redo_button, self.keys)
+        return pn.Column(
+            pn.Row(self.play, self.fps, pn.pane.Markdown("frames/s", margin=(12, 2, 5, 2),
+                                                         styles={"font-size": "12px"})),
+            pn.Row(self.undo_button, self.redo_button, self.keys), margin=0)
 
     def _set_fps(self, fps):
         if fps is None:

@@ -5,9 +5,10 @@ dragging their vertices, labels moved by dragging, arrows drawn with the mouse.
 map panel) and adds its own tools and data sources to the same figure; it changes the State
 only through its methods (``_replace``, ``add_annotation``...), so every gesture is one undo
 step. Mouse modes (``state.page.mouse_mode``): ``"edit"`` (Bokeh ``PolyEditTool`` on the
-pieces' outlines: double-click an outline to show its vertices, drag one, click away to end),
-``"move"`` (``PointDrawTool`` on a handle under each label), ``"arrow"`` (``FreehandDrawTool``:
-drag from the tail to the head).
+pieces' outlines: press and hold inside an outline to show its vertices, drag one; a press on a
+vertex then adds one after it; Backspace removes the selected vertex),
+``"move"`` (``PointDrawTool`` on a handle under each label), ``"arrow"`` (click the tail, then
+the head; the map's tap tool).
 
 Pieces that follow their anomaly (``Piece.follow == "anomaly"``) are drawn with their outline
 at the selected time (``State.pieces_now``) and a note when tracking found a split, a merge or
@@ -30,8 +31,7 @@ class MapEditing:
     """The map's editing tools and tracked outlines on ``view`` (a MapView) for ``state``."""
 
     def __init__(self, view, state):
-        from bokeh.models import (ColumnDataSource, FreehandDrawTool, PointDrawTool,
-                                  PolyEditTool)
+        from bokeh.models import ColumnDataSource, CustomJS, PointDrawTool, PolyEditTool
 
         self.view, self.state = view, state
         self._watchers = []
@@ -42,7 +42,7 @@ class MapEditing:
         self.src = dict(
             vertices=S(dict(x=[], y=[]), name="pvwb-piece-vertices"),
             handles=S(dict(x=[], y=[], id=[]), name="pvwb-ann-handles"),
-            arrow_stroke=S(dict(xs=[], ys=[]), name="pvwb-arrow-stroke"),
+            arrow_tail=S(dict(x=[], y=[]), name="pvwb-arrow-tail"),
             lost=S(dict(x=[], y=[], text=[]), name="pvwb-track-notes"),
         )
         patches = next(r for r in fig.renderers if r.name == "pvwb-piece-patches")
@@ -51,32 +51,41 @@ class MapEditing:
         handles = fig.scatter("x", "y", source=self.src["handles"], marker="square", size=10,
                               fill_color="white", fill_alpha=0.5, line_color="#444444",
                               name="pvwb-ann-handle-glyphs")
-        stroke = fig.multi_line("xs", "ys", source=self.src["arrow_stroke"], line_color="black",
-                                line_width=2, line_dash="dotted")
+        fig.scatter("x", "y", source=self.src["arrow_tail"], marker="circle", size=8,
+                    fill_color="black", line_color="white")
         fig.text("x", "y", text="text", source=self.src["lost"], text_color="#b00000",
                  text_font_size="11px", text_align="left", background_fill_color="white",
                  background_fill_alpha=0.7, name="pvwb-track-note-text")
         self.tools = dict(
             edit=PolyEditTool(renderers=[patches], vertex_renderer=vert,
-                              description="Edit piece outlines (double-click one, drag a vertex)"),
+                              description="Edit piece outlines (press and hold one, drag a vertex)"),
             move=PointDrawTool(renderers=[handles], add=False, drag=True,
                                description="Move labels (drag the square under a label)"),
-            arrow=FreehandDrawTool(renderers=[stroke], num_objects=1,
-                                   description="Draw an arrow (drag from tail to head)"),
         )
         fig.add_tools(*self.tools.values())
+        # switching a several-gesture tool off also clears the drag gesture's active tool in
+        # BokehJS, so after any switch the chosen tools are switched on again, in the browser
+        tb = fig.toolbar
+        tb.js_on_change("active_multi", CustomJS(args=dict(tb=tb), code="""
+            setTimeout(() => {
+              for (const t of [tb.active_drag, tb.active_multi]) {
+                if (t != null && t != "auto") { t.active = false; t.active = true; }
+              }
+            }, 0);"""))
         self.piece_src = view.src["pieces"]
         self.piece_src.on_change("data", self._outline_changed)
         self.piece_src.selected.on_change("indices", self._piece_selected)
         self.src["handles"].on_change("data", self._handles_changed)
         self.src["handles"].selected.on_change("indices", self._handle_selected)
-        self.src["arrow_stroke"].on_change("data", self._arrow_drawn)
+        self._tail = None
         for names, fn in ((["pieces", "time_index", "member", "reference"], self.refresh_pieces),
                           (["annotations"], self.refresh_handles)):
             self._watchers.append((state, state.param.watch(
                 lambda *ev, fn=fn: view._safe(fn), names)))
         self._watchers.append((state.page, state.page.param.watch(
             lambda *ev: self.set_mode(state.page.mouse_mode), ["mouse_mode"])))
+        self._watchers.append((state.page, state.page.param.watch(
+            lambda ev: view._safe(lambda: self._clicked(ev.new)), ["last_click"])))
         self.refresh_pieces()
         self.refresh_handles()
         self.set_mode(state.page.mouse_mode)
@@ -92,10 +101,24 @@ class MapEditing:
         from ..views.interactive import _push
 
         tb = self.view.figure.toolbar
-        if mode in self.tools:
-            tb.active_drag = self.tools[mode]
+        # these tools take several gestures (Bokeh's "multi" role): they are switched with
+        # active_multi, which also switches them off in the view's own modes
+        if mode == "arrow":  # two clicks with the view's tap tool
+            tb.active_multi = None
+            tb.active_tap = self.view.tools["target"]
+        elif mode in self.tools:
+            tb.active_drag = None
             tb.active_tap = None
-            _push(self.view.pane)
+            tb.active_multi = self.tools[mode]
+        else:
+            section = self.view.tools.get("section")
+            tb.active_multi = section if mode == "section" else None
+        if mode != "edit":
+            self.src["vertices"].data = dict(x=[], y=[])
+        if mode != "arrow":
+            self._tail = None
+            self._set_own("arrow_tail", dict(x=[], y=[]))
+        _push(self.view.pane)
 
     # ---------------------------------------------------------------- drawing
     def refresh_pieces(self):
@@ -256,23 +279,19 @@ class MapEditing:
             self.state.annotations = annotations_from_list(out)
             self.state.set_status(f"Moved {moved} label(s) (Ctrl+Z undoes).", "success")
 
-    def _arrow_drawn(self, attr, old, new):
-        if self._drawing:
+    def _clicked(self, click):
+        """Arrow mode: the first click is the tail (marked), the second the head."""
+        if self.state.page.mouse_mode != "arrow" or click is None:
             return
-        xs, ys = new.get("xs", []), new.get("ys", [])
-        if not xs or not len(xs[-1]):
+        if self._tail is None:
+            self._tail = tuple(click)
+            self._set_own("arrow_tail", dict(x=[click[0]], y=[click[1]]))
+            self.state.set_status("Arrow: now click its head (Escape or another mode cancels).",
+                                  "info")
             return
-        x, y = list(xs[-1]), list(ys[-1])
-        self._drawing = True
-        try:
-            self.src["arrow_stroke"].data = dict(xs=[], ys=[])
-        finally:
-            self._drawing = False
-        if len(x) < 2:
-            return
-        lon, lat = self.view.inv([x[0], x[-1]], [y[0], y[-1]])
-        self.view._safe(lambda: self.add_arrow((float(lon[0]), float(lat[0])),
-                                               (float(lon[1]), float(lat[1]))))
+        tail, self._tail = self._tail, None
+        self._set_own("arrow_tail", dict(x=[], y=[]))
+        self.add_arrow(tail, tuple(click))
 
     def add_arrow(self, start, end):
         """An arrow annotation from ``start`` to ``end`` (lon, lat) in the next annotation's
