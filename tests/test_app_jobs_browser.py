@@ -121,7 +121,6 @@ def _tab(page, name):
 
 
 def test_load_the_session(page):
-    page.screenshot(path=str(SHOTS / "loaded.png"), full_page=True)
     _tab(page, "Save & export")
     sel = page.locator(".pvwb-session-list select")
     sel.select_option(label=sel.locator("option", has_text="jobs-session.json").inner_text())
@@ -158,7 +157,7 @@ def test_briefing_progress_then_cancel_leaves_no_pdf(page, folders):
     cancel_s = time.perf_counter() - tc
     assert "cancelled" in text, text
     assert page.locator(".pvwb-status-text").get_attribute("data-level") == "warning"
-    assert any("page 1 of" in t for t in texts) and len(texts) >= 2, texts  # the text changed
+    assert any(" of 5 made" in t for t in texts) and len(texts) >= 2, texts  # the text changed
     time.sleep(0.5)
     assert sorted(p.name for p in out.iterdir()) == before  # no PDF, no temporary file
     assert not page.locator(".pvwb-job").is_visible()
