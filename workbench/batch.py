@@ -28,7 +28,7 @@ import pandas as pd
 
 from .errors import InputError
 
-__all__ = ["run_batch", "local_cluster", "main", "COLUMNS"]
+__all__ = ["run_batch", "local_cluster", "main", "COLUMNS", "tracked_table", "TRACK_COLUMNS"]
 
 #: the attribution columns kept per piece row
 COLUMNS = ("height_anomaly", "u", "v", "wind_speed", "relative_vorticity", "height_share_pct",
@@ -252,6 +252,14 @@ def run_batch(path, *, pieces=None, times=None, members=None, target=None, refer
     progress : True for a tqdm bar on stderr (shown once the run has lasted about two seconds)
     store : path of a Zarr store: each (time, member) writes its region there; a rerun with the
         same settings skips the finished ones (resumable)
+
+    Pieces with ``follow="anomaly"`` are carried to every time by :mod:`workbench.tracking`
+    (tracked over all the case's times from their ``follow_from`` time, else the first time,
+    per member, on the client, before the tasks start); each task inverts the pieces as they are
+    at its time, and a piece lost at a time is left out there (its forcing goes to the
+    remainder; its row is NaN). The table then has the columns ``follow`` (fixed / anomaly),
+    ``status`` (start, fixed, tracked, split, merged, split+merged, lost, not tracked) and
+    ``track_note`` on the piece rows; :func:`tracked_table` gives each piece's share over time.
     """
     import dask
 
@@ -287,6 +295,9 @@ def _run_batch(path, *, pieces, times, members, target, reference, client, optio
         pieces = standard_pieces(moist=moist, hemisphere=cyclonic_sign(case))
     pieces = [p.to_dict() if hasattr(p, "to_dict") else dict(p) for p in pieces]
     jobs = [(ti, mi) for ti in times for mi in mems]
+    tracks = _track(case, pieces, mems, reference)  # None when no piece follows its anomaly
+    job_pieces = {j: pieces for j in jobs} if tracks is None else \
+        {(ti, mi): _pieces_at(pieces, tracks[mi], ti) for ti, mi in jobs}
     g = None
     if store is not None:
         store = str(store)
@@ -313,13 +324,15 @@ def _run_batch(path, *, pieces, times, members, target, reference, client, optio
             else:
                 ref = (reference, case.reference(reference))
             for ti, mi in todo:
-                results[(ti, mi)] = _one(path, ti, mi, pieces, target, ref, options, store, balance, floor)
+                results[(ti, mi)] = _one(path, ti, mi, job_pieces[(ti, mi)], target, ref, options, store, balance,
+                                         floor)
                 bar.update(1)
         elif todo:
             import time
 
             ref_future, place = _submit_reference(client, path, options, reference, case, todo)
-            futures = [client.submit(_task, path, ti, mi, pieces, target, ref_future, options, store, balance, floor,
+            futures = [client.submit(_task, path, ti, mi, job_pieces[(ti, mi)], target, ref_future, options, store,
+                                     balance, floor,
                                      pure=False, workers=place.get((ti, mi)), allow_other_workers=True)
                        for ti, mi in todo]
             start = bar.n
@@ -340,7 +353,79 @@ def _run_batch(path, *, pieces, times, members, target, reference, client, optio
     else:
         tables = [results[j][0] for j in jobs]
     out = pd.concat(tables, ignore_index=True)
-    out.attrs.update(source=path, reference=str(reference))
+    if tracks is not None:
+        _add_track_columns(out, case, pieces, tracks)
+    out.attrs.update(source=path, reference=str(reference),
+                     target="each time's storm centre" if target is None else str(tuple(target)))
+    return out
+
+
+# ---------------------------------------------------------------------------------------- tracking
+#: the columns of :func:`tracked_table`
+TRACK_COLUMNS = ("time", "member", "piece", "follow", "status", "height_anomaly", "relative_vorticity",
+                 "height_share_pct", "vorticity_share_pct", "target_lon", "target_lat", "target_hpa", "track_note")
+
+
+def _track(case, pieces, mems, reference):
+    """``{member index: {piece name: [tracking steps over all times]}}`` for the pieces that
+    follow their anomaly, or None when none does."""
+    from .inversion.pieces import Piece
+    from .tracking import track_pieces
+
+    follow = [Piece.from_dict(p) for p in pieces if p.get("follow") == "anomaly"]
+    if not follow:
+        return None
+    return {mi: track_pieces(case, follow, member=mi, reference=reference) for mi in mems}
+
+
+def _pieces_at(pieces, steps, ti):
+    """The pieces as they are at time index ``ti``: fixed ones unchanged, following ones with
+    their tracked outline, lost ones left out."""
+    out = []
+    for p in pieces:
+        if p.get("follow") != "anomaly":
+            out.append(p)
+            continue
+        step = next(s for s in steps[p["name"]] if s.time == ti)
+        if step.piece is not None:
+            out.append(step.piece.to_dict())
+    return out
+
+
+def _add_track_columns(table, case, pieces, tracks):
+    follow = {p["name"]: p.get("follow", "fixed") for p in pieces}
+    members = {"" if mi is None else str(case.members[mi]): mi for mi in tracks}
+    times = {str(t)[:19]: k for k, t in enumerate(case.times)}
+    status, notes = [], []
+    for t, m, name in zip(table["time"], table["member"], table["piece"]):
+        if name not in follow:
+            status.append("")
+            notes.append("")
+        elif follow[name] != "anomaly":
+            status.append("fixed")
+            notes.append("")
+        else:
+            s = next(s for s in tracks[members[m]][name] if s.time == times[t])
+            status.append(s.status)
+            notes.append(s.note)
+    table["follow"] = [follow.get(n, "") for n in table["piece"]]
+    table["status"] = status
+    table["track_note"] = notes
+
+
+def tracked_table(table) -> pd.DataFrame:
+    """Each piece's share over time from a :func:`run_batch` table whose pieces follow their
+    anomaly (the pieces' and the remainder's rows, columns :data:`TRACK_COLUMNS`). With members the piece is called
+    ``"<piece> (member <m>)"`` so that :func:`workbench.views.tracks.tracked_shares_figure`
+    draws a line per piece and member. InputError when no piece follows its anomaly."""
+    if "follow" not in table.columns or not (table["follow"] == "anomaly").any():
+        raise InputError("no piece of this batch follows its anomaly; set \"follow\": \"anomaly\" on a piece "
+                         "(and \"follow_from\": the time its outline was drawn at) in the pieces file")
+    rows = table[~table["piece"].isin(["sum of pieces", "full inversion"])].copy()
+    if (rows["member"] != "").any():
+        rows["piece"] = [f"{p} (member {m})" for p, m in zip(rows["piece"], rows["member"])]
+    out = rows[list(TRACK_COLUMNS)].reset_index(drop=True)
+    out.attrs = dict(table.attrs)
     return out
 
 
@@ -432,6 +517,11 @@ def main(argv=None):
     parser.add_argument("--balance", choices=["qg", "nonlinear"], default="qg",
                         help="qg (default) or nonlinear balance (adds the 'nonlinear remainder' row)")
     parser.add_argument("--floor", action="store_true", help="nonlinear balance: accept the floor remedy")
+    parser.add_argument("--tracks", metavar="CSV",
+                        help="pieces with \"follow\": \"anomaly\": write each piece's share over time as CSV")
+    parser.add_argument("--plot", metavar="FIG",
+                        help="pieces with \"follow\": \"anomaly\": write the shares-over-time figure "
+                             "(.png, .svg or .pdf)")
     args = parser.parse_args(argv)
     if args.floor and args.balance != "nonlinear":
         parser.error("--floor applies to --balance nonlinear only")
@@ -442,7 +532,16 @@ def main(argv=None):
     target = _parse_target(args.target)
     if args.output:
         cli.check_output(args.output, args.overwrite)
+    if args.tracks:
+        cli.check_output(args.tracks, args.overwrite, suffixes=(".csv",), what="table")
+    if args.plot:
+        cli.check_output(args.plot, args.overwrite, suffixes=(".png", ".svg", ".pdf"), what="figure")
     pieces = load_pieces(args.pieces) if args.pieces else None
+    if (args.tracks or args.plot) and not any(getattr(p, "follow", "fixed") == "anomaly" for p in pieces or []):
+        from .errors import InputError
+
+        raise InputError("--tracks/--plot need pieces that follow their anomaly: give --pieces FILE with "
+                         "\"follow\": \"anomaly\" on at least one piece")
     path = cli.case_source(args.case) or default_case_path()
     options = cli.selection_options(args)
     import workbench as wb
@@ -482,4 +581,33 @@ def main(argv=None):
         with atomic_target(args.output, overwrite=args.overwrite, what="batch table") as tmp:
             tmp.write_text(csv_text(table, index=False))
         print(f"wrote {args.output}")
+    if "follow" in table.columns:
+        _report_tracks(table, args)
     return 0
+
+
+def _report_tracks(table, args):
+    """Print the tracked pieces' height shares over time and their notes; write --tracks/--plot."""
+    from .inversion.pieces import format_share
+
+    tracks = tracked_table(table)
+    moving = tracks[tracks["follow"] == "anomaly"]
+    wide = moving.pivot(index="time", columns="piece", values="height_share_pct")[
+        list(dict.fromkeys(moving["piece"]))]
+    with pd.option_context("display.width", 200, "display.max_rows", 500, "display.max_columns", 30):
+        print("\ntracked pieces: height share (%) at the target")
+        print(wide.to_string(float_format=lambda v: format_share(v), na_rep=format_share(None)))
+    for row in moving[moving["status"].isin(["split", "merged", "split+merged", "lost"])].itertuples():
+        print(f"note: {row.time} {row.piece}: {row.track_note}")
+    if args.tracks:
+        from .export import atomic_target, csv_text
+
+        with atomic_target(args.tracks, overwrite=args.overwrite, what="tracked-shares table") as tmp:
+            tmp.write_text(csv_text(tracks, index=False))
+        print(f"wrote {args.tracks}")
+    if args.plot:
+        from .views.static import save_figure
+        from .views.tracks import tracked_shares_figure
+
+        save_figure(tracked_shares_figure(tracks), args.plot, overwrite=args.overwrite)
+        print(f"wrote {args.plot}")
