@@ -40,6 +40,8 @@ __all__ = [
     "annotations_from_list",
     "in_space",
     "section_space",
+    "edited",
+    "TEXT_FIELD",
 ]
 
 #: Named colours accepted for annotations (a colour-blind-safe set plus black,
@@ -490,3 +492,23 @@ def _check_obj(a):
 def in_space(items, space: str) -> list:
     """The annotations of ``items`` placed in ``space`` (``"map"`` or ``"section:<key>"``)."""
     return [a for a in (items or []) if getattr(a, "space", None) == space]
+
+
+#: the field that holds an annotation's text, by type (what "edit the text" changes)
+TEXT_FIELD = {"label": "text", "arrow": "text", "region": "label", "section_label": "text",
+              "section_arrow": "text", "section_region": "label"}
+
+
+def edited(annotation, **changes):
+    """A copy of ``annotation`` with ``changes`` (field name -> value; ``text`` means the
+    type's text field, :data:`TEXT_FIELD`), validated like a new one (AnnotationError); the id
+    stays the same."""
+    d = annotation.to_dict()
+    if "text" in changes:
+        d[TEXT_FIELD[d["type"]]] = changes.pop("text")
+    unknown = [k for k in changes if k not in d]
+    if unknown:
+        raise AnnotationError(f"a {d['type']} has no field {', '.join(map(repr, unknown))}; fields: "
+                              f"{', '.join(k for k in d if k not in ('type', 'id'))}")
+    d.update(changes)
+    return annotation_from_dict(d)

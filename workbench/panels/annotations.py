@@ -1,5 +1,8 @@
 """The annotation panel: text and colour of the next label or highlighted region, label the
-last clicked point, delete the last / all, and the list of annotations (escaped text)."""
+last clicked point, delete the last / all, the list of annotations (escaped text), and the
+editing of one annotation (its text and colour; picking it also selects it for the Delete
+key). Labels are moved and arrows drawn on the map (mouse modes *Move labels* and *Draw an
+arrow*); every change is one undo step."""
 from __future__ import annotations
 
 import panel as pn
@@ -46,11 +49,22 @@ class AnnotationPanel(StatePanel):
             "click the map.  \n**Highlighted region:** set *A lasso makes* to *highlighted "
             "region* and lasso it. Annotations are saved in the session and drawn on the "
             "exported figures and the briefing.", margin=(0, 8), styles={"font-size": "13px"})
+        self.pick = pn.widgets.Select(label="Edit annotation", width=200, options={},
+                                      css_classes=["pvwb-ann-pick"])
+        self.edit_text = pn.widgets.TextInput(label="Its text", width=200,
+                                              css_classes=["pvwb-ann-edit-text"])
+        self.edit_colour = pn.widgets.Select(label="Its colour", width=120,
+                                             options=[c for c in PALETTE if c != "white"])
+        self.apply_button = pn.widgets.Button(label="Apply", width=80, margin=(23, 5, 5, 5),
+                                              css_classes=["pvwb-ann-apply"])
+        self.apply_button.on_click(lambda e: self._guard(self.apply_edit))
+        self.watch(lambda ev: self._picked(ev.new), ["value"], obj=self.pick)
         self.watch(lambda *ev: self.refresh(), ["annotations"])
         self.refresh()
         return [help_md, self.label_text,
                 pn.FlexBox(self.ann_colour, self.label_click_button),
-                pn.FlexBox(self.undo_ann_button, self.clear_ann_button), self.ann_list]
+                pn.FlexBox(self.undo_ann_button, self.clear_ann_button), self.ann_list,
+                pn.FlexBox(self.pick, self.edit_text, self.edit_colour, self.apply_button)]
 
     def refresh(self):
         from ..annotations import PALETTE, Arrow, Label, Region
@@ -73,6 +87,41 @@ class AnnotationPanel(StatePanel):
             rows.append(f"<div class='pvwb-ann-item'>{escape(row)}</div>")
         self.ann_list.object = ("<b>Annotations</b>" + "".join(rows)) if rows else \
             "<i>No annotations yet.</i>"
+        if hasattr(self, "pick"):
+            opts = {f"{k}. {a.kind}": a.id for k, a in enumerate(self.state.annotations, 1)}
+            keep = self.pick.value if self.pick.value in opts.values() else None
+            self.pick.param.update(options=opts, value=keep)
+            self._picked(keep)
+
+    def _picked(self, ident):
+        """Show the picked annotation's text and colour; select it for the Delete key."""
+        from ..annotations import PALETTE, TEXT_FIELD
+
+        a = next((a for a in self.state.annotations if a.id == ident), None)
+        if a is None:
+            return
+        self.state.page.selected = f"annotation:{a.id}"
+        self.to_widget(self.edit_text, getattr(a, TEXT_FIELD[a.kind]) or "")
+        names = {v: k for k, v in PALETTE.items()}
+        colour = names.get(a.colour, a.colour)
+        if colour in self.edit_colour.options:
+            self.to_widget(self.edit_colour, colour)
+
+    def apply_edit(self):
+        """Give the picked annotation the text and colour typed here (one undo step)."""
+        from ..annotations import annotations_from_list, edited
+
+        ident = self.pick.value
+        if ident is None:
+            raise InputError("pick an annotation to edit first")
+        text = (self.edit_text.value_input or self.edit_text.value or "").strip()
+        out = []
+        for a in self.state.annotations:
+            if a.id == ident:
+                a = edited(a, text=text or None, colour=self.edit_colour.value)
+            out.append(a)
+        self.state.annotations = annotations_from_list(out)
+        self.state.set_status("Annotation edited (Ctrl+Z undoes).", "success")
 
     def _text(self):
         return (self.label_text.value_input or self.label_text.value or "").strip()
