@@ -718,6 +718,29 @@ class _LatSeparable(SeparableSolver):
         if self._fwd is not None:
             self._fwd, self._inv = self._fwd.astype(dt), self._inv.astype(dt)
 
+    def solve_into(self, r, out):
+        """Solve for one right-hand side (nv, ny-2, nx_interior) into ``out``; ``r`` may be
+        overwritten (the transforms run in place where they can)."""
+        nv, nyi, nxi = self.nv, r.shape[-2], r.shape[-1]
+        if self._fwd is not None:
+            y = np.matmul(self._fwd, r.reshape(nv, nyi * nxi)).reshape(nv, nyi, nxi)
+        else:
+            y = r
+        if self.grid.periodic:
+            y = sfft.rfft(y, axis=-1, workers=self.workers)
+        else:
+            y = sfft.dst(y, type=1, axis=-1, workers=self.workers, overwrite_x=True)
+        self._sweep(y)
+        if self.grid.periodic:
+            y = sfft.irfft(y, n=self.grid.nx, axis=-1, workers=self.workers)
+        else:
+            y = sfft.idst(y, type=1, axis=-1, workers=self.workers, overwrite_x=True)
+        if self._fwd is not None:
+            np.matmul(self._inv, y.reshape(nv, nyi * nxi), out=out.reshape(nv, nyi * nxi))
+        else:
+            out[...] = y
+        return out
+
     def _solve_interior(self, r, lead, nv, nyi, nxi):
         if self._fwd is not None:
             return super()._solve_interior(r, lead, nv, nyi, nxi)
@@ -765,6 +788,29 @@ class _Preconditioner:
         self._hc = grid.coefficients(dt)[0]
         self.applications = 0
         self._full = np.zeros(grid.shape, dt)
+
+    def apply_into(self, v1, v2, a1, a2, out1, out2):
+        """``apply(a1 v1, a2 v2)`` written into (out1, out2) with work arrays of its own (the
+        inner loop of the Newton solve: no allocation besides the transforms')."""
+        g = self.grid
+        self.applications += 1
+        ish = g.interior_shape
+        w = self.__dict__.setdefault("_work", {})
+        if "rhs" not in w:
+            for k in ("rhs", "r2", "w1", "w2", "w3", "w4"):
+                w[k] = np.empty(ish, self.scale.dtype)
+        rhs, r2 = w["rhs"], w["r2"]
+        np.multiply(v1, self.scale * a1, out=rhs)
+        np.multiply(v2, a2, out=r2)
+        rhs += r2
+        self.A.solve_into(rhs, out1)
+        full = self._full
+        full[..., 1:-1, g.ls] = out1
+        (rb,) = g.lap_and_div_f_grad(full, coeffs=(self._hc,), outs=(rhs,),
+                                     work=(w["w1"], w["w2"], w["w3"], w["w4"]))
+        rb -= r2
+        self.B.solve_into(rb, out2)
+        return out1, out2
 
     def apply(self, r1, r2):
         g = self.grid
@@ -853,12 +899,14 @@ def _rms(a):
     return float(np.sqrt(np.mean(np.square(a)))) if a.size else 0.0
 
 
-def _gmres_right(matvec, precond, b, rtol, maxiter, restart=30):
+def _gmres_right(matvec, precond, b, rtol, maxiter, restart=30, work=None):
     """Right-preconditioned GMRES from x = 0: ``A M y = b``, ``x = M y``.
 
     The residual it minimises is the true residual ``b - A x`` (right preconditioning), so
     ``rtol`` means what the inexact Newton forcing asks for (``matvec`` may return the same work
-    array every time: the loop copies what it keeps).  One operator product and one
+    array every time: the loop copies what it keeps).  ``work``: a dict kept by the caller across
+    calls, holding the Krylov and preconditioned bases (rows written over instead of allocating
+    fresh memory on every call); ``precond`` is then called as ``precond(v, out=row)``.  One operator product and one
     preconditioner application per iteration; the preconditioned directions ``z_k = M v_k``
     are kept (flexible-GMRES storage), so forming x costs no further preconditioner
     application.  Classical Gram-Schmidt, re-orthogonalised once when the new vector lost
@@ -877,7 +925,11 @@ def _gmres_right(matvec, precond, b, rtol, maxiter, restart=30):
     reorth = 0.7 if dt == np.float64 else 0.01
     beta0 = float(np.linalg.norm(b))
     x = np.zeros(n, dtype=dt)
-    tmp = np.empty(n, dtype=dt)
+    if work is not None:
+        for key, rows in (("V", restart + 1), ("Z", restart), ("tmp", 1)):
+            if key not in work or work[key].shape != (rows, n) or work[key].dtype != dt:
+                work[key] = np.empty((rows, n), dtype=dt)
+    tmp = work["tmp"][0] if work is not None else np.empty(n, dtype=dt)
     if beta0 == 0.0:
         return x, 0, 0.0
     its = 0
@@ -885,7 +937,7 @@ def _gmres_right(matvec, precond, b, rtol, maxiter, restart=30):
     beta = beta0
     while True:
         m = min(restart, maxiter - its)
-        V = np.empty((m + 1, n), dtype=dt)
+        V = work["V"] if work is not None else np.empty((m + 1, n), dtype=dt)
         Z = []
         H = np.zeros((m + 1, m))
         cs, sn = np.zeros(m), np.zeros(m)
@@ -894,7 +946,7 @@ def _gmres_right(matvec, precond, b, rtol, maxiter, restart=30):
         np.multiply(r, 1.0 / beta, out=V[0], casting="unsafe")
         k = 0
         for k in range(m):
-            z = precond(V[k])
+            z = precond(V[k]) if work is None else precond(V[k], out=work["Z"][k])
             Z.append(z)
             w = matvec(z)
             its += 1
@@ -1089,6 +1141,7 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
     newton = 0
     inner = np.dtype(np.float32 if inner_precision == "single" else np.float64)
     mv_out = np.empty(2 * n_int, inner)
+    krylov = {}  # Krylov bases kept across the Newton steps
     # single-precision inner solves cannot resolve relative reductions much below ~1e-6
     rtol_floor = 1e-4 if inner == np.float32 else 0.0
     with _blas_threads(1):
@@ -1098,7 +1151,6 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
             if P is None or not _preconditioner_still_fits(P, g, d["Spp"], eta):
                 P = _make_preconditioner(g, d["Spp"], eta, dtype=inner)
                 counts["pc_builds"] += 1
-            buf = np.empty(2 * n_int, inner)
             s1, s2 = inner.type(1.0 / qs), inner.type(1.0 / bs)
             a1, a2 = inner.type(qs), inner.type(bs)
 
@@ -1108,11 +1160,10 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
                 np.multiply(j2.reshape(-1), s2, out=out[n_int:])
                 return out
 
-            def precond(v, P=P, buf=buf, a1=a1, a2=a2):
-                x1, x2 = P.apply(v[:n_int].reshape(g.interior_shape) * a1, v[n_int:].reshape(g.interior_shape) * a2)
-                out = np.empty_like(buf)
-                out[:n_int] = x1.reshape(-1)
-                out[n_int:] = x2.reshape(-1)
+            def precond(v, out, P=P, a1=a1, a2=a2):
+                ish = g.interior_shape
+                P.apply_into(v[:n_int].reshape(ish), v[n_int:].reshape(ish), a1, a2,
+                             out[:n_int].reshape(ish), out[n_int:].reshape(ish))
                 return out
 
             rhs = np.empty(2 * n_int, inner)
@@ -1120,7 +1171,7 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
             np.multiply(r2.reshape(-1), -1.0 / bs, out=rhs[n_int:], casting="unsafe")
             rtol = min(0.5, max(eta_k, 0.5 * tol / max(history[-1], 1e-300), rtol_floor))
             pc_before = P.applications
-            dx, n_it, _rel = _gmres_right(matvec, precond, rhs, rtol, maxiter=max_gmres)
+            dx, n_it, _rel = _gmres_right(matvec, precond, rhs, rtol, maxiter=max_gmres, work=krylov)
             counts["pc"] += P.applications - pc_before
             counts["gmres"] += n_it
             counts["per_step"].append(n_it)
