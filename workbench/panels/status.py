@@ -228,11 +228,8 @@ class FilePanel(StatePanel):
         self.refresh_files_button = pn.widgets.Button(label="Refresh list", width=110,
                                                 css_classes=["pvwb-refresh-files"])
         self.refresh_files_button.on_click(lambda e: self._guard(self.refresh_list))
-        self.upload_input = pn.widgets.FileDropper(
-            max_file_size=f"{max(1, int(round(cap / 1024 ** 2)))}MB", multiple=False,
-            chunk_size=4 * 1024 * 1024, width=250, height=90, css_classes=["pvwb-upload"],
-            name="Upload a case file")
-        self.upload_input.param.watch(lambda ev: self._guard(self._uploaded, ev.new), "value")
+        self.upload_box = pn.Column(margin=0)
+        self._new_dropper()
         self.upload_note = pn.pane.Markdown(
             f"Upload a netCDF or GRIB2 file up to {_size_text(cap)}; it is checked like "
             "any file in the data folders.", styles={"font-size": "11px", "color": "#555"},
@@ -240,7 +237,7 @@ class FilePanel(StatePanel):
         self.refresh_list()
         return [pn.pane.Markdown("**Case**", margin=(0, 5)), self.file_table,
                 pn.Row(self.open_button, self.refresh_files_button), self.file_select,
-                self.file_path, self.upload_input, self.upload_note]
+                self.file_path, self.upload_box, self.upload_note]
 
     # ---------------------------------------------------------------- the list
     def refresh_list(self):
@@ -288,11 +285,25 @@ class FilePanel(StatePanel):
         self.work(f"Opening {label}", job, done)
 
     # ---------------------------------------------------------------- upload
+    def _new_dropper(self):
+        """A fresh drop zone (each upload gets its own: the browser's file list starts empty
+        and a replaced item cannot swallow the next upload)."""
+        cap = upload_max_bytes()
+        self.upload_input = pn.widgets.FileDropper(
+            max_file_size=f"{max(1, int(round(cap / 1024 ** 2)))}MB", multiple=False,
+            chunk_size=4 * 1024 * 1024, width=250, height=120, css_classes=["pvwb-upload"],
+            name="Upload a case file")
+        self.upload_input.param.watch(lambda ev: self._guard(self._uploaded, ev.new), "value")
+        self.upload_box[:] = [self.upload_input]
+
     def _uploaded(self, value):
         if not value:
             return
         name, data = next(iter(value.items()))
-        self.upload_file(name, data)
+        try:
+            self.upload_file(name, data)
+        finally:
+            self._new_dropper()
 
     def upload_file(self, name, data):
         """Save ``data`` (bytes) as ``name`` in a private temporary folder inside the first
