@@ -286,3 +286,26 @@ def test_upload_over_the_cap_or_badly_named_is_refused(bench, data_dir, monkeypa
     with pytest.raises(InputError, match="not named as a netCDF or GRIB2 file"):
         bench.files.upload_file("notes.exe", b"x" * 20)
     assert not list(data_dir.glob(".pvwb-upload-*"))
+
+
+def test_read_outs_on_a_map_in_the_datas_own_projection(tmp_path):
+    """On a Lambert conformal file drawn on its projection plane, every read-out layer lies
+    on the display grid of the field image, with that grid's longitudes and latitudes."""
+    import workbench as wb
+    from forecast_files import write_cf_netcdf
+    from workbench.views.interactive import MapView
+
+    write_cf_netcdf(tmp_path / "lam.nc", "lambert", grid_relative=True)
+    case = wb.open_case(tmp_path / "lam.nc")
+    st = State(case)
+    mv = MapView(st)
+    assert mv.native
+    lon, lat = case.data["longitude"].values, case.data["latitude"].values
+    st.add_piece(name="box", kind="interior", polygon=[(lon[3], lat[3]), (lon[-4], lat[3]),
+                                                       (lon[-4], lat[-4]), (lon[3], lat[-4])])
+    d = mv.src["field"].data
+    shape = d["image"][0].shape
+    assert all(d[k][0].shape == shape for k in ("lon", "lat", "aux", "zb", "bspd", "bdir"))
+    glat, glon = mv._glonlat
+    np.testing.assert_allclose(d["lon"][0], glon, atol=1e-4)
+    assert np.nanmax(np.abs(d["zb"][0])) > 0 and np.isfinite(d["aux"][0]).mean() > 0.5
