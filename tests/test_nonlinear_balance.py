@@ -369,3 +369,22 @@ def test_jacobian_product_on_periodic_and_non_uniform_grids(periodic, uniform):
             fd = (x - y) / (2 * h)
             assert np.abs(j - fd).max() <= rtol * np.abs(fd).max()
             assert np.array_equal(j, jb)
+
+
+@pytest.mark.parametrize("periodic", [False, True])
+def test_preconditioner_in_place_form_equals_its_definition(periodic):
+    # the in-place application forms lap dPhi from the first solve's own equation instead of applying
+    # the Laplacian; it must equal the direct form (flux-form Laplacian of the solved dPhi) to round-off
+    lon = np.arange(0.0, 360.0, 20.0) if periodic else np.linspace(-40.0, 40.0, 13)
+    g = nl.BalanceGrid(np.linspace(30.0, 70.0, 11), lon, np.linspace(100000.0, 20000.0, 6))
+    Phi, u, v, tb, tt = nl._invented_state(g, 0.5)
+    psi = nl.streamfunction(g, u, v)
+    d = nl._terms(g, Phi, psi, tb, tt)
+    rng = np.random.default_rng(2)
+    v1, v2 = rng.standard_normal(g.interior_shape), rng.standard_normal(g.interior_shape)
+    P = nl._make_preconditioner(g, d["Spp"], g.fi + d["zeta"])
+    x1, x2 = P.apply(v1 * 3e-6, v2 * 2e-9)
+    o1, o2 = np.empty(g.interior_shape), np.empty(g.interior_shape)
+    P.apply_into(v1, v2, 3e-6, 2e-9, o1, o2)
+    assert np.abs(o1 - x1).max() <= 1e-12 * np.abs(x1).max()
+    assert np.abs(o2 - x2).max() <= 1e-11 * np.abs(x2).max()

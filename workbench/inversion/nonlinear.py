@@ -786,29 +786,39 @@ class _Preconditioner:
         self.B = _LatSeparable(grid.qg, coeffs, nv=1, dtype=dt)
         self.scale = ((ei[:, None] / srow[:, None])[None] / (grid.C * S)[:, None, None]).astype(dt)
         self._hc = grid.coefficients(dt)[0]
+        gpos = 1.0 / np.abs(grid.dpi)  # the weights of grid.T
+        self._gpos = gpos.astype(dt)[:, None, None]
+        self._vfac = ((ei ** 2 / srow)[None, :, None] / (grid.hpos * S)[:, None, None]).astype(dt)  # cy / w
         self.applications = 0
         self._full = np.zeros(grid.shape, dt)
 
     def apply_into(self, v1, v2, a1, a2, out1, out2):
         """``apply(a1 v1, a2 v2)`` written into (out1, out2) with work arrays of its own (the
-        inner loop of the Newton solve: no allocation besides the transforms')."""
+        inner loop of the Newton solve: no allocation besides the transforms').  The right-hand
+        side of the psi solve, ``lap dPhi - r2``, is formed as ``scale r1 - cy S^-1 D_pipi dPhi``
+        (what the first solve's equation says ``lap dPhi`` is) instead of applying the Laplacian."""
         g = self.grid
         self.applications += 1
-        ish = g.interior_shape
+        nz, nyi, nxi = ish = g.interior_shape
         w = self.__dict__.setdefault("_work", {})
         if "rhs" not in w:
-            for k in ("rhs", "r2", "w1", "w2", "w3", "w4"):
+            for k in ("rhs", "rb"):
                 w[k] = np.empty(ish, self.scale.dtype)
-        rhs, r2 = w["rhs"], w["r2"]
-        np.multiply(v1, self.scale * a1, out=rhs)
-        np.multiply(v2, a2, out=r2)
-        rhs += r2
+            w["d"] = np.empty((nz - 1, nyi, nxi), self.scale.dtype)
+        rhs, rb, d = w["rhs"], w["rb"], w["d"]
+        np.multiply(v1, self.scale * a1, out=rb)
+        np.multiply(v2, a2, out=rhs)
+        rhs += rb
         self.A.solve_into(rhs, out1)
-        full = self._full
-        full[..., 1:-1, g.ls] = out1
-        (rb,) = g.lap_and_div_f_grad(full, coeffs=(self._hc,), outs=(rhs,),
-                                     work=(w["w1"], w["w2"], w["w3"], w["w4"]))
-        rb -= r2
+        # T dPhi (T: the symmetric vertical second difference with weights gpos), then cy / w
+        np.subtract(out1[1:], out1[:-1], out=d)
+        d *= self._gpos
+        rb[0] -= self._vfac[0] * d[0]
+        t = rhs[1:-1]
+        np.subtract(d[1:], d[:-1], out=t)
+        t *= self._vfac[1:-1]
+        rb[1:-1] -= t
+        rb[-1] += self._vfac[-1] * d[-1]
         self.B.solve_into(rb, out2)
         return out1, out2
 
