@@ -388,3 +388,11 @@ def test_preconditioner_in_place_form_equals_its_definition(periodic):
     P.apply_into(v1, v2, 3e-6, 2e-9, o1, o2)
     assert np.abs(o1 - x1).max() <= 1e-12 * np.abs(x1).max()
     assert np.abs(o2 - x2).max() <= 1e-11 * np.abs(x2).max()
+
+
+def test_unknown_inner_precision_is_refused():
+    from workbench.errors import InputError
+
+    g, q, tb, tt, Phi, psi = nl.bench_problem((5, 9, 11), amplitude=0.5)
+    with pytest.raises(InputError, match="inner_precision must be 'single' or 'double'"):
+        nl.solve_balance(g, q, tb, tt, Phi, psi, inner_precision="half")

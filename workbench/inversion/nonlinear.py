@@ -1102,6 +1102,8 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
     BalanceResult
     """
     t_start = _time.perf_counter()
+    if inner_precision not in ("single", "double"):
+        raise InputError(f"nonlinear balance: inner_precision must be 'single' or 'double' (got {inner_precision!r}).")
     g = grid
     q = np.asarray(q, float)
     theta_b, theta_t = np.asarray(theta_b, float), np.asarray(theta_t, float)
