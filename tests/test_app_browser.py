@@ -233,6 +233,7 @@ def test_label_and_save_session_from_the_page(page, case_file, anomaly_centre):
     page.get_by_text("Annotate", exact=True).click()
     page.locator(".pvwb-label-text input").fill("L")
     page.get_by_role("button", name="Place a label").click()
+    page.evaluate("() => window.scrollTo(0, 0)")  # the map in view (the sidebar is long)
     page.wait_for_timeout(300)
     x, y = page.evaluate(JS_TO_SCREEN, [(lon, lat + 2 * ry)])[0]
     page.mouse.click(x, y)
