@@ -184,7 +184,7 @@ def test_overlay_widgets_set_the_state(bench):
     assert st.overlay_arrow_stride == 4
     bench.arrow_stride.value = 0
     assert st.overlay_arrow_stride is None
-    assert bench.overlay_pieces.options == ["trough", "ridge"]
+    assert list(bench.overlay_pieces.options.values()) == ["trough", "ridge"]
     bench.overlay_pieces.value = ["ridge"]
     assert st.overlay_left_out == ["trough"]
     bench.contour_interval.value = -3.0  # refused by the State: message, box restored
@@ -309,3 +309,20 @@ def test_read_outs_on_a_map_in_the_datas_own_projection(tmp_path):
     glat, glon = mv._glonlat
     np.testing.assert_allclose(d["lon"][0], glon, atol=1e-4)
     assert np.nanmax(np.abs(d["zb"][0])) > 0 and np.isfinite(d["aux"][0]).mean() > 0.5
+
+
+def test_piece_names_reach_the_list_widgets_and_tooltips_as_text(small_case):
+    """The pieces' list widgets render their labels as HTML and tooltip templates are HTML:
+    a piece name goes in escaped (labels) or as a data column (tooltips)."""
+    from workbench.panels import ComparePanel, OverlayPanel
+    from workbench.views.interactive import MapView
+
+    name = '<img src=x onerror="window.__pwned=1">'
+    st = State(small_case)
+    st.add_piece(name=name, kind="interior", polygon=TROUGH)
+    cp, op, mv = ComparePanel(st), OverlayPanel(st), MapView(st)
+    for w in (op.overlay_pieces, cp.controls_a.objects[-1]):
+        assert list(w.options) == ["&lt;img src=x onerror=&quot;window.__pwned=1&quot;&gt;"]
+        assert list(w.options.values()) == [name]
+    assert all(name not in str(v) for _, v in mv.hover.tooltips)
+    assert mv.src["field"].data["pnames"] == [name]

@@ -16,6 +16,7 @@ from __future__ import annotations
 import panel as pn
 import param
 
+from ..textsafe import escape
 from .base import StatePanel
 
 __all__ = ["ComparePanel", "SHARED"]
@@ -104,8 +105,9 @@ class ComparePanel(StatePanel):
             vis = [p.name for p in side.pieces if p.visible]
             busy["on"] = True
             try:
-                if list(pieces.options) != vis:
-                    pieces.options = vis
+                if list(dict(pieces.options).values()) != vis:
+                    # (the list widget renders its labels as HTML: names are escaped labels)
+                    pieces.options = {escape(n): n for n in vis}
                 self.to_widget(pieces, [n for n in vis if n not in side.overlay_left_out])
             finally:
                 busy["on"] = False

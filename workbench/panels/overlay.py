@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import panel as pn
 
+from ..textsafe import escape
 from .base import StatePanel
 
 __all__ = ["OverlayPanel"]
@@ -78,8 +79,9 @@ class OverlayPanel(StatePanel):
             self.to_widget(self.arrow_stride, st.overlay_arrow_stride or 0)
             self.to_widget(self.arrow_speed, st.overlay_arrow_speed or 0.0)
             vis = self._visible()
-            if list(self.overlay_pieces.options) != vis:
-                self.overlay_pieces.options = vis
+            if list(dict(self.overlay_pieces.options).values()) != vis:
+                # (the list widget renders its labels as HTML: names are escaped labels)
+                self.overlay_pieces.options = {escape(n): n for n in vis}
             self.to_widget(self.overlay_pieces,
                            [n for n in vis if n not in st.overlay_left_out])
         finally:

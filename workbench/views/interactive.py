@@ -841,6 +841,8 @@ class MapView:
                 self._readout[key] = [np.full(shape, np.nan, np.float32)]
             if key not in data or np.shape(data[key][0]) != shape:
                 layers[key] = self._readout[key]
+        if "pnames" not in data:
+            layers["pnames"] = self._readout.setdefault("pnames", [""])
         layers["aux"] = [np.asarray(layers["aux"][0], np.float32)]
         data.update(**layers)
         self._tips["field"] = [(name, f"@image{{{fmt}}} {units}"),
@@ -854,6 +856,7 @@ class MapView:
             shape = self._lonlat_layers()[0].shape
             self._readout = {k: [np.full(shape, np.nan, np.float32)] for k in ("zb", "bspd",
                                                                                  "bdir")}
+            self._readout["pnames"] = [""]
             self._tips["balanced"] = []
         else:
             get = lambda n: ov[n].transpose("latitude", "longitude").values  # noqa: E731
@@ -862,9 +865,11 @@ class MapView:
                 ("bdir", "wind_from_direction"))}
             names = ", ".join(ov.attrs["pieces"])
             lev = f"{ov.attrs['level_hpa']:g} hPa"
+            # (piece names are user text: a data column, inserted as text, never template)
+            self._readout["pnames"] = [names]
             self._tips["balanced"] = [(f"balanced Z′ ({lev})", "@zb{0.0} m"),
                                       (f"balanced wind ({lev})", "@bspd{0.0} m/s from @bdir{0}°"),
-                                      ("of", names)]
+                                      ("of", "@pnames")]
         if "image" in self.src["field"].data and \
                 self.src["field"].data["image"][0].shape == self._readout["zb"][0].shape:
             self.src["field"].data.update(**self._readout)
