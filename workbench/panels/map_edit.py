@@ -63,12 +63,13 @@ class MapEditing:
                                description="Move labels (drag the square under a label)"),
         )
         fig.add_tools(*self.tools.values())
-        # switching a several-gesture tool off also clears the drag gesture's active tool in
-        # BokehJS, so after any switch the chosen tools are switched on again, in the browser
+        # switching a several-gesture tool off also clears the drag and tap gestures' active
+        # tools in BokehJS, so after any switch the chosen tools are switched on again, in the
+        # browser
         tb = fig.toolbar
         tb.js_on_change("active_multi", CustomJS(args=dict(tb=tb), code="""
             setTimeout(() => {
-              for (const t of [tb.active_drag, tb.active_multi]) {
+              for (const t of [tb.active_drag, tb.active_tap, tb.active_multi]) {
                 if (t != null && t != "auto") { t.active = false; t.active = true; }
               }
             }, 0);"""))
