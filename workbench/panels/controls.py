@@ -201,14 +201,14 @@ class CaseControls(StatePanel):
         """Play/pause, frames per second, undo/redo buttons and the key listener."""
         pg = self.state.page
         self._loop = None
-        self.play = pn.widgets.Toggle(name="▶ Play", width=80, margin=(5, 2, 5, 5),
+        self.play = pn.widgets.Toggle(label="▶ Play", width=80, margin=(5, 2, 5, 5),
                                       css_classes=["pvwb-play"])
-        self.fps = pn.widgets.FloatInput(name="", value=float(pg.play_fps), start=0.1, end=10.0,
+        self.fps = pn.widgets.FloatInput(label="", value=float(pg.play_fps), start=0.1, end=10.0,
                                          step=0.5, width=60, css_classes=["pvwb-fps"],
                                          margin=(5, 2, 5, 2))
-        self.undo_button = pn.widgets.Button(name="↶ Undo (Ctrl+Z)", width=120,
+        self.undo_button = pn.widgets.Button(label="↶ Undo (Ctrl+Z)", width=120,
                                              css_classes=["pvwb-undo"], margin=(5, 2, 5, 5))
-        self.redo_button = pn.widgets.Button(name="↷ Redo", width=80, css_classes=["pvwb-redo"],
+        self.redo_button = pn.widgets.Button(label="↷ Redo", width=80, css_classes=["pvwb-redo"],
                                              margin=(5, 2, 5, 2))
         self.undo_button.on_click(lambda e: self._guard(self.undo))
         self.redo_button.on_click(lambda e: self._guard(self.redo))
@@ -236,12 +236,12 @@ class CaseControls(StatePanel):
             self._loop.stop()
             self._loop = None
         if on:
-            self.play.name = "⏸ Pause"
+            self.play.label = "⏸ Pause"
             self._loop = pn.state.add_periodic_callback(
                 lambda: self._guard(self.step_time, +1),
                 period=int(1000.0 / self.state.page.play_fps))
         else:
-            self.play.name = "▶ Play"
+            self.play.label = "▶ Play"
 
     def _history_buttons(self):
         st = self.state
