@@ -200,10 +200,10 @@ def test_plain_dataarray_map(small_case):
 def test_section_figure_from_a_state(state):
     fig = static.section_figure(state)
     text = _flat(static.figure_text(fig))
-    assert "Cross-section 'main' A 45.0N 30.0W to B 50.0N 30.0E" in text
+    assert "Cross-section 'main' A (30.0°W, 45.0°N) to B (30.0°E, 50.0°N)" in text
     assert "dynamic tropopause (2 PVU)" in text
     assert "upper: balanced normal wind" in text
-    assert "QG omega of the full flow" in text
+    assert "QG ω of the full inversion" in text
     assert "fold" in text and "by id" in text  # by index and by section name
     assert "jet" not in text  # map annotations stay on maps
     assert _flat(static.CAUTION) in text

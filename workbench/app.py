@@ -178,7 +178,6 @@ class Workbench:
         if st.case is None:
             st.set_status("Open a case to start.", "info")
             return
-        self.files.refresh_list()
         self.later(st.warm)  # anomaly and solver ready before the first lasso
         st.set_status(f"Case {st.case.name!r}: {len(st.case.times)} time(s), "
                       f"{len(st.case.levels_hpa)} levels. Lasso an anomaly to invert it.", "info")

@@ -55,7 +55,8 @@ class StatePanel:
     notebook (``MapPanel(state)`` as the last line of a cell, or ``pn.panel(...)``).
     """
 
-    #: State parameters that make the panel rebuild itself (a new case means a new grid)
+    #: State parameters that make the panel rebuild itself (a new case means a new grid);
+    #: empty for a panel that does not depend on the case
     rebuild_on = ("case",)
 
     def __init__(self, state):
@@ -63,8 +64,9 @@ class StatePanel:
         self.state = state
         self._watchers = []
         self.layout = pn.Column(sizing_mode="stretch_width")
-        self._case_watcher = state.param.watch(lambda *ev: self._guard(self._rebuild),
-                                               list(self.rebuild_on))
+        self._case_watcher = (state.param.watch(lambda *ev: self._guard(self._rebuild),
+                                                list(self.rebuild_on))
+                              if self.rebuild_on else None)
         self._rebuild()
 
     # ---------------------------------------------------------------- life cycle

@@ -207,9 +207,15 @@ class FilePanel(StatePanel):
     """Open a case file from the data folders (``state.page.data_dirs``): a list with each
     file's times and size (pick a row, then Open), a file name box, and an upload (capped,
     see the module docstring). A file that fails to open leaves the current case and its
-    one-line message in the status line."""
+    one-line message in the status line.
+
+    Built once: a new case only refreshes the list (rebuilding would re-create the drop zone
+    while the browser still animates the finished upload, a script error in the page)."""
+
+    rebuild_on = ()
 
     def build(self):
+        self.watch(self.refresh_list, ["case"])
         cap = upload_max_bytes()
         self.file_select = pn.widgets.Select(label="Case file (data folders)", options={},
                                              width=250)
@@ -286,24 +292,25 @@ class FilePanel(StatePanel):
 
     # ---------------------------------------------------------------- upload
     def _new_dropper(self):
-        """A fresh drop zone (each upload gets its own: the browser's file list starts empty
-        and a replaced item cannot swallow the next upload)."""
+        """The drop zone. One zone serves every upload: a new drop replaces the browser's item
+        (one file at a time) and each finished file is taken out of the widget's value as soon
+        as it arrives, so its bytes are not kept and the next upload is seen as new. (Swapping
+        in a fresh zone per upload made the drop zone's preview script fail in the page.)"""
         cap = upload_max_bytes()
         self.upload_input = pn.widgets.FileDropper(
             max_file_size=f"{max(1, int(round(cap / 1024 ** 2)))}MB", multiple=False,
             chunk_size=4 * 1024 * 1024, width=250, height=120, css_classes=["pvwb-upload"],
-            name="Upload a case file")
+            previews=[], name="Upload a case file")
         self.upload_input.param.watch(lambda ev: self._guard(self._uploaded, ev.new), "value")
         self.upload_box[:] = [self.upload_input]
 
     def _uploaded(self, value):
-        if not value:
+        if not value:  # the browser dropped its old item (replaced by a new drop)
             return
-        name, data = next(iter(value.items()))
-        try:
-            self.upload_file(name, data)
-        finally:
-            self._new_dropper()
+        name = next(iter(value))
+        data = value.pop(name)  # in place: the widget forgets the bytes, nothing is re-sent
+        self.upload_input.mime_type.pop(name, None)
+        self.upload_file(name, data)
 
     def upload_file(self, name, data):
         """Save ``data`` (bytes) as ``name`` in a private temporary folder inside the first
