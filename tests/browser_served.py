@@ -42,7 +42,7 @@ def served_page(case, data_dir, log_path, env=None, viewport=(1500, 1300)):
     os.environ.update(env or {})
     log = open(log_path, "w")
     try:
-        proc, url = start_server(case, free_port(), log, ["--data-dir", data_dir])
+        proc, url = start_server(case, free_port(), log, ["--data-folder", data_dir])
     except RuntimeError as exc:
         log.close()
         pytest.fail(str(exc))

@@ -1,7 +1,7 @@
 """The served workbench in real headless Chromium (Debian's /usr/bin/chromium through
 Playwright's Python API; no browser is ever downloaded).
 
-One server (``python -m workbench.cli serve CASE --port P --data-dir D`` on 127.0.0.1) and one
+One server (``python -m workbench.cli serve CASE --page-port P --data-folder D`` on 127.0.0.1) and one
 page serve the tests of this module, which run in order like a forecaster's session: load,
 lasso a piece, draw a section, open a bad file. Screenshots go to tests/artifacts/.
 """
@@ -48,7 +48,7 @@ def case_file(tmp_path_factory, small_case_path):
 def server(case_file):
     log = open(case_file.parent.parent / "server.log", "w")
     try:
-        proc, url = start_server(case_file, free_port(), log, ["--data-dir", case_file.parent])
+        proc, url = start_server(case_file, free_port(), log, ["--data-folder", case_file.parent])
     except RuntimeError as exc:
         log.close()
         pytest.fail(str(exc))

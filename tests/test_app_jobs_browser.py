@@ -61,7 +61,7 @@ def server(folders):
     log = open(out.parent / "server.log", "w")
     try:
         proc, url = start_server(case_file, free_port(), log,
-                                 ["--data-dir", case_file.parent, "--output-dir", out])
+                                 ["--data-folder", case_file.parent, "--output-folder", out])
     except RuntimeError as exc:
         log.close()
         pytest.fail(str(exc))

@@ -55,7 +55,7 @@ def case_file(tmp_path_factory, small_case_path):
 def server(case_file):
     log = open(case_file.parent.parent / "server.log", "w")
     try:
-        proc, url = start_server(case_file, free_port(), log, ["--data-dir", case_file.parent])
+        proc, url = start_server(case_file, free_port(), log, ["--data-folder", case_file.parent])
     except RuntimeError as exc:
         log.close()
         pytest.fail(str(exc))

@@ -188,7 +188,7 @@ def page(folder):
     case_path = next(folder.glob("storm *.nc"))
     log = open(folder.parent / "server.log", "w")
     try:
-        proc, url = start_server(case_path, free_port(), log, ["--data-dir", folder])
+        proc, url = start_server(case_path, free_port(), log, ["--data-folder", folder])
     except RuntimeError as exc:
         log.close()
         pytest.fail(str(exc))

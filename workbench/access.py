@@ -49,7 +49,7 @@ def resolve_data_path(path, data_dirs, what="file") -> Path:
     dirs = folders(data_dirs)
     if not dirs:
         raise AccessError("no data folders are configured, so no file can be opened from the "
-                          "page; start the server with --data-dir FOLDER")
+                          "page; start the server with --data-folder FOLDER")
     text = os.fspath(path).strip() if path is not None else ""
     if not text or "\x00" in text:
         raise AccessError("give the name of a file inside the data folders")
@@ -83,7 +83,7 @@ def resolve_output_path(name, out_dirs, suffixes=None) -> Path:
     dirs = folders(out_dirs)
     if not dirs:
         raise AccessError("no output folder is configured, so nothing can be saved from the "
-                          "page; start the server with --output-dir FOLDER (or --data-dir)")
+                          "page; start the server with --output-folder FOLDER (or --data-folder)")
     text = os.fspath(name).strip() if name is not None else ""
     if not text:
         raise InputError("give a file name to save to")

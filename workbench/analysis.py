@@ -10,6 +10,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .places import point_label
 from .errors import GridError, InputError
 
 __all__ = ["standard_pieces", "cyclonic_sign", "storm_centre", "analyse", "above_ground_target", "default_case_path", "load_pieces", "main"]
@@ -109,11 +110,11 @@ def above_ground_target(case, target, time=None, member=None):
     k0 = int(below.isel(latitude=slice(j - 1, j + 1), longitude=slice(i - 1, i + 1)).sum("pressure").max())
     levels = case.levels_hpa
     if k0 >= levels.size:
-        raise InputError(f"The target {lon:g} E, {lat:g} N lies under the ground at every level; pick "
+        raise InputError(f"The target {point_label(lon, lat, None)} lies under the ground at every level; pick "
                          "another point.")
     if p <= levels[k0] + 1e-9:
         return (lon, lat, p), None
-    note = (f"The target {p:g} hPa lies below the ground at {lon:.1f} E, {lat:.1f} N; it was moved up "
+    note = (f"The target {p:g} hPa lies below the ground at {point_label(lon, lat)}; it was moved up "
             f"to {levels[k0]:g} hPa, the first level above the ground there.")
     return (lon, lat, float(levels[k0])), note
 

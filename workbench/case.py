@@ -15,6 +15,7 @@ from collections import OrderedDict
 import numpy as np
 import xarray as xr
 
+from .places import lat_range, lon_range, point_label
 from . import physics
 from .checks import load_fields
 from .errors import GridError, InputError
@@ -639,9 +640,9 @@ class Case:
         if (lat.min() < clat.min() - tol or lat.max() > clat.max() + tol or lon.min() < clon.min() - tol
                 or lon.max() > clon.max() + tol or p.max() > cp.max() + tol or p.min() < cp.min() - tol):
             raise GridError(
-                f"The climatology {label} covers {clat.min():g}..{clat.max():g} N, {clon.min():g}.."
-                f"{clon.max():g} E, {cp.max() / 100:g}..{cp.min() / 100:g} hPa but the case needs "
-                f"{lat.min():g}..{lat.max():g} N, {lon.min():g}..{lon.max():g} E, {p.max() / 100:g}.."
+                f"The climatology {label} covers {lat_range(clat.min(), clat.max())}, "
+                f"{lon_range(clon.min(), clon.max())}, {cp.max() / 100:g}..{cp.min() / 100:g} hPa but the case needs "
+                f"{lat_range(lat.min(), lat.max())}, {lon_range(lon.min(), lon.max())}, {p.max() / 100:g}.."
                 f"{p.min() / 100:g} hPa; make a climatology that covers the case's domain and levels.")
         try:
             # linear in ln p vertically, linear in latitude/longitude
@@ -821,8 +822,8 @@ class Case:
             raise InputError(
                 f"{what} needs complete fields, but {str(self.times[ti])[:16]} has "
                 f"{info['n_gap_points']} missing values in gaps larger than {physics.MAX_GAP_POINTS} points "
-                f"(largest {info['largest_gap']}, e.g. at {float(gaps['longitude'][i]):g} E, "
-                f"{float(gaps['latitude'][j]):g} N, {float(gaps['pressure'][k]) / 100:g} hPa); "
+                f"(largest {info['largest_gap']}, e.g. at "
+                f"{point_label(float(gaps['longitude'][i]), float(gaps['latitude'][j]), None)}, {float(gaps['pressure'][k]) / 100:g} hPa); "
                 "choose a region without them or fill the data.")
 
     def clear_cache(self):

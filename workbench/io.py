@@ -20,6 +20,7 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
+from .places import domain_label, lat_range, lon_range
 from .errors import FileFormatError, GridError, InputError, MissingVariableError, UnitsError
 from .units import G, units
 
@@ -490,7 +491,7 @@ def _to_latlon(ds, *, variables, region, grid_step, winds):
     out["longitude"].attrs = dict(standard_name="longitude", units="degrees_east")
     notes.insert(0, f"Native grid: {name} ({how}), {len(xa)} x {len(ya)} points at {dxkm:.3g} km; computed on "
                     f"a {step:g} degree latitude-longitude grid ({lat.size} x {lon.size}, "
-                    f"{lat[0]:g}..{lat[-1]:g} N, {(lon[0] + 180) % 360 - 180:g}..{(lon[-1] + 180) % 360 - 180:g} E) by linear interpolation on the "
+                    f"{lat_range(lat[0], lat[-1])}, {lon_range(lon[0], lon[-1])}) by linear interpolation on the "
                     "projection plane.")
     out.attrs.update(native_crs=crs.to_wkt(), native_projection=name,
                      native_grid=f"{len(xa)} x {len(ya)}, {dxkm:.3g} km", latlon_step=step)
@@ -832,7 +833,7 @@ def _select(data, region=None, times=None):
             d = dict(lat_min=float(lat.min()), lat_max=float(lat.max()), lon_min=float(lon.min()),
                      lon_max=float(lon.max()))
             raise InputError(f"The region {w:g},{e:g},{s_:g},{n_:g} (W,E,S,N) holds fewer than 3 x 3 grid points of "
-                             f"the data (domain {d['lon_min']:g}..{d['lon_max']:g} E, {d['lat_min']:g}..{d['lat_max']:g} N).")
+                             f"the data (domain {domain_label(d)}).")
         # start at the region's western edge: a global grid is rolled so that the region is contiguous
         ii = ii[np.argsort(np.mod(lon[ii] - w + 1e-9, 360.0), kind="stable")]
         newlon = lon[ii[0]] + np.mod(lon[ii] - lon[ii[0]], 360.0)
@@ -840,7 +841,7 @@ def _select(data, region=None, times=None):
             newlon = newlon - 360.0
         data = data.isel(latitude=slice(int(jj[0]), int(jj[-1]) + 1), longitude=ii)
         data = data.assign_coords(longitude=("longitude", newlon, dict(data["longitude"].attrs)))
-        _add_notes(data, [f"Cut to the region {w:g}..{e:g} E, {s_:g}..{n_:g} N."])
+        _add_notes(data, [f"Cut to the region {lon_range(w, e)}, {lat_range(s_, n_)}."])
     return data
 
 
@@ -866,14 +867,14 @@ def _precut(raw, region, coords=None):
         ii = np.nonzero(np.mod(lon - w + 1e-9, 360.0) <= width + 2e-9)[0]
         if jj.size < 3 or ii.size < 3:
             raise InputError(f"The region {w:g},{e:g},{s_:g},{n_:g} (W,E,S,N) holds fewer than 3 x 3 grid points of "
-                             f"the data (domain {lon.min():g}..{lon.max():g} E, {lat.min():g}..{lat.max():g} N).")
+                             f"the data (domain {lat_range(lat.min(), lat.max())}, {lon_range(lon.min(), lon.max())}).")
         sel[lat_n] = slice(int(jj.min()), int(jj.max()) + 1)
         # contiguous index ranges (a region across the seam of a global grid is two), each read
         # from the file in one piece; they are joined as Dask arrays (lazily)
         ii = np.sort(ii)
         breaks = np.nonzero(np.diff(ii) != 1)[0]
         runs = np.split(ii, breaks + 1)
-        notes.append(f"Cut to the region {w:g}..{e:g} E, {s_:g}..{n_:g} N.")
+        notes.append(f"Cut to the region {lon_range(w, e)}, {lat_range(s_, n_)}.")
         if len(runs) > 1:
             pieces = [raw.isel({**sel, lon_n: slice(int(r[0]), int(r[-1]) + 1)}).chunk() for r in runs]
             with warnings.catch_warnings():

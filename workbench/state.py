@@ -20,6 +20,7 @@ import numpy as np
 import param
 import xarray as xr
 
+from .places import domain_label, point_label
 from .errors import InputError, PieceError, WorkbenchError
 from .sections import Section
 
@@ -723,9 +724,8 @@ class State(param.Parameterized):
         d = self.case.domain
         lon, lat = float(lon), float(lat)
         if not (d["lat_min"] <= lat <= d["lat_max"] and d["lon_min"] <= lon <= d["lon_max"]):
-            raise InputError(f"target point ({lon:.2f}, {lat:.2f}) is outside the case domain "
-                             f"({d['lon_min']:g}..{d['lon_max']:g} E, {d['lat_min']:g}.."
-                             f"{d['lat_max']:g} N); click inside the map")
+            raise InputError(f"target point ({point_label(lon, lat, 2)}) is outside the case domain "
+                             f"({domain_label(d)}); click inside the map")
         p = self.overlay_level if pressure_hpa is None else float(pressure_hpa)
         self.target = (lon, lat, p)
 

@@ -41,12 +41,12 @@ def free_port() -> int:
 
 
 def start_server(case, port, log, extra_args=(), timeout=120.0):
-    """Start `pvwb serve CASE --port PORT [extra_args]` writing to the open file ``log``;
+    """Start `pvwb serve CASE --page-port PORT [extra_args]` writing to the open file ``log``;
     return (process, url) once the page answers. Raises RuntimeError (with the log's tail when
     the server exits) if it does not answer within ``timeout`` seconds."""
     env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
     proc = subprocess.Popen([sys.executable, "-m", "workbench.cli", "serve", str(case),
-                             "--port", str(port), *map(str, extra_args)],
+                             "--page-port", str(port), *map(str, extra_args)],
                             cwd=str(ROOT), env=env, stdout=log, stderr=subprocess.STDOUT)
     url = f"http://127.0.0.1:{port}/"
     t0 = time.time()

@@ -60,6 +60,7 @@ import xarray as xr
 
 from workbench.errors import DomainError, InputError, PieceError
 from workbench.inversion.fields import _ATTRS, central_f0, hydrostatic_temperature, spatial_dims
+from workbench.places import point_label
 from workbench.inversion.operator import QGGrid, horizontal_laplacian
 from workbench.inversion.solver import SeparableSolver, _blas_threads
 from workbench.units import CP, EARTH_RADIUS, G, KAPPA, OMEGA, P0, PVU
@@ -1007,7 +1008,7 @@ def _gmres_right(matvec, precond, b, rtol, maxiter, restart=30, work=None):
 
 def _where_text(grid, mask):
     k, j, i = np.argwhere(mask)[0]
-    return (f"{grid.lon[i]:g} E, {grid.lat[j]:g} N, {grid.pressure[k] / 100:g} hPa")
+    return f"{point_label(grid.lon[i], grid.lat[j], None)}, {grid.pressure[k] / 100:g} hPa"
 
 
 def check_ellipticity(grid, q, eta, pv_floor=None, eta_floor=None):

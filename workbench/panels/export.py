@@ -119,7 +119,7 @@ class ExportPanel(StatePanel):
 
         self.watch(fs_to_widgets, ["figure_settings"])
         briefing_box = self._briefing_fields()
-        where = st.page.output_dir or "(none: start with --output-dir)"
+        where = st.page.output_dir or "(none: start with --output-folder)"
         return [TextHTML(f"Files are written to <b>{escape(where)}</b>.", margin=(0, 8),
                          styles={"font-size": "13px"}, css_classes=["pvwb-output-folder"]),
                 self.files.overwrite,

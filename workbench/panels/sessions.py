@@ -140,7 +140,7 @@ class SessionPanel(StatePanel):
             return open_case(real)
         raise AccessError(f"the session's case {block['path']!r} is not in the data folders "
                           f"or not found there ({', '.join(data_dirs) or 'none'}); copy "
-                          "it there or start the server with --data-dir on its folder")
+                          "it there or start the server with --data-folder on its folder")
 
     def load_session_file(self, name=None, accept_modified=False):
         """Load a session file from the data or output folders into the page (the case it

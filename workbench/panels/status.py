@@ -229,7 +229,7 @@ class FilePanel(StatePanel):
             hidden_columns=["path", "note"], layout="fit_columns", height=170, width=262,
             widths={"file": 100, "size": 58, "times": 102},
             formatters={"file": {"type": "textarea"}, "times": {"type": "textarea"}},
-            sizing_mode="fixed", css_classes=["pvwb-file-table"], name="pvwb-file-table")
+            sizing_mode="fixed", css_classes=["pvwb-file-table"])
         self.file_table.param.watch(lambda ev: self._guard(self._picked, ev.new), "selection")
         self.refresh_files_button = pn.widgets.Button(label="Refresh list", width=110,
                                                 css_classes=["pvwb-refresh-files"])
@@ -300,7 +300,7 @@ class FilePanel(StatePanel):
         self.upload_input = pn.widgets.FileDropper(
             max_file_size=f"{max(1, int(round(cap / 1024 ** 2)))}MB", multiple=False,
             chunk_size=4 * 1024 * 1024, width=250, height=120, css_classes=["pvwb-upload"],
-            previews=[], name="Upload a case file")
+            previews=[], label="Upload a case file")
         self.upload_input.param.watch(lambda ev: self._guard(self._uploaded, ev.new), "value")
         self.upload_box[:] = [self.upload_input]
 
@@ -332,7 +332,7 @@ class FilePanel(StatePanel):
         dirs = _folders(self.state.page.data_dirs)
         if not dirs:
             raise InputError("no data folder is configured, so an upload has nowhere to go; "
-                             "start the server with --data-dir FOLDER")
+                             "start the server with --data-folder FOLDER")
         try:
             folder = Path(tempfile.mkdtemp(prefix=".pvwb-upload-", dir=dirs[0]))
         except OSError as exc:
