@@ -243,7 +243,7 @@ def sample_state(sample_case_path):
 
 
 @pytest.mark.slow
-def test_refine_replaces_the_table_and_overlay_and_names_the_balance(sample_state):
+def test_refine_replaces_the_table_and_overlay_and_names_the_balance(sample_state, tmp_path):
     from workbench.inversion.pieces import attribution
     from workbench.panels.attribution import AttributionPanel
 
@@ -265,6 +265,25 @@ def test_refine_replaces_the_table_and_overlay_and_names_the_balance(sample_stat
     assert np.allclose(panel.attribution_frame["height_anomaly"].values, ref["height_anomaly"].values,
                        rtol=1e-6, atol=1e-6)
     assert not np.allclose(st.overlay()["height_anomaly"].values, qg_overlay["height_anomaly"].values)
+    # the netCDF export writes the balance the page shows: the refined nonlinear fields, with
+    # the nonlinear remainder, named as such; the winds are not labelled geostrophic
+    import xarray as xr
+
+    from workbench.panels.export import ExportPanel
+
+    out = tmp_path / "out"
+    out.mkdir()
+    st.page.output_dir = str(out)
+    exporter = ExportPanel(st)
+    path = exporter.export_netcdf()
+    nl_results = st.refined_results()
+    with xr.open_dataset(path) as ds:
+        assert ds.attrs["balance"] == "nonlinear balance" and "nonlinear" in ds.attrs["title"]
+        np.testing.assert_allclose(ds["total_u"].values, nl_results["total"]["u"].values,
+                                   rtol=1e-6, atol=1e-9)
+        assert "nonlinear_remainder_u" in ds or any("nonlinear" in v and v.endswith("_u")
+                                                    for v in ds.data_vars)
+        assert "standard_name" not in ds["total_u"].attrs
     # back to QG: the preview numbers again; the choice is saved in the session dict
     st.balance = "qg"
     assert set(panel.attr_table.value["balance"]) == {"QG"}

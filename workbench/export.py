@@ -462,6 +462,7 @@ def export_balanced(
     case=None,
     settings: dict[str, Any] | None = None,
     variables=None,
+    balance: str = "qg",
 ) -> Path:
     """Write the balanced fields of chosen pieces to a CF-1.8 netCDF file, atomically.
 
@@ -482,6 +483,10 @@ def export_balanced(
         definitions are added under ``"pieces"`` when available.
     variables : list of str, optional
         Balanced variables to write (default every variable present).
+    balance : {"qg", "nonlinear"}
+        Which balance made ``results`` (recorded in the ``balance`` and ``title`` global
+        attributes). Nonlinear-balance winds are the nondivergent balanced winds (from the
+        streamfunction), not geostrophic winds: they get no CF standard_name.
 
     Each piece's variable ``X`` becomes ``<piece>_X`` with its CF units, a long_name that
     says it is the part attributed to the piece (no standard_name: a partial field is not
@@ -494,6 +499,8 @@ def export_balanced(
     """
     if path is None:
         raise ExportError("export_balanced needs an output path (e.g. 'balanced.nc')")
+    if balance not in ("qg", "nonlinear"):
+        raise ExportError(f"balance {balance!r} is unknown; use 'qg' or 'nonlinear'")
     if not isinstance(results, dict):
         results, pieces, case_s, state_settings = _state_results(results, pieces)
         case = case or case_s
@@ -517,6 +524,10 @@ def export_balanced(
             da = ds[var].copy()
             da.attrs = {k: v for k, v in da.attrs.items() if isinstance(v, (str, int, float))}
             da.attrs.update(BALANCED_CF.get(var, {}))
+            if balance == "nonlinear" and var in ("u", "v", "relative_vorticity"):
+                da.attrs.pop("standard_name", None)
+                da.attrs["long_name"] = da.attrs.get("long_name", var).replace(
+                    "(geostrophic)", "(nondivergent, nonlinear balance)")
             da.attrs["piece"] = str(name)
             if name != "total":
                 # a piece's field is a part of the balanced field, not a quantity CF names:
@@ -536,7 +547,10 @@ def export_balanced(
     version = package_version()
     out.attrs = {
         "Conventions": "CF-1.8",
-        "title": "Balanced fields of piecewise QG PV inversion",
+        "title": ("Balanced fields of piecewise QG PV inversion" if balance == "qg" else
+                  "Balanced fields of piecewise nonlinear-balance PV inversion (pieces of the "
+                  "linearised system plus the nonlinear remainder)"),
+        "balance": "QG" if balance == "qg" else "nonlinear balance",
         "institution": "PV Workbench user",
         "source": f"PV Workbench {version} (workbench.export.export_balanced)",
         "history": f"{now} exported by PV Workbench {version}",

@@ -272,7 +272,8 @@ class ExportPanel(StatePanel):
 
     def export_netcdf(self):
         """The balanced fields of every piece, the remainder and the full inversion
-        (export_balanced), as CF netCDF."""
+        (export_balanced), as CF netCDF: the nonlinear-balance fields (with the nonlinear
+        remainder) when nonlinear balance is chosen and a refine has made them, else QG."""
         from ..export import export_balanced
 
         st = self.state
@@ -283,7 +284,13 @@ class ExportPanel(StatePanel):
         self.files.refuse_existing(path, ExportError, "netCDF export")
         overwrite = bool(self.files.overwrite.value)
         snap, settings = self._snapshot(), st.to_dict()
-        self.work("Writing the balanced fields", lambda: export_balanced(
-            snap.results(), None, path, overwrite=overwrite, case=snap.case,
-            settings=settings), lambda: self.files.written(path, "Balanced fields saved to"))
+        # the refined nonlinear results when chosen and up to date (never computed here);
+        # else QG, computed in the job from the snapshot
+        results = st.refined_results() if st.balance == "nonlinear" else None
+        balance = "qg" if results is None else "nonlinear"
+        what = "QG" if balance == "qg" else "nonlinear-balance"
+        self.work(f"Writing the {what} balanced fields", lambda: export_balanced(
+            snap.results() if results is None else results, None, path, overwrite=overwrite,
+            case=snap.case, settings=settings, balance=balance),
+            lambda: self.files.written(path, f"Balanced fields ({what}) saved to"))
         return path
