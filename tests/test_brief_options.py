@@ -44,7 +44,8 @@ def test_title_page_texts_and_page_order(small_case, tmp_path):
 
 def test_default_pages_and_title_only(small_case, tmp_path):
     assert briefing_pages() == ["map", "tropopause", "sections", "attribution"]
-    assert briefing_pages(None, tendency=True) == list(PAGES)
+    assert briefing_pages(None, tendency=True) == [p for p in PAGES if p != "balance"]
+    assert briefing_pages(None, tendency=True, balance="nonlinear") == list(PAGES)
     assert briefing_pages("attribution, map") == ["attribution", "map"]
     out = make_briefing(small_case, None, tmp_path / "t.pdf", pages=[])
     pages = _texts(out)

@@ -10,8 +10,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .places import point_label
 from .errors import GridError, InputError
+from .places import point_label
 
 __all__ = ["standard_pieces", "cyclonic_sign", "storm_centre", "analyse", "above_ground_target", "default_case_path", "load_pieces", "main"]
 
@@ -265,9 +265,19 @@ def main(argv=None):
                              "wrong sign (points counted)")
     parser.add_argument("--balance-check", action="store_true",
                         help="also print, per level, the RMS balanced-minus-analysed wind for QG and nonlinear balance")
+    parser.add_argument("--balance-map", default=None, metavar="FIGURE",
+                        help="with --balance-check: also save a map of where the two balances differ "
+                             "(speed of nonlinear minus QG balanced wind) as FIGURE (.png, .pdf, .svg); "
+                             "with several times, one file per time (the time added to the name)")
+    parser.add_argument("--balance-level", type=float, default=500.0, metavar="HPA",
+                        help="pressure level of --balance-map (default 500; the nearest level is used)")
     args = parser.parse_args(argv)
     if args.floor and args.balance != "nonlinear" and not args.balance_check:
         parser.error("--floor applies to --balance nonlinear or --balance-check only")
+    if args.balance_map and not args.balance_check:
+        parser.error("--balance-map needs --balance-check")
+    if not 0.0 < args.balance_level <= 1100.0:
+        parser.error(f"--balance-level must be a pressure in hPa (0 < p <= 1100), got {args.balance_level:g}")
     target = _parse_target(args.target)
     if args.output:
         cli.check_output(args.output, args.overwrite)
@@ -280,6 +290,18 @@ def main(argv=None):
     times = range(case.times.size) if args.time is None else [
         int(args.time) if str(args.time).lstrip("-").isdigit() else args.time]
     times = [case.time_index(t) for t in times]  # checked before the work
+    balance_maps = {}
+    if args.balance_map:
+        suffix = Path(args.balance_map).suffix.lower()
+        if suffix not in (".png", ".pdf", ".svg"):
+            raise InputError(f"--balance-map {args.balance_map!r}: give a .png, .pdf or .svg file name")
+        for t in times:
+            p = Path(args.balance_map)
+            if len(times) > 1:
+                tag = str(case.times[t])[:13].replace("-", "").replace("T", "")
+                p = p.with_name(f"{p.stem}_{tag}Z{p.suffix}")
+            cli.check_output(str(p), args.overwrite)
+            balance_maps[t] = p
     import pandas as pd
 
     from .inversion.pieces import format_share
@@ -304,7 +326,13 @@ def main(argv=None):
                 na_rep=format_share(None)))
         print()
         if args.balance_check:
-            print_balance_check(case, t, member, args.reference, args.floor)
+            bq = print_balance_check(case, t, member, args.reference, args.floor)
+            if t in balance_maps:
+                from .views import static
+
+                static.save_figure(static.balance_map_figure(bq, args.balance_level, case, member),
+                                   balance_maps[t], overwrite=args.overwrite)
+                print(f"wrote {balance_maps[t]}")
         tables.append(table.assign(time=label, balance=args.balance).reset_index())
     if args.output:
         from .export import atomic_target, csv_text

@@ -10,7 +10,11 @@ Pages, in order:
    session's map already is on the tropopause);
 4. one page per section line of the session;
 5. the attribution table at the target point and one generated sentence per
-   piece on its share of the balanced height anomaly there.
+   piece on its share of the balanced height anomaly there;
+6. with ``balance="nonlinear"``: where nonlinear balance and QG differ (the speed of the
+   nonlinear minus the QG balanced wind at 500 hPa, with the RMS balanced-minus-analysed wind
+   of both balances there);
+7. with ``tendency=True``: the QG tendency attribution matrix.
 
 The title page can carry a headline, a free-text summary box and the forecaster's name and
 office (plain text, never interpreted as markup); ``pages=`` chooses the pages after the
@@ -234,8 +238,9 @@ def _caution_band(fig, invented):
     _caution(fig, None, invented)
 
 
-#: the pages a briefing can hold after the title page, in their default order
-PAGES = ("map", "tropopause", "sections", "attribution", "tendency")
+#: the pages a briefing can hold after the title page, in their default order ("balance":
+#: where nonlinear balance and QG differ, by default with balance="nonlinear" only)
+PAGES = ("map", "tropopause", "sections", "attribution", "balance", "tendency")
 #: the most wrapped lines of the summary box on the title page
 SUMMARY_MAX_LINES = 10
 _SUMMARY_SIZE = 10.5
@@ -283,11 +288,13 @@ def briefing_texts(headline=None, summary=None, author=None, office=None) -> dic
     return out
 
 
-def briefing_pages(pages=None, tendency=False) -> list:
+def briefing_pages(pages=None, tendency=False, balance="qg") -> list:
     """The pages after the title page, in order: ``pages`` (names of :data:`PAGES`, as a list or
-    a comma-separated text) or the default order (the tendency page only with ``tendency``)."""
+    a comma-separated text) or the default order (the tendency page only with ``tendency``, the
+    balance page only with ``balance="nonlinear"``)."""
     if pages is None:
-        return [p for p in PAGES if p != "tendency" or tendency]
+        return [p for p in PAGES if (p != "tendency" or tendency)
+                and (p != "balance" or balance == "nonlinear")]
     if isinstance(pages, str):
         pages = [p.strip() for p in pages.split(",") if p.strip()]
     pages = list(pages)
@@ -563,7 +570,7 @@ def briefing_figures(case, state, progress=None, tendency=False, balance="qg", f
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        order = briefing_pages(pages, tendency)
+        order = briefing_pages(pages, tendency, balance)
         pages = []
         view = static.state_view(state)
         settings = dataclasses.replace(view["settings"], width_in=PAGE[0])
@@ -597,6 +604,14 @@ def briefing_figures(case, state, progress=None, tendency=False, balance="qg", f
             elif name == "attribution":
                 fig, _ = _table_page(case, state, balance=balance, floor=floor)
                 pages.append(fig)
+                tick()
+            elif name == "balance":  # where nonlinear balance and QG differ (whole state)
+                from workbench.inversion.nonlinear import balance_quality
+
+                quality = balance_quality(case, state.time_index, state.member, state.reference,
+                                          floor=floor)
+                pages.append(static.balance_map_figure(quality, 500.0,
+                                                       case, state.member, settings, page_size=PAGE))
                 tick()
             elif name == "tendency":  # the QG tendency attribution matrix (pvwb brief --tendency)
                 pages.append(_tendency_page(case, state))
@@ -633,7 +648,7 @@ def make_briefing(case, state_or_session=None, path="briefing.pdf", overwrite: b
     if path.suffix.lower() != ".pdf":
         raise ExportError(f"briefing file {path.name} must end in .pdf")
     texts = briefing_texts(headline, summary, author, office)
-    order = briefing_pages(pages, tendency)
+    order = briefing_pages(pages, tendency, balance)
     state = _state_of(case, state_or_session)
     if path.exists() and not overwrite:  # refuse before the work, not after
         raise ExportError(
@@ -695,7 +710,8 @@ def main(argv=None) -> int:
     ap.add_argument("--office", help="forecaster's office on the title page")
     ap.add_argument("--pages", metavar="LIST",
                     help=f"pages after the title page, in order, comma-separated from {','.join(PAGES)} "
-                         "(default: all but tendency; tendency with --tendency)")
+                         "(default: all but balance and tendency; balance with --balance nonlinear, "
+                         "tendency with --tendency)")
     args = ap.parse_args(argv)
     if args.floor and args.balance != "nonlinear":
         ap.error("--floor applies to --balance nonlinear only")
@@ -708,7 +724,7 @@ def main(argv=None) -> int:
                 raise InputError(f"--summary-file {args.summary_file!r} cannot be read as UTF-8 text: "
                                  f"{cli.one_line(exc)}") from None
         texts = briefing_texts(args.headline, summary, args.author, args.office)
-        order = briefing_pages(args.pages, args.tendency)
+        order = briefing_pages(args.pages, args.tendency, args.balance)
         from workbench.analysis import default_case_path
         from workbench.io import open_case
 

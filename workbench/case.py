@@ -15,10 +15,10 @@ from collections import OrderedDict
 import numpy as np
 import xarray as xr
 
-from .places import lat_range, lon_range, point_label
 from . import physics
 from .checks import load_fields
 from .errors import GridError, InputError
+from .places import lat_range, lon_range, point_label
 
 __all__ = ["Case", "MAP_FIELDS", "REFERENCE_KINDS"]
 

@@ -20,8 +20,8 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from .places import domain_label, lat_range, lon_range
 from .errors import FileFormatError, GridError, InputError, MissingVariableError, UnitsError
+from .places import domain_label, lat_range, lon_range
 from .units import G, units
 
 __all__ = ["open_case", "read_dataset", "normalise", "file_checksum", "detect_format"]

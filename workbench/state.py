@@ -20,8 +20,8 @@ import numpy as np
 import param
 import xarray as xr
 
-from .places import domain_label, point_label
 from .errors import InputError, PieceError, WorkbenchError
+from .places import domain_label, point_label
 from .sections import Section
 
 __all__ = ["State", "PageChoices", "Section", "BOUNDARY_PIECES", "parse_surface", "surface_label", "fields_for",

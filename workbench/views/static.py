@@ -52,6 +52,7 @@ from workbench.views.fields import FIELDS
 from workbench.session import PROJECTIONS, FigureSettings
 
 __all__ = [
+    "balance_map_figure",
     "CAUTION",
     "FigureSettings",
     "PROJECTIONS",
@@ -829,10 +830,33 @@ def draw_map(data: MapData, settings: FigureSettings | dict | None = None,
                 bbox=dict(boxstyle="round,pad=0.15", fc="white", ec="none", alpha=0.8))
 
     what = f"{label} ({units}) {data.surface}".rstrip()
-    extra = "; ".join(notes) if notes else None
+    extra = "; ".join(([data.extra_title] if data.extra_title else []) + list(notes or [])) or None
     _title_block(fig, _title_lines(data, what, extra))
     _caution(fig, note, data.invented)
     return fig
+
+
+def balance_map_figure(quality: xr.Dataset, level_hpa: float = 500.0, case=None, member=None,
+                       settings=None, page_size=None) -> Figure:
+    """Where the two balances differ: the speed of the nonlinear-balance minus the QG balanced
+    wind on the level nearest ``level_hpa``, from a
+    :func:`workbench.inversion.nonlinear.balance_quality` Dataset; the title block gives the
+    RMS balanced-minus-analysed wind on that level for both balances."""
+    if "balance_difference" not in quality:
+        raise InputError("balance_map_figure needs the Dataset of balance_quality (it has no "
+                         "'balance_difference')")
+    k = int(np.argmin(np.abs(quality["pressure"].values / 100.0 - float(level_hpa))))
+    level = float(quality["pressure"].values[k]) / 100.0
+    da = quality["balance_difference"].isel(pressure=k)
+    da = da.assign_attrs(long_name="|nonlinear - QG balanced wind|")
+    time = quality.attrs.get("time")
+    md = MapData(field=da, field_name="balance_difference", surface=f"at {level:g} hPa",
+                 native_crs=_native_crs(case), **_case_meta(case, time, member))
+    md.extra_title = (f"RMS balanced - analysed wind here: QG "
+                      f"{float(quality['rms_difference_qg'][k]):.1f} m/s, nonlinear "
+                      f"{float(quality['rms_difference_nonlinear'][k]):.1f} m/s "
+                      f"(RMS wind {float(quality['rms_wind'][k]):.1f} m/s)")
+    return draw_map(md, settings, page_size=page_size)
 
 
 def _is_state(obj) -> bool:
