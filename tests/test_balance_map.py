@@ -40,8 +40,8 @@ def test_balance_map_figure_names_level_and_both_balances(small_case, quality):
     text = " ".join(static.figure_text(fig).split())
     k = int(np.argmin(np.abs(quality["pressure"].values - 50000.0)))
     assert "|nonlinear - QG balanced wind|" in text and "500 hPa" in text
-    assert f"QG {float(quality['rms_difference_qg'][k]):.1f} m/s" in text
-    assert f"nonlinear {float(quality['rms_difference_nonlinear'][k]):.1f} m/s" in text
+    assert (f"RMS balanced - analysed wind: QG {float(quality['rms_difference_qg'][k]):.1f}, "
+            f"nonlinear {float(quality['rms_difference_nonlinear'][k]):.1f} m/s") in text
     assert static.CAUTION.split(".")[0] in text
     static.save_figure(fig, ARTIFACTS / "balance_map.png", overwrite=True)
     with pytest.raises(Exception, match="balance_quality"):
@@ -74,3 +74,21 @@ def test_nonlinear_briefing_has_the_balance_page(small_case, tmp_path):
     assert any("|nonlinear - QG balanced wind|" in p for p in pages)
     qg = make_briefing(small_case, None, tmp_path / "q.pdf", pages=None)
     assert len(PdfReader(qg).pages) == len(pages) - 1
+
+
+def test_page_balance_quality_shows_table_and_map(small_case):
+    from workbench.panels.attribution import AttributionPanel
+    from workbench.state import State
+
+    st = State(small_case)
+    st.balance_floor = True
+    panel = AttributionPanel(st)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        job = panel.show_quality()
+    assert job.state == "done", st.status
+    assert panel.quality_table.visible and len(panel.quality_table.value) == small_case.levels_hpa.size
+    assert panel.quality_map.visible and panel.quality_map.object[:8] == b"\x89PNG\r\n\x1a\n"
+    (ARTIFACTS / "app_balance_map.png").write_bytes(panel.quality_map.object)
+    st.time_index = 1  # another time: the read-out of the old one is hidden
+    assert not panel.quality_map.visible and not panel.quality_table.visible

@@ -106,6 +106,9 @@ class AttributionPanel(StatePanel):
             pd.DataFrame(), show_index=False, disabled=True, sizing_mode="stretch_width",
             max_width=600, height=230, layout="fit_data_stretch", visible=False,
             css_classes=["pvwb-quality-table"], sortable=False, selectable=False)
+        # where the balances differ (static.balance_map_figure at 500 hPa, drawn in the job)
+        self.quality_map = pn.pane.PNG(None, visible=False, sizing_mode="stretch_width",
+                                       max_width=600, css_classes=["pvwb-quality-map"])
 
         def balance_changed(*_):
             self.to_widget(self.balance_choice, st.balance)
@@ -123,7 +126,7 @@ class AttributionPanel(StatePanel):
                        self.attr_level),
                 pn.FlexBox(self.balance_choice, self.refine_button, self.quality_button),
                 self.floor_box, self.balance_label, self.attr_title, self.attr_table,
-                self.quality_title, self.quality_table]
+                self.quality_title, self.quality_table, self.quality_map]
 
     def retarget_level(self, p):
         t = self.state.target
@@ -217,6 +220,7 @@ class AttributionPanel(StatePanel):
     # ---------------------------------------------------------------- balance quality
     def _hide_quality(self):
         self.quality_title.visible = self.quality_table.visible = False
+        self.quality_map.visible = False
 
     def show_quality(self):
         """The per-level RMS balanced-minus-analysed wind, QG and nonlinear (background)."""
@@ -230,6 +234,8 @@ class AttributionPanel(StatePanel):
         def job(progress):
             progress(None, "nonlinear inversion of the whole state")
             holder["q"] = balance_quality(case, ti, mi, ref, floor=floor)
+            progress(None, "drawing where the balances differ")
+            holder["png"] = _balance_map_png(holder["q"], case, mi)
 
         def done():
             ds = holder["q"]
@@ -239,9 +245,24 @@ class AttributionPanel(StatePanel):
                 "RMS of balanced − analysed wind (m/s), weighted by cos(latitude), interior "
                 "points above the ground")
             self.quality_title.visible = self.quality_table.visible = True
+            self.quality_map.object = holder["png"]
+            self.quality_map.visible = True
             return "Balance quality ready"
 
         return self.work("Balance quality", job, done, background=True)
+
+
+def _balance_map_png(quality, case, member, level_hpa=500.0) -> bytes:
+    """PNG bytes of :func:`workbench.views.static.balance_map_figure` (page width)."""
+    import io
+
+    from ..views import static
+
+    fig = static.balance_map_figure(quality, level_hpa, case, member,
+                                    static.FigureSettings(width_in=8.0, dpi=75))
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=75)
+    return buf.getvalue()
 
 
 def _newton_steps(solver_json):

@@ -555,9 +555,16 @@ _BOTTOM_IN = 1.0  # axis labels + caution (inches)
 def _title_block(fig: Figure, lines: tuple[str, str, str]) -> None:
     h = fig.get_figheight()
     y = lambda inch: 1.0 - inch / h  # noqa: E731  (inches from the top edge)
-    fig.text(0.02, y(0.12), lines[0], ha="left", va="top", fontsize=13, fontweight="bold")
-    fig.text(0.02, y(0.42), lines[1], ha="left", va="top", fontsize=10.5)
-    fig.text(0.02, y(0.68), lines[2], ha="left", va="top", fontsize=8.5, color="#333333")
+    avail = 0.96 * fig.get_figwidth() * 72.0  # points
+
+    def fit(text, size, per_char=0.55):  # smaller type for a line too long for the figure
+        return max(6.0, min(size, avail / max(1.0, per_char * len(text))))
+
+    fig.text(0.02, y(0.12), lines[0], ha="left", va="top", fontsize=fit(lines[0], 13, 0.62),
+             fontweight="bold")
+    fig.text(0.02, y(0.42), lines[1], ha="left", va="top", fontsize=fit(lines[1], 10.5))
+    fig.text(0.02, y(0.68), lines[2], ha="left", va="top", fontsize=fit(lines[2], 8.5),
+             color="#333333")
 
 
 def _caution(fig: Figure, note: str | None = None, invented: str | None = None) -> None:
@@ -852,10 +859,8 @@ def balance_map_figure(quality: xr.Dataset, level_hpa: float = 500.0, case=None,
     time = quality.attrs.get("time")
     md = MapData(field=da, field_name="balance_difference", surface=f"at {level:g} hPa",
                  native_crs=_native_crs(case), **_case_meta(case, time, member))
-    md.extra_title = (f"RMS balanced - analysed wind here: QG "
-                      f"{float(quality['rms_difference_qg'][k]):.1f} m/s, nonlinear "
-                      f"{float(quality['rms_difference_nonlinear'][k]):.1f} m/s "
-                      f"(RMS wind {float(quality['rms_wind'][k]):.1f} m/s)")
+    md.extra_title = (f"RMS balanced - analysed wind: QG {float(quality['rms_difference_qg'][k]):.1f}, "
+                      f"nonlinear {float(quality['rms_difference_nonlinear'][k]):.1f} m/s")
     return draw_map(md, settings, page_size=page_size)
 
 
