@@ -50,7 +50,7 @@ from .access import folders, resolve_data_path, resolve_output_path
 from .errors import AccessError, InputError, WorkbenchError
 from .state import State
 from .textsafe import escape
-from .panels.base import notebook_bundle, offline_extension
+from .panels.base import notebook_bundle, offline_extension, rule
 from .panels.controls import MODE_LABELS
 from .panels.export import case_stem
 from .panels.sessions import list_session_files
@@ -143,10 +143,10 @@ class Workbench:
                             ("Why & what if", self.whatif.layout),
                             ("Save & export", self.export_box), css_classes=["pvwb-tabs"],
                             sizing_mode="stretch_width", max_width=600)
-        self.sidebar = pn.Column(self.controls.layout, pn.layout.Divider(margin=(4, 5)),
-                                 self.lasso.layout, pn.layout.Divider(margin=(4, 5)),
+        self.sidebar = pn.Column(self.controls.layout, rule(),
+                                 self.lasso.layout, rule(),
                                  self.overlay_settings.layout,
-                                 pn.layout.Divider(margin=(4, 5)), self.files.layout, width=280, css_classes=["pvwb-side"])
+                                 rule(), self.files.layout, width=280, css_classes=["pvwb-side"])
         self.hint = TextMarkdown("### No case open\nPick a file in the data folders on the "
                                  "left and press **Open**.", visible=case is None)
         self.side_tables = pn.Column(self.pieces.layout, self.tabs, min_width=300,

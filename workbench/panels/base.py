@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import panel as pn
 
-__all__ = ["StatePanel", "offline_extension", "notebook_bundle"]
+__all__ = ["StatePanel", "offline_extension", "notebook_bundle", "rule"]
 
 _CSS = """
 .pvwb-header h2 {margin: 0 0 2px 0; font-size: 20px;}
@@ -198,3 +198,11 @@ class StatePanel:
 
     def servable(self, title="PV Workbench"):
         return self.layout.servable(title=title)
+
+
+def rule():
+    """A thin horizontal line between groups of controls. (Panel's Divider links its stylesheet
+    by URL; added to a page after a case switch, that URL pointed at a public CDN, which an
+    offline network cannot reach.) A styled spacer needs no stylesheet."""
+    return pn.Spacer(height=1, margin=(6, 5), sizing_mode="stretch_width",
+                     styles={"border-top": "1px solid #d0d0d0"}, css_classes=["pvwb-rule"])

@@ -15,7 +15,7 @@ import param
 from panel.custom import JSComponent
 
 from ..state import REFERENCE_KINDS
-from .base import StatePanel
+from .base import StatePanel, rule
 
 __all__ = ["CaseControls", "MODE_LABELS", "KeyBindings", "KEYS"]
 
@@ -182,7 +182,7 @@ class CaseControls(StatePanel):
                 time_row,
                 self.surface, self.field, self.map_projection,
                 self.threshold, self.reference,
-                pn.layout.Divider(margin=(4, 5)),
+                rule(),
                 TextMarkdownOnce("**Mouse on the map**"), self.mode,
                 pn.Row(self.level)]
 

@@ -23,7 +23,7 @@ import pandas as pd
 import panel as pn
 
 from ..errors import InputError
-from .base import StatePanel
+from .base import StatePanel, rule
 
 __all__ = ["WhatIfPanel", "ACTIONS", "track_rows", "whatif_record"]
 
@@ -140,7 +140,7 @@ class WhatIfPanel(StatePanel):
         return [pn.pane.Markdown("**Why is the low deepening?**", margin=(6, 5, 0, 5)),
                 self.explain_button, self.tendency_title, self.tendency_table,
                 self.tendency_summary,
-                pn.layout.Divider(margin=(4, 5)),
+                rule(),
                 pn.pane.Markdown("**What if? (QG model)**", margin=(0, 5)), self.label,
                 pn.FlexBox(self.w_piece, self.w_action),
                 pn.FlexBox(self.w_factor, self.w_dlon, self.w_dlat, self.w_hours),
