@@ -328,20 +328,26 @@ def _run_batch(path, *, pieces, times, members, target, reference, client, optio
                                          floor)
                 bar.update(1)
         elif todo:
-            import time
-
             ref_future, place = _submit_reference(client, path, options, reference, case, todo)
             futures = [client.submit(_task, path, ti, mi, job_pieces[(ti, mi)], target, ref_future, options, store,
                                      balance, floor,
                                      pure=False, workers=place.get((ti, mi)), allow_other_workers=True)
                        for ti, mi in todo]
+            from distributed import wait
+
             start = bar.n
-            while True:  # polls the futures' state (no extra tasks left behind by an interrupt)
+            while True:  # waits at most 0.2 s at a time (Ctrl-C stays prompt, no extra tasks
+                # left behind by an interrupt) and wakes as soon as a task ends
+                pending = [f for f in futures if not f.done()]
+                if pending:
+                    try:
+                        wait(pending, timeout=0.2, return_when="FIRST_COMPLETED")
+                    except TimeoutError:
+                        pass
                 done_n = sum(f.done() for f in futures)
                 bar.update(start + done_n - bar.n)
                 if done_n == len(futures) or any(f.status == "error" for f in futures):
                     break
-                time.sleep(0.2)
             for key, res in zip(todo, client.gather(futures)):
                 results[key] = res
     finally:
