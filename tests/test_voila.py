@@ -1,13 +1,14 @@
-"""The quick-start notebook served by Voilà on 127.0.0.1, opened in Debian's Chromium with every
-non-loopback request aborted and recorded: the workbench renders (its Bokeh map document
-arrives), nothing the workbench asks for leaves the machine, and the page shows the caution.
+"""The quick-start notebook served by Voilà on 127.0.0.1 with the workbench's page template
+(``--template=pvwb-offline``, in ``share/jupyter/voila/templates``), opened in Debian's Chromium
+with every non-loopback request aborted and recorded: the workbench renders (its Bokeh map
+document arrives), nothing at all leaves the machine, and the page shows the caution.
 
 Panel reaches Voilà through its ipywidgets route (jupyter_bokeh), as in the other front ends
 that host ipywidgets only (PANEL_COMMS=ipywidgets in the kernel's environment).
 
-Known gap: Voilà's own "lab" page template links two Font Awesome stylesheets on a public CDN
-(VOILA_TEMPLATE_CDN below); they are aborted here and the page renders without them.
-``test_voila_page_asks_for_nothing_off_the_machine`` records that gap as a strict xfail.
+Voilà's own "lab" template links two Font Awesome stylesheets on a public CDN; the
+workbench's template is that template without them. The second test shows the gap that
+template closes: the same page with Voilà's own template asks for exactly those two.
 """
 from __future__ import annotations
 
@@ -29,11 +30,10 @@ pytestmark = [pytest.mark.browser, pytest.mark.slow]
 ROOT = Path(__file__).resolve().parents[1]
 ARTIFACTS = Path(__file__).parent / "artifacts"
 NOTEBOOK = "01_quick_start.ipynb"  # the shortest notebook
-VOILA_TEMPLATE_CDN = ("https://cdn.jsdelivr.net/npm/@fortawesome/fontawesome-free@",)
+VOILA_TEMPLATE_CDN = "https://cdn.jsdelivr.net/npm/@fortawesome/fontawesome-free@"
 
 
-@pytest.fixture(scope="module")
-def voila_page(tmp_path_factory):
+def _serve(tmp_path_factory, template):
     pytest.importorskip("voila")
     if not Path(CHROMIUM).exists():
         pytest.skip(f"{CHROMIUM} is missing: install Debian's chromium package")
@@ -45,11 +45,11 @@ def voila_page(tmp_path_factory):
     port = free_port()
     env = dict(os.environ, JUPYTER_CONFIG_DIR=str(base / "config"),
                JUPYTER_RUNTIME_DIR=str(base / "runtime"), IPYTHONDIR=str(base / "ipython"),
-               PANEL_COMMS="ipywidgets",
+               PANEL_COMMS="ipywidgets", JUPYTER_PATH=str(ROOT / "share" / "jupyter"),
                PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
     log = open(base / "voila.log", "w")
     proc = subprocess.Popen([sys.executable, "-m", "voila", NOTEBOOK, "--no-browser",
-                             f"--port={port}", "--Voila.ip=127.0.0.1"],
+                             f"--port={port}", "--Voila.ip=127.0.0.1", f"--template={template}"],
                             cwd=str(root), env=env, stdout=log, stderr=subprocess.STDOUT)
     url = f"http://127.0.0.1:{port}/"
     t0 = time.time()
@@ -91,7 +91,7 @@ def voila_page(tmp_path_factory):
             seconds = time.time() - t1
             text = page.inner_text("body")
             ARTIFACTS.mkdir(exist_ok=True)
-            page.screenshot(path=str(ARTIFACTS / "voila_quick_start.png"))
+            page.screenshot(path=str(ARTIFACTS / f"voila_quick_start_{template}.png"))
             browser.close()
         yield dict(rendered=rendered, seconds=seconds, requests=requests, outside=outside,
                    errors=errors, text=text)
@@ -104,17 +104,26 @@ def voila_page(tmp_path_factory):
         log.close()
 
 
+@pytest.fixture(scope="module")
+def voila_page(tmp_path_factory):
+    yield from _serve(tmp_path_factory, "pvwb-offline")
+
+
 def test_voila_renders_the_workbench_offline(voila_page):
     v = voila_page
     assert v["rendered"], f"no workbench map after {v['seconds']:.0f} s; page errors: {v['errors'][:3]}"
     assert len(v["requests"]) > 20  # the page and its resources really went through the route
-    # nothing the notebook or the workbench asked for left the machine (only Voilà's template links)
-    ours = [u for u in v["outside"] if not u.startswith(VOILA_TEMPLATE_CDN)]
-    assert ours == [], ours
+    assert v["outside"] == [], v["outside"]  # nothing at all left the machine
     assert not v["errors"], v["errors"][:3]
     assert "not forecasts or warnings" in v["text"] or CAUTION in v["text"]
 
 
-@pytest.mark.xfail(strict=True, reason="Voilà's lab template links Font Awesome on a public CDN")
-def test_voila_page_asks_for_nothing_off_the_machine(voila_page):
-    assert voila_page["outside"] == []
+def test_voilas_own_template_would_ask_for_two_icon_stylesheets(tmp_path_factory):
+    served = _serve(tmp_path_factory, "lab")
+    try:
+        v = next(served)
+    finally:
+        served.close()  # stops Voilà
+    assert v["rendered"]
+    assert len(v["outside"]) == 2 and all(u.startswith(VOILA_TEMPLATE_CDN) for u in v["outside"]), \
+        v["outside"]
