@@ -365,4 +365,15 @@ def test_delete_key_removes_the_selected_piece_and_an_arrow_is_drawn(page, anoma
         'pvwb-ann-arrows').data; return [d.x0[0], d.x1[0]]; }""")
     assert x1 - x0 > 1.5 * rx  # drawn from west to east
     _shot(page, "timeloop_arrow.png")
+    # move its head north by dragging the square at the head
+    page.get_by_role("button", name="Move annotations").click()
+    page.evaluate("() => window.scrollTo(0, 0)")
+    page.wait_for_function("() => Bokeh.documents[0].get_model_by_name('pvwb-ann-handle-glyphs')"
+                           ".visible", timeout=30000)
+    y1 = page.evaluate("() => Bokeh.documents[0].get_model_by_name('pvwb-ann-arrows').data.y1[0]")
+    _drag(page, [(lon, lat - ry), (lon, lat - 0.5 * ry), (lon, lat + ry)])
+    page.wait_for_function(f"() => Bokeh.documents[0].get_model_by_name('pvwb-ann-arrows')"
+                           f".data.y1[0] > {y1} + 0.5", timeout=30000)
+    assert "Moved 1 annotation" in _status(page)
+    _shot(page, "timeloop_arrow_moved.png")
     assert _problems(page) == []

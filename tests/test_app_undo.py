@@ -148,6 +148,33 @@ def test_outline_edit_label_move_arrow_and_annotation_edit_are_one_step_each(sta
     state.page.last_click = (d["lon_min"] + 2, d["lat_min"] + 2)
     state.page.last_click = (d["lon_min"] + 8, d["lat_min"] + 5)
     assert state.annotations[-1].kind == "arrow" and state.undo_steps == n1 + 2
+    # an arrow's head and a region move by their handles; each drag is one undo step
+    arrow = state.annotations[-1]
+    handles = ed.src["handles"].data
+    assert f"{arrow.id}:tail" in handles["id"] and f"{arrow.id}:head" in handles["id"]
+    ed.handles_moved(dict(x=[d["lon_min"] + 2, d["lon_min"] + 10], y=[d["lat_min"] + 2, d["lat_min"] + 7],
+                          id=[f"{arrow.id}:tail", f"{arrow.id}:head"]))
+    got = next(a for a in state.annotations if a.id == arrow.id)
+    assert (got.start_lon, got.start_lat) == (arrow.start_lon, arrow.start_lat)
+    assert (got.end_lon, got.end_lat) == (d["lon_min"] + 10, d["lat_min"] + 7)
+    assert state.undo_steps == n1 + 3
+    from workbench.annotations import Region
+
+    square = [(d["lon_min"] + 4, d["lat_min"] + 4), (d["lon_min"] + 8, d["lat_min"] + 4),
+              (d["lon_min"] + 8, d["lat_min"] + 8), (d["lon_min"] + 4, d["lat_min"] + 8)]
+    state.add_annotation(Region(polygon=square, label="rain"))
+    region = state.annotations[-1]
+    k = ed.src["handles"].data["id"].index(f"{region.id}:region")
+    cx, cy = ed.src["handles"].data["x"][k], ed.src["handles"].data["y"][k]
+    # dragged far west: the region stops at the domain's edge, shape kept
+    ed.handles_moved(dict(x=[cx - 100.0], y=[cy + 1.0], id=[f"{region.id}:region"]))
+    got = np.asarray(next(a for a in state.annotations if a.id == region.id).polygon)
+    assert got[:, 0].min() == pytest.approx(d["lon_min"]) and np.ptp(got[:, 0]) == pytest.approx(4.0)
+    assert got[:, 1].min() == pytest.approx(d["lat_min"] + 5)
+    state.undo()
+    assert next(a for a in state.annotations if a.id == region.id).polygon == region.polygon
+    state.undo()  # the region added
+    state.undo()  # the arrow's move
     with pytest.raises(InputError, match="shorter"):
         ed.add_arrow((d["lon_min"] + 2, d["lat_min"] + 2), (d["lon_min"] + 2.1, d["lat_min"] + 2))
     ap = panels.AnnotationPanel(state)

@@ -1,8 +1,8 @@
 """The annotation panel: text and colour of the next label or highlighted region, label the
 last clicked point, delete the last / all, the list of annotations (escaped text), and the
 editing of one annotation (its text and colour; picking it also selects it for the Delete
-key). Labels are moved and arrows drawn on the map (mouse modes *Move labels* and *Draw an
-arrow*); every change is one undo step."""
+key). Labels, arrows and regions are moved and arrows drawn on the map (mouse modes *Move
+annotations* and *Draw an arrow*); every change is one undo step."""
 from __future__ import annotations
 
 import panel as pn

@@ -22,7 +22,7 @@ __all__ = ["CaseControls", "MODE_LABELS", "KeyBindings", "KEYS"]
 #: Mouse modes of the map: label -> PageChoices.mouse_mode
 MODE_LABELS = {"Pan / zoom": "pan", "Lasso a piece": "lasso", "Draw a section": "section",
                "Pick target point": "target", "Place a label": "label",
-               "Edit piece outlines": "edit", "Move labels": "move",
+               "Edit piece outlines": "edit", "Move annotations": "move",
                "Draw an arrow (click tail, then head)": "arrow"}
 
 #: What the page's keys do (the key names KeyBindings reports -> meaning)

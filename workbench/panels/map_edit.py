@@ -1,5 +1,6 @@
 """Editing on the map: tracked piece outlines at the selected time, piece outlines edited by
-dragging their vertices, labels moved by dragging, arrows drawn with the mouse.
+dragging their vertices, labels, arrows and highlighted regions moved by dragging, arrows
+drawn with the mouse.
 
 :class:`MapEditing` attaches to a :class:`~workbench.views.interactive.MapView` (built by the
 map panel) and adds its own tools and data sources to the same figure; it changes the State
@@ -7,7 +8,8 @@ only through its methods (``_replace``, ``add_annotation``...), so every gesture
 step. Mouse modes (``state.page.mouse_mode``): ``"edit"`` (Bokeh ``PolyEditTool`` on the
 pieces' outlines: press and hold inside an outline to show its vertices, drag one; a press on a
 vertex then adds one after it; Backspace removes the selected vertex),
-``"move"`` (``PointDrawTool`` on a handle under each label), ``"arrow"`` (click the tail, then
+``"move"`` (``PointDrawTool`` on handles: under each label, at both ends of an arrow, at the
+centre of a highlighted region), ``"arrow"`` (click the tail, then
 the head; the map's tap tool).
 
 Pieces that follow their anomaly (``Piece.follow == "anomaly"``) are drawn with their outline
@@ -50,7 +52,8 @@ class MapEditing:
                            line_color="black", name="pvwb-piece-vertex-glyphs")
         handles = fig.scatter("x", "y", source=self.src["handles"], marker="square", size=10,
                               fill_color="white", fill_alpha=0.5, line_color="#444444",
-                              name="pvwb-ann-handle-glyphs")
+                              name="pvwb-ann-handle-glyphs", visible=False)  # move mode only
+        self._handle_glyphs = handles
         fig.scatter("x", "y", source=self.src["arrow_tail"], marker="circle", size=8,
                     fill_color="black", line_color="white")
         fig.text("x", "y", text="text", source=self.src["lost"], text_color="#b00000",
@@ -60,7 +63,8 @@ class MapEditing:
             edit=PolyEditTool(renderers=[patches], vertex_renderer=vert,
                               description="Edit piece outlines (press and hold one, drag a vertex)"),
             move=PointDrawTool(renderers=[handles], add=False, drag=True,
-                               description="Move labels (drag the square under a label)"),
+                               description="Move annotations (drag the square under a label, "
+                                           "at an arrow's end or at a region's centre)"),
         )
         fig.add_tools(*self.tools.values())
         # switching a several-gesture tool off also clears the drag and tap gestures' active
@@ -114,6 +118,7 @@ class MapEditing:
         else:
             section = self.view.tools.get("section")
             tb.active_multi = section if mode == "section" else None
+        self._handle_glyphs.visible = mode == "move"
         if mode != "edit":
             self.src["vertices"].data = dict(x=[], y=[])
         if mode != "arrow":
@@ -175,15 +180,29 @@ class MapEditing:
         self.src[key].data = data
 
     def refresh_handles(self):
-        """A square handle under each map label (what the move mode drags)."""
-        from ..annotations import Label
+        """The squares the move mode drags: one under each map label, one at each end of an
+        arrow (``<id>:tail``, ``<id>:head``) and one at the centre of a highlighted region
+        (``<id>:region``, moves the whole region)."""
+        from ..annotations import Arrow, Label, Region
+        from ..views.interactive import _centroid
 
         x, y, ids = [], [], []
         for a in self.state.annotations:
-            if isinstance(a, Label) and a.space == "map":
+            if a.space != "map":
+                continue
+            if isinstance(a, Label):
                 x.append(a.lon)
                 y.append(a.lat)
                 ids.append(a.id)
+            elif isinstance(a, Arrow):
+                x += [a.start_lon, a.end_lon]
+                y += [a.start_lat, a.end_lat]
+                ids += [f"{a.id}:tail", f"{a.id}:head"]
+            elif isinstance(a, Region) and a.polygon:
+                cx, cy = _centroid(a.polygon)
+                x.append(cx)
+                y.append(cy)
+                ids.append(f"{a.id}:region")
         self._drawing = True
         try:
             self._set_own("handles", dict(x=x, y=y, id=ids))
@@ -250,7 +269,7 @@ class MapEditing:
     def _handle_selected(self, attr, old, new):
         ids = self.src["handles"].data.get("id", [])
         if new and 0 <= new[0] < len(ids):
-            self.state.page.selected = f"annotation:{ids[new[0]]}"
+            self.state.page.selected = f"annotation:{str(ids[new[0]]).split(':')[0]}"
 
     def _handles_changed(self, attr, old, new):
         if self._drawing:
@@ -258,27 +277,63 @@ class MapEditing:
         self.view._safe(lambda: self.handles_moved(new))
 
     def handles_moved(self, data):
-        """Labels whose handle was dragged move there (one undo step)."""
-        from ..annotations import annotation_from_dict, annotations_from_list
+        """Annotations whose handle was dragged move there (one undo step): a label to the
+        handle, an arrow's tail or head to its handle, a region shifted by its centre's move
+        (limited so that it stays inside the domain). Positions are kept inside the domain."""
+        from ..annotations import Arrow, Region, annotation_from_dict, annotations_from_list
+        from ..views.interactive import _centroid
 
         lon, lat = self.view.inv(data.get("x", []), data.get("y", []))
-        where = {i: (float(a), float(b)) for i, a, b in zip(data.get("id", []), lon, lat)}
+        where = {str(i): (float(a), float(b)) for i, a, b in zip(data.get("id", []), lon, lat)}
         d = self.state.case.domain
+
+        def inside(x, y):
+            return (min(max(x, d["lon_min"]), d["lon_max"]), min(max(y, d["lat_min"]), d["lat_max"]))
+
+        def moved_from(x0, y0, key):
+            if key not in where:
+                return None
+            x, y = inside(*where[key])
+            return (x, y) if abs(x - x0) > _TOL or abs(y - y0) > _TOL else None
+
         out, moved = [], 0
         for a in self.state.annotations:
-            if a.id in where and a.space == "map" and hasattr(a, "lon"):
-                x, y = where[a.id]
-                x = min(max(x, d["lon_min"]), d["lon_max"])
-                y = min(max(y, d["lat_min"]), d["lat_max"])
-                if abs(x - a.lon) > _TOL or abs(y - a.lat) > _TOL:
+            dd = None
+            if a.space == "map" and isinstance(a, Arrow):
+                tail = moved_from(a.start_lon, a.start_lat, f"{a.id}:tail")
+                head = moved_from(a.end_lon, a.end_lat, f"{a.id}:head")
+                if tail or head:
                     dd = a.to_dict()
-                    dd.update(lon=x, lat=y)
-                    a = annotation_from_dict(dd)
-                    moved += 1
+                    if tail:
+                        dd.update(start_lon=tail[0], start_lat=tail[1])
+                    if head:
+                        dd.update(end_lon=head[0], end_lat=head[1])
+            elif a.space == "map" and isinstance(a, Region) and a.polygon:
+                cx, cy = _centroid(a.polygon)
+                c = moved_from(cx, cy, f"{a.id}:region")
+                if c:
+                    poly = np.asarray(a.polygon, float)
+                    dx = float(np.clip(c[0] - cx, d["lon_min"] - poly[:, 0].min(),
+                                       d["lon_max"] - poly[:, 0].max()))
+                    dy = float(np.clip(c[1] - cy, d["lat_min"] - poly[:, 1].min(),
+                                       d["lat_max"] - poly[:, 1].max()))
+                    if abs(dx) > _TOL or abs(dy) > _TOL:
+                        dd = a.to_dict()
+                        dd["polygon"] = [(float(x) + dx, float(y) + dy) for x, y in poly]
+            elif a.space == "map" and hasattr(a, "lon"):
+                p = moved_from(a.lon, a.lat, a.id)
+                if p:
+                    dd = a.to_dict()
+                    dd.update(lon=p[0], lat=p[1])
+            if dd is not None:
+                a = annotation_from_dict(dd)
+                moved += 1
             out.append(a)
         if moved:
             self.state.annotations = annotations_from_list(out)
-            self.state.set_status(f"Moved {moved} label(s) (Ctrl+Z undoes).", "success")
+            self.state.set_status(f"Moved {moved} annotation(s) (Ctrl+Z undoes).", "success")
+        else:
+            self.refresh_handles()  # a handle dragged nowhere (or out of the domain) goes back
 
     def _clicked(self, click):
         """Arrow mode: the first click is the tail (marked), the second the head."""
