@@ -1,6 +1,6 @@
 """Benchmark of the QG tendency attribution and the what-if runs.
 
-``python benchmarks/bench_tendency.py [--large] [--json]``: the attribution matrix of the
+``python benchmarks/bench_tendency.py [--large [--full]] [--json]``: the attribution matrix of the
 standard pieces at the deepest time of the sample case (with and without the inversion in the
 case cache), a 36 h what-if (control + experiment, upper trough at half strength) and, with
 ``--large``, the same on an invented 0.5 degree grid of 26 x 121 x 201 points. Wall-clock time
@@ -19,9 +19,11 @@ from workbench.whatif import bench_records
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--large", action="store_true", help="also the 0.5 degree grid (26 x 121 x 201)")
+    ap.add_argument("--full", action="store_true",
+                    help="with --large: also run the two whole 36 h what-if runs (about 70 s)")
     ap.add_argument("--json", action="store_true", help="print one JSON list of records")
     args = ap.parse_args(argv)
-    records = bench_records(large=args.large)
+    records = bench_records(large=args.large, full=args.full)
     if args.json:
         print(json.dumps(records))
     else:
