@@ -160,3 +160,11 @@ def test_cli_table_shows_a_dash(tmp_path, capsys):
     main(["invert", str(path), "--time", "0", "--quiet"])
     out = capsys.readouterr().out
     assert "\u2014" in out and "nan" not in out.lower().replace("nana", "")
+
+
+def test_share_rounding_to_zero_has_no_sign():
+    # "-0.0 %" would read as a (tiny) negative share; Python's format keeps the sign of -0.004
+    assert format(-0.004, ".1f") == "-0.0"
+    assert format_share(-0.004) == "0.0" and format_share(-0.4, ".0f") == "0"
+    assert format_share(-0.06) == "-0.1" and format_share(-3.4, ".0f") == "-3"
+    assert format_share(0.04) == "0.0"

@@ -150,6 +150,13 @@ def _piece_line(p) -> str:
     return "".join(bits) + ")"
 
 
+def _pct(share) -> str:
+    """A share in whole per cent for a sentence (no sign on a share that rounds to zero)."""
+    from .inversion.pieces import format_share
+
+    return format_share(share, ".0f")
+
+
 def piece_summaries(table, target) -> list[str]:
     """One sentence per piece on its share of the balanced height anomaly at the target,
     plus a closing sentence on the sum of pieces against the full inversion.
@@ -172,7 +179,7 @@ def piece_summaries(table, target) -> list[str]:
             out.append(f"{name}: {z:+.1f} m at {where}; the full anomaly there is near zero, so no "
                        "share can be given.")
         elif abs(z) < 0.05 * max(abs(full), 1e-9) and abs(share) < 5:
-            out.append(f"{name} contributes little at {where}: {z:+.1f} m ({share:.0f} % of the "
+            out.append(f"{name} contributes little at {where}: {z:+.1f} m ({_pct(share)} % of the "
                        f"full {full:+.1f} m).")
         elif share > 100.5:
             out.append(f"{name} gives {z:+.1f} m at {where}, more than the full {full:+.1f} m "

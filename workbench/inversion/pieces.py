@@ -62,7 +62,11 @@ def format_share(value, fmt=".1f") -> str:
         v = float(value)
     except (TypeError, ValueError):
         return NO_SHARE
-    return format(v, fmt) if math.isfinite(v) else NO_SHARE
+    if not math.isfinite(v):
+        return NO_SHARE
+    text = format(v, fmt)
+    # a share that rounds to zero is written without a sign ("-0.0" reads as a negative share)
+    return text.lstrip("-") if float(text) == 0.0 else text
 
 KINDS = ("interior", "bottom", "top", "lateral", "remainder")
 FOLLOW_MODES = ("fixed", "anomaly")
