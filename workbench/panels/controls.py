@@ -111,10 +111,12 @@ class CaseControls(StatePanel):
         case = st.case
         if case is None:
             return []
-        self.time = pn.widgets.Select(label="Valid time", value=st.time_index, width=170,
+        # wide enough for "2051-02-10 12:00 UTC" with both step buttons in the 280 px sidebar
+        self.time = pn.widgets.Select(label="Valid time", value=st.time_index, width=184,
+                                      margin=(5, 4, 5, 10),
                                       options={lab: i for i, lab in enumerate(st.time_labels)})
-        self.prev_t = pn.widgets.Button(label="◀", width=38, margin=(23, 2, 5, 2))
-        self.next_t = pn.widgets.Button(label="▶", width=38, margin=(23, 2, 5, 2))
+        self.prev_t = pn.widgets.Button(label="◀", width=34, margin=(23, 2, 5, 2))
+        self.next_t = pn.widgets.Button(label="▶", width=34, margin=(23, 2, 5, 2))
         self.prev_t.on_click(lambda e: self.step_time(-1))
         self.next_t.on_click(lambda e: self.step_time(+1))
         sopts = surface_options(case)
