@@ -33,6 +33,7 @@ import numpy as np
 import xarray as xr
 
 from .errors import FileFormatError, GridError, InputError, UnitsError
+from .places import lat_label, lon_label
 from .units import G
 
 __all__ = ["check_plausible", "standard_calendar", "standard_height", "add_note", "netcdf_groups",
@@ -204,7 +205,7 @@ def _who(ds, name):
 
 
 def _where(ds, name, index):
-    """Human location of a sample point: 'at 500 hPa, 45N 10E' (approximate, first time)."""
+    """Human location of a sample point: 'at 500 hPa, 45°N, 10°W' (approximate, first time)."""
     da = ds[name]
     dims = [d for d in da.dims if d not in ("time", "member")]
     parts = []
@@ -212,7 +213,8 @@ def _where(ds, name, index):
         c = da[d].values[::max(1, math.ceil(da.sizes[d] / SAMPLE_MAX))] if d in ("latitude", "longitude") \
             else da[d].values
         v = float(c[i])
-        parts.append(f"{v / 100:g} hPa" if d == "pressure" else f"{v:g}{'N' if d == 'latitude' else 'E'}")
+        parts.append(f"{v / 100:g} hPa" if d == "pressure" else
+                     (lat_label(v, None) if d == "latitude" else lon_label(v, None)))
     return "at " + ", ".join(parts)
 
 
