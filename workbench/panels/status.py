@@ -234,8 +234,14 @@ class FilePanel(StatePanel):
         self.refresh_files_button = pn.widgets.Button(label="Refresh list", width=110,
                                                 css_classes=["pvwb-refresh-files"])
         self.refresh_files_button.on_click(lambda e: self._guard(self.refresh_list))
-        self.upload_box = pn.Column(margin=0)
-        self._new_dropper()
+        # one drop zone serves every upload: a new drop replaces the browser's item (one file
+        # at a time) and each finished file is taken out of the widget's value as it arrives
+        # (see _uploaded). Swapping in a fresh zone per upload made its preview script fail.
+        self.upload_input = pn.widgets.FileDropper(
+            max_file_size=f"{max(1, int(round(cap / 1024 ** 2)))}MB", multiple=False,
+            chunk_size=4 * 1024 * 1024, width=250, height=120, css_classes=["pvwb-upload"],
+            previews=[], label="Upload a case file")
+        self.upload_input.param.watch(lambda ev: self._guard(self._uploaded, ev.new), "value")
         self.upload_note = pn.pane.Markdown(
             f"Upload a netCDF or GRIB2 file up to {_size_text(cap)}; it is checked like "
             "any file in the data folders.", styles={"font-size": "11px", "color": "#555"},
@@ -243,7 +249,7 @@ class FilePanel(StatePanel):
         self.refresh_list()
         return [pn.pane.Markdown("**Case**", margin=(0, 5)), self.file_table,
                 pn.Row(self.open_button, self.refresh_files_button), self.file_select,
-                self.file_path, self.upload_box, self.upload_note]
+                self.file_path, self.upload_input, self.upload_note]
 
     # ---------------------------------------------------------------- the list
     def refresh_list(self):
@@ -291,24 +297,13 @@ class FilePanel(StatePanel):
         self.work(f"Opening {label}", job, done)
 
     # ---------------------------------------------------------------- upload
-    def _new_dropper(self):
-        """The drop zone. One zone serves every upload: a new drop replaces the browser's item
-        (one file at a time) and each finished file is taken out of the widget's value as soon
-        as it arrives, so its bytes are not kept and the next upload is seen as new. (Swapping
-        in a fresh zone per upload made the drop zone's preview script fail in the page.)"""
-        cap = upload_max_bytes()
-        self.upload_input = pn.widgets.FileDropper(
-            max_file_size=f"{max(1, int(round(cap / 1024 ** 2)))}MB", multiple=False,
-            chunk_size=4 * 1024 * 1024, width=250, height=120, css_classes=["pvwb-upload"],
-            previews=[], label="Upload a case file")
-        self.upload_input.param.watch(lambda ev: self._guard(self._uploaded, ev.new), "value")
-        self.upload_box[:] = [self.upload_input]
-
     def _uploaded(self, value):
+        """A finished upload: its bytes taken out of the widget's value in place (the widget
+        forgets them, nothing is re-sent, and the next upload is seen as new), then opened."""
         if not value:  # the browser dropped its old item (replaced by a new drop)
             return
         name = next(iter(value))
-        data = value.pop(name)  # in place: the widget forgets the bytes, nothing is re-sent
+        data = value.pop(name)
         self.upload_input.mime_type.pop(name, None)
         self.upload_file(name, data)
 
