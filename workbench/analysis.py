@@ -292,15 +292,14 @@ def main(argv=None):
     times = [case.time_index(t) for t in times]  # checked before the work
     balance_maps = {}
     if args.balance_map:
-        suffix = Path(args.balance_map).suffix.lower()
-        if suffix not in (".png", ".pdf", ".svg"):
-            raise InputError(f"--balance-map {args.balance_map!r}: give a .png, .pdf or .svg file name")
+        from .export import time_tag
+
         for t in times:
             p = Path(args.balance_map)
             if len(times) > 1:
-                tag = str(case.times[t])[:13].replace("-", "").replace("T", "")
-                p = p.with_name(f"{p.stem}_{tag}Z{p.suffix}")
-            cli.check_output(str(p), args.overwrite)
+                p = p.with_name(f"{p.stem}_{time_tag(case.times[t])}{p.suffix}")
+            cli.check_output(str(p), args.overwrite, suffixes=(".png", ".pdf", ".svg"),
+                             what="balance map", option="--balance-map")
             balance_maps[t] = p
     import pandas as pd
 

@@ -324,28 +324,29 @@ def check_pieces(case, pieces):
     return pieces
 
 
-def check_output(path, overwrite, suffixes=None, what="output"):
-    """Refuse (InputError) an output path that cannot be written, before any work is done."""
+def check_output(path, overwrite, suffixes=None, what="output", option="-o"):
+    """Refuse (InputError) an output path that cannot be written, before any work is done;
+    messages name the path as given to ``option``."""
     from pathlib import Path
 
     p = Path(path).expanduser()
     if p.is_dir():
-        raise InputError(f"-o {path!r} is a folder; give a file name inside it")
+        raise InputError(f"{option} {path!r} is a folder; give a file name inside it")
     parent = p.parent if str(p.parent) else Path(".")
     if not parent.is_dir():
-        raise InputError(f"-o {path!r}: folder {str(parent)!r} does not exist; create it first")
+        raise InputError(f"{option} {path!r}: folder {str(parent)!r} does not exist; create it first")
     from .export import temp_file_next_to
 
     try:  # a real probe (permissions, read-only file systems, also for root)
         with temp_file_next_to(p):
             pass
     except OSError as exc:
-        raise InputError(f"-o {path!r}: cannot write in folder {str(parent)!r}: "
+        raise InputError(f"{option} {path!r}: cannot write in folder {str(parent)!r}: "
                          f"{os_error_message(exc, with_path=False)}") from None
     if suffixes and p.suffix.lower() not in suffixes:
-        raise InputError(f"-o {path!r}: the {what} must end in {' or '.join(suffixes)}")
+        raise InputError(f"{option} {path!r}: the {what} must end in {' or '.join(suffixes)}")
     if p.exists() and not overwrite:
-        raise InputError(f"-o {path!r} already exists; pass --overwrite to replace it, or choose another name")
+        raise InputError(f"{option} {path!r} already exists; pass --overwrite to replace it, or choose another name")
     return p
 
 

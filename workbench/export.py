@@ -32,7 +32,7 @@ import xarray as xr
 
 from workbench.errors import ExportError, WorkbenchError
 
-__all__ = ["atomic_target", "temp_file_next_to", "clean_stale_temps", "install_exit_handlers", "export_balanced", "BALANCED_CF", "utc_now_iso", "package_version",
+__all__ = ["atomic_target", "temp_file_next_to", "clean_stale_temps", "install_exit_handlers", "export_balanced", "BALANCED_CF", "utc_now_iso", "time_tag", "package_version",
            "CAUTION", "csv_text", "read_csv"]
 
 #: Caution line carried by every briefing output and export.
@@ -66,6 +66,11 @@ def read_csv(path, **kwargs):
                 break
             skip += 1
     return pd.read_csv(path, skiprows=skip, **kwargs)
+
+
+def time_tag(value) -> str:
+    """A valid time as it goes into output file names: ``2051021012Z`` (to the hour, UTC)."""
+    return str(np.datetime64(value, "h")).replace("-", "").replace("T", "") + "Z"
 
 
 def utc_now_iso() -> str:

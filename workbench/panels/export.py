@@ -9,6 +9,7 @@ import panel as pn
 
 from ..access import resolve_output_path
 from ..errors import ExportError, InputError
+from ..export import time_tag
 from ..textsafe import escape
 from .base import StatePanel
 
@@ -207,8 +208,7 @@ class ExportPanel(StatePanel):
             case_stem(self.state.case)
 
     def _time_tag(self):
-        t = str(self.state.valid_time)[:16]
-        return t[:13].replace("-", "").replace("T", "") + "Z"
+        return time_tag(self.state.valid_time)
 
     def _export_path(self, kind, suffix):
         name = f"{self._stem()}_{kind}" + ("" if kind == "briefing" else f"_{self._time_tag()}")
