@@ -1628,7 +1628,10 @@ def balance_quality(case, time=None, member=None, reference=None, *, tol=DEFAULT
     the QG anomaly, geostrophic with the case's constant f0).
     """
     ti, mi = case._key(time, member)
-    nl = case_balanced_state(case, ti, mi, tol=tol, floor=floor)
+    # at the default tolerance the Case's cached balanced state (a second read-out, or the
+    # briefing after the page, does not solve again)
+    nl = (case.balanced_state(ti, mi, balance="nonlinear", floor=floor) if tol == DEFAULT_TOL
+          else case_balanced_state(case, ti, mi, tol=tol, floor=floor))
     qg = case.balanced_state(ti, mi, balance="qg", reference=reference)
     ds = case.at(ti, mi).transpose(..., "pressure", "latitude", "longitude")
     ua, va = (np.asarray(ds[c].values, float) for c in ("u", "v"))
