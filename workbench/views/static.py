@@ -857,10 +857,10 @@ def balance_map_figure(quality: xr.Dataset, level_hpa: float = 500.0, case=None,
     da = quality["balance_difference"].isel(pressure=k)
     da = da.assign_attrs(long_name="|nonlinear - QG balanced wind|")
     time = quality.attrs.get("time")
+    rms = (f"RMS balanced - analysed wind: QG {float(quality['rms_difference_qg'][k]):.1f}, "
+           f"nonlinear {float(quality['rms_difference_nonlinear'][k]):.1f} m/s")
     md = MapData(field=da, field_name="balance_difference", surface=f"at {level:g} hPa",
-                 native_crs=_native_crs(case), **_case_meta(case, time, member))
-    md.extra_title = (f"RMS balanced - analysed wind: QG {float(quality['rms_difference_qg'][k]):.1f}, "
-                      f"nonlinear {float(quality['rms_difference_nonlinear'][k]):.1f} m/s")
+                 native_crs=_native_crs(case), extra_title=rms, **_case_meta(case, time, member))
     return draw_map(md, settings, page_size=page_size)
 
 
