@@ -25,7 +25,9 @@ def quality(small_case):
 
 
 def test_balance_difference_is_the_speed_of_the_wind_difference(small_case, quality):
-    # the mapped field against the two balanced states taken from the Case directly
+    # a check of what is mapped, not of physics: the field is defined here as the speed of the
+    # vector difference of the two balanced winds (their physics is checked against outside
+    # references in tests/test_nonlinear_balance.py)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         nl = small_case.balanced_state(0, balance="nonlinear", floor=True)
