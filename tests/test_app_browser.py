@@ -21,7 +21,7 @@ pytestmark = pytest.mark.browser
 ROOT = Path(__file__).resolve().parents[1]
 ARTIFACTS = Path(__file__).parent / "artifacts"
 from workbench.testing import (CHROMIUM, CHROMIUM_ARGS as ARGS, JS_MAP_READY, JS_TO_SCREEN,  # noqa: E402
-                               free_port, start_server, stop_server)
+                               choose_mouse_mode, free_port, start_server, stop_server)
 
 JS_MAP_RECT = """() => {
   const v = Bokeh.index.find_one(Bokeh.documents[0].get_model_by_name('pvwb-map'));
@@ -125,7 +125,7 @@ def test_page_loads_without_errors_and_draws_the_map(page):
 
 
 def test_lasso_makes_a_piece_and_updates_the_overlay_in_place(page, anomaly_centre):
-    page.get_by_role("button", name="Lasso a piece").click()
+    choose_mouse_mode(page, "Lasso a piece")
     page.evaluate("""() => {
       const doc = Bokeh.documents[0];
       const fig = doc.get_model_by_name('pvwb-map');
@@ -170,7 +170,7 @@ def test_lasso_makes_a_piece_and_updates_the_overlay_in_place(page, anomaly_cent
 
 def test_section_line_drawn_with_the_mouse_shows_the_section(page, anomaly_centre):
     lon, lat, rx, ry = anomaly_centre
-    page.get_by_role("button", name="Draw a section").click()
+    choose_mouse_mode(page, "Draw a section")
     page.wait_for_timeout(300)
     # the line through the anomaly, kept inside the map (the anomaly may lie near an edge)
     x0, x1, y0, y1 = page.evaluate("""() => {
@@ -232,7 +232,7 @@ def test_label_and_save_session_from_the_page(page, case_file, anomaly_centre):
     lon, lat, rx, ry = anomaly_centre
     page.get_by_text("Annotate", exact=True).click()
     page.locator(".pvwb-label-text input").fill("L")
-    page.get_by_role("button", name="Place a label").click()
+    choose_mouse_mode(page, "Place a label")
     page.evaluate("() => window.scrollTo(0, 0)")  # the map in view (the sidebar is long)
     page.wait_for_timeout(300)
     x, y = page.evaluate(JS_TO_SCREEN, [(lon, lat + 2 * ry)])[0]

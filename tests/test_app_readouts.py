@@ -14,6 +14,7 @@ import numpy as np
 import pytest
 
 from browser_served import JS_FIG_TO_SCREEN, drag, served_page, status, wait_status
+from workbench.testing import choose_mouse_mode
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
@@ -92,14 +93,14 @@ def test_map_hover_names_the_field_with_units_and_the_point(page, anomaly):
 
 def test_map_hover_gives_the_balanced_flow_of_the_pieces(page, anomaly):
     lon, lat, rx, ry = anomaly
-    page.get_by_role("button", name="Lasso a piece").click()
+    choose_mouse_mode(page, "Lasso a piece")
     ring = [(lon + rx * math.cos(t), lat + ry * math.sin(t))
             for t in [2 * math.pi * k / 36 for k in range(37)]]
     drag(page, "pvwb-map", ring)
     wait_status(page, "inverted")
     page.wait_for_function("() => Bokeh.documents[0].get_model_by_name("
                            "'pvwb-balanced-vectors').data.x0.length > 0", timeout=60000)
-    page.get_by_role("button", name="Pan / zoom").click()
+    choose_mouse_mode(page, "Pan / zoom")
     text, _ = _hover_map(page, "pvwb-map", lon, lat, "balanced Z′")
     assert "balanced wind" in text and "m/s from" in text and "°" in text
     z = float(text.split("balanced Z′")[1].split(":")[1].split("m")[0].strip())
@@ -110,7 +111,7 @@ def test_map_hover_gives_the_balanced_flow_of_the_pieces(page, anomaly):
 
 def test_section_hover_gives_distance_pressure_pv_theta_and_normal_wind(page, anomaly):
     lon, lat, rx, ry = anomaly
-    page.get_by_role("button", name="Draw a section").click()
+    choose_mouse_mode(page, "Draw a section")
     page.wait_for_timeout(300)
     x0, x1, y0, y1 = page.evaluate("""() => {
       const f = Bokeh.documents[0].get_model_by_name('pvwb-map');

@@ -20,7 +20,7 @@ import numpy as np
 import pytest
 
 from workbench.testing import (CHROMIUM, CHROMIUM_ARGS as ARGS, JS_MAP_READY, JS_TO_SCREEN,
-                               free_port, start_server, stop_server)
+                               choose_mouse_mode, free_port, start_server, stop_server)
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
@@ -216,7 +216,7 @@ def test_play_advances_the_time_and_pause_stops_it(page, times):
 
 
 def test_ctrl_z_undoes_a_lasso_and_ctrl_shift_z_redoes_it(page, anomaly_centre):
-    page.get_by_role("button", name="Lasso a piece").click()
+    choose_mouse_mode(page, "Lasso a piece")
     page.wait_for_timeout(300)
     _drag(page, _ring(anomaly_centre))
     page.wait_for_function(f"() => ({JS_PIECES})().length == 1", timeout=60000)
@@ -250,7 +250,7 @@ def test_ctrl_z_undoes_a_lasso_and_ctrl_shift_z_redoes_it(page, anomaly_centre):
 
 
 def test_dragging_a_vertex_changes_the_outline_and_its_inversion(page, anomaly_centre):
-    page.get_by_role("button", name="Edit piece outlines").click()
+    choose_mouse_mode(page, "Edit piece outlines")
     page.wait_for_timeout(300)
     lon, lat, rx, ry = anomaly_centre
     before = page.evaluate("""() => {
@@ -300,7 +300,7 @@ def test_dragging_a_vertex_changes_the_outline_and_its_inversion(page, anomaly_c
 
 
 def test_following_piece_outline_differs_between_two_times(page, anomaly_centre, times):
-    page.get_by_role("button", name="Lasso a piece").click()
+    choose_mouse_mode(page, "Lasso a piece")
     page.locator(".pvwb-lasso-follow input").check()
     page.evaluate("() => window.scrollTo(0, 0)")  # the box is below the fold; the map is not
     page.wait_for_timeout(300)
@@ -349,7 +349,7 @@ def test_delete_key_removes_the_selected_piece_and_an_arrow_is_drawn(page, anoma
     page.keyboard.press("Delete")
     page.wait_for_function(f"() => ({JS_PIECES})().length == 1", timeout=30000)
     assert name not in page.evaluate(JS_PIECES)
-    page.get_by_role("button", name="Draw an arrow").click()
+    choose_mouse_mode(page, "Draw an arrow")
     page.evaluate("() => window.scrollTo(0, 0)")
     page.wait_for_timeout(300)
     lon, lat, rx, ry = anomaly_centre
@@ -366,7 +366,7 @@ def test_delete_key_removes_the_selected_piece_and_an_arrow_is_drawn(page, anoma
     assert x1 - x0 > 1.5 * rx  # drawn from west to east
     _shot(page, "timeloop_arrow.png")
     # move its head north by dragging the square at the head
-    page.get_by_role("button", name="Move annotations").click()
+    choose_mouse_mode(page, "Move annotations")
     page.evaluate("() => window.scrollTo(0, 0)")
     page.wait_for_function("() => Bokeh.documents[0].get_model_by_name('pvwb-ann-handle-glyphs')"
                            ".visible", timeout=30000)

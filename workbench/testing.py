@@ -11,8 +11,8 @@ import time
 import urllib.request
 from pathlib import Path
 
-__all__ = ["CHROMIUM", "CHROMIUM_ARGS", "JS_TO_SCREEN", "JS_MAP_READY", "free_port", "start_server",
-           "stop_server"]
+__all__ = ["CHROMIUM", "CHROMIUM_ARGS", "JS_TO_SCREEN", "JS_MAP_READY", "choose_mouse_mode",
+           "free_port", "start_server", "stop_server"]
 
 ROOT = Path(__file__).resolve().parents[1]
 CHROMIUM = "/usr/bin/chromium"
@@ -31,6 +31,28 @@ JS_TO_SCREEN = """(pts) => {
 #: true once the page's Bokeh document holds the map
 JS_MAP_READY = ("() => window.Bokeh && Bokeh.documents.length > 0 && "
                 "Bokeh.documents[0].get_model_by_name('pvwb-map') != null")
+
+
+#: the map tool each mouse mode switches on, by the start of the tool's description
+MODE_TOOLS = {"Lasso a piece": "Lasso a piece", "Draw a section": "Draw a section",
+              "Pick target point": "Pick the attribution", "Place a label": "Pick the attribution",
+              "Draw an arrow": "Pick the attribution", "Edit piece outlines": "Edit piece outlines",
+              "Move annotations": "Move annotations", "Pan / zoom": None}
+
+JS_MODE_ON = """(prefix) => {
+  const tb = Bokeh.documents[0].get_model_by_name('pvwb-map').toolbar;
+  const on = [tb.active_drag, tb.active_tap, tb.active_multi].filter(t => t != null);
+  if (prefix == null)  // pan / zoom: the pan tool dragging, no tap or several-gesture tool
+    return tb.active_tap == null && tb.active_multi == null && on.length == 1;
+  return on.some(t => (t.description || '').startsWith(prefix));
+}"""
+
+
+def choose_mouse_mode(page, label, timeout=30000):
+    """Click the mouse-mode button ``label`` and wait until the server has switched the map's
+    tool on in the browser (a click on the map before that goes to the old tool)."""
+    page.get_by_role("button", name=label).first.click()
+    page.wait_for_function(JS_MODE_ON, arg=MODE_TOOLS[label], timeout=timeout)
 
 
 def free_port() -> int:
