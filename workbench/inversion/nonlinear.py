@@ -60,6 +60,7 @@ import xarray as xr
 
 from workbench.errors import DomainError, InputError, PieceError
 from workbench.inversion.fields import _ATTRS, central_f0, hydrostatic_temperature, spatial_dims
+from workbench.inversion.kernels import JACOBIAN_COEFFICIENTS, jacobian_apply, padded, terms_and_residual
 from workbench.places import point_label
 from workbench.inversion.operator import QGGrid, horizontal_laplacian
 from workbench.inversion.solver import SeparableSolver, _blas_threads
@@ -476,7 +477,10 @@ class _Jacobian:
     solves).  ``dtype`` float32 gives the single-precision products of the inner solves
     (coefficients are formed in float64 and stored in ``dtype``)."""
 
-    def __init__(self, grid, d, eta, clipped, dtype=np.float64, reuse=None):
+    def __init__(self, grid, d, eta, clipped, dtype=np.float64, reuse=None, coefficients=None):
+        """``coefficients``: the products' coefficient arrays already formed (in ``dtype``, by
+        :func:`workbench.inversion.kernels.terms_and_residual`); then ``d``, ``eta`` and
+        ``clipped`` are not used."""
         g = self.g = grid
         a = g.a
         dt = self.dtype = np.dtype(dtype)
@@ -502,6 +506,21 @@ class _Jacobian:
             np.multiply(x, factor, out=out, casting="same_kind" if dt == np.float64 else "unsafe")
             setattr(self, name, out)
 
+        if coefficients is not None:
+            for name in JACOBIAN_COEFFICIENTS:
+                setattr(self, name, coefficients[name])
+        else:
+            self._coefficients(d, eta, clipped, c, C, inv_x)
+        self._hc, self._divf = g.coefficients(dt)
+        self._rdpi = (1.0 / g.dpi).astype(dt)[:, None, None]
+        self._rhs = (1.0 / g.hs).astype(dt)[:, None, None]
+        self._X = old["_X"] if "_X" in old else np.zeros(g.shape, dt)  # lateral nodes stay 0
+        self._Y = old["_Y"] if "_Y" in old else np.zeros(g.shape, dt)
+        self._work = old.get("_work", {})
+
+    def _coefficients(self, d, eta, clipped, c, C, inv_x):
+        """The coefficients of the products from the state's terms (NumPy passes)."""
+        g, a = self.g, self.g.a
         c("cE", eta, C)
         c("cS", d["Spp"] if clipped is None else np.where(clipped, 0.0, d["Spp"]), C)
         c("cspx", d["spx"], C * inv_x)
@@ -516,12 +535,6 @@ class _Jacobian:
         lon = hxy * (4.0 * g.tan / (a * a * g.cos * 2.0 * g.dlam))
         lon += d["psx"] * (2.0 / (a ** 3 * g.cos * 2.0 * g.dlam))
         c("c_lon", lon, 1.0)
-        self._hc, self._divf = g.coefficients(dt)
-        self._rdpi = (1.0 / g.dpi).astype(dt)[:, None, None]
-        self._rhs = (1.0 / g.hs).astype(dt)[:, None, None]
-        self._X = old["_X"] if "_X" in old else np.zeros(g.shape, dt)  # lateral nodes stay 0
-        self._Y = old["_Y"] if "_Y" in old else np.zeros(g.shape, dt)
-        self._work = old.get("_work", {})
 
     def _dlon(self, b):
         """Raw centred longitude difference b[i+1] - b[i-1] at the interior longitudes."""
@@ -606,8 +619,23 @@ class _Jacobian:
         return outs
 
     def apply(self, x1, x2):
-        """(E1, E2) increments for interior increments (x1, x2) of (Phi, psi).  The two arrays
-        returned are work arrays of this operator, overwritten by its next product."""
+        """(E1, E2) increments for interior increments (x1, x2) of (Phi, psi), by the compiled
+        loop of :func:`workbench.inversion.kernels.jacobian_apply` (the same numbers as
+        :meth:`apply_numpy` to round-off).  The two arrays returned are work arrays of this
+        operator, overwritten by its next product."""
+        g = self.g
+        nz, nyi, nxi = ish = g.interior_shape
+        buf = self._buf
+        X, Y = buf("kX", (nz, nyi + 2, nxi + 2)), buf("kY", (nz, nyi + 2, nxi + 2))
+        if not self._work.get("k_zeroed"):  # their lateral rows stay 0
+            X[...] = 0.0
+            Y[...] = 0.0
+            self._work["k_zeroed"] = True
+        return jacobian_apply(self, padded(g, x1, X), padded(g, x2, Y), buf("r1", ish), buf("r2", ish))
+
+    def apply_numpy(self, x1, x2):
+        """:meth:`apply` written as NumPy passes over the whole field (the readable statement of
+        the product, and its check)."""
         g = self.g
         ls = g.ls
         X, Y = self._X, self._Y
@@ -1122,37 +1150,43 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
         if not np.all(np.isfinite(arr)):
             raise InputError(f"nonlinear balance: {name} contains NaN or infinite values; give complete fields.")
     spaces = [{}, {}]  # the current state's terms live in one, a trial step's in the other
-    d0 = _terms(g, Phi, psi, theta_b, theta_t, ws=spaces[0])
+    ef = eta_floor if floor else None
+    q_int = np.ascontiguousarray(g.interior(q))
+    inner = np.dtype(np.float32 if inner_precision == "single" else np.float64)
+    d0, r1_0, r2_0 = terms_and_residual(g, Phi, psi, theta_b, theta_t, q_int, ef, ws=spaces[0],
+                                        dtype=inner)
     q_used, pv_mask = check_ellipticity(g, q, g.fi + d0["zeta"], pv_floor if floor else None,
                                         eta_floor if floor else None)
-    ef = eta_floor if floor else None
-    qs = _rms(g.interior(q_used))
-    qi = g.interior(q_used)
-    qa = qi - qi.reshape(g.nz, -1).mean(axis=1)[:, None, None]
-    bs = max(_rms(d0["lapPhi"]), _rms(d0["divf"]), g.f0 ** 2 * max(_rms(qa) / max(qs, 1e-300), 1e-6))
+    if pv_mask.any():  # the floor raised the PV somewhere: the first residual against the PV used
+        q_new = np.ascontiguousarray(g.interior(q_used))
+        r1_0 -= q_new - q_int
+        q_int = q_new
+    qs = _rms(q_int)
+    qa = q_int - q_int.reshape(g.nz, -1).mean(axis=1)[:, None, None]
+    bs = max(d0["rms_lapPhi"], d0["rms_divf"], g.f0 ** 2 * max(_rms(qa) / max(qs, 1e-300), 1e-6))
     _level_mean_stability(g, d0["Spp"])  # refuses a statically unstable mean state
     n_int = int(np.prod(g.interior_shape))
-    counts = dict(gmres=0, res=0, per_step=[], pc=0, pc_builds=0)
+    counts = dict(gmres=0, res=1, per_step=[], pc=0, pc_builds=0)
     P = Jk = None
 
-    def residual(Phi, psi, d=None):
+    def clipped_of(d):
+        return None if ef is None else g.sign * (g.fi + d["zeta"]) < ef * np.abs(g.fi)
+
+    def residual(Phi, psi, ws):
+        """Terms, absolute vorticity and residuals of a state (one compiled pass), written over
+        the arrays of ``ws`` (the current state's and a trial step's terms live in two)."""
         counts["res"] += 1
-        if d is None:  # a trial state: write over the arrays not holding the current state's terms
-            d = _terms(g, Phi, psi, theta_b, theta_t, ws=spaces[1])
-        eta, clipped = _eta(g, d, ef)
-        r1 = _pv(g, d, eta) - g.interior(q_used)
-        r2 = _balance(g, d)
-        return d, eta, clipped, r1, r2
+        d, r1, r2 = terms_and_residual(g, Phi, psi, theta_b, theta_t, q_int, ef, ws=ws, dtype=inner)
+        return d, d["eta"], clipped_of(d), r1, r2
 
     def rel(r1, r2):
         return max(_rms(r1) / qs, _rms(r2) / bs)
 
-    d, eta, clipped, r1, r2 = residual(Phi, psi, d0)
+    d, eta, clipped, r1, r2 = d0, d0["eta"], clipped_of(d0), r1_0, r2_0
     history = [rel(r1, r2)]
     # unknown scales: the preconditioner maps scaled residuals to increments
     eta_k, prev = eta0, history[0]
     newton = 0
-    inner = np.dtype(np.float32 if inner_precision == "single" else np.float64)
     mv_out = np.empty(2 * n_int, inner)
     krylov = {}  # Krylov bases kept across the Newton steps
     # single-precision inner solves cannot resolve relative reductions much below ~1e-6
@@ -1160,7 +1194,7 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
     with _blas_threads(1):
         while history[-1] > tol and newton < max_newton:
             newton += 1
-            Jk = _Jacobian(g, d, eta, clipped, dtype=inner, reuse=Jk)
+            Jk = _Jacobian(g, None, None, None, dtype=inner, reuse=Jk, coefficients=d["jacobian"])
             if P is None or not _preconditioner_still_fits(P, g, d["Spp"], eta):
                 P = _make_preconditioner(g, d["Spp"], eta, dtype=inner)
                 counts["pc_builds"] += 1
@@ -1195,7 +1229,7 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
                 Pn, Sn = Phi.copy(), psi.copy()
                 Pn[..., 1:-1, g.ls] += step * dP
                 Sn[..., 1:-1, g.ls] += step * dS
-                dn, en, cn, r1n, r2n = residual(Pn, Sn)
+                dn, en, cn, r1n, r2n = residual(Pn, Sn, spaces[1])
                 rn = rel(r1n, r2n)
                 if np.isfinite(rn) and rn < history[-1]:
                     break
@@ -1483,6 +1517,27 @@ def _solve_state(g, st, tol, floor, **kw):
                          tol=tol, floor=floor, **kw)
 
 
+def _solution(case, key, g, st, tol, floor, progress=None):
+    """The nonlinear-balance solve of state ``st``, kept in the case's bounded cache under
+    ``key`` (so that the balanced state, the pieces, the balance check and the briefing of one
+    time share one solve, and the times of a case share the reference state's)."""
+    def make():
+        res = _solve_state(g, st, tol, floor, progress=progress)
+        return dict(result=res, Phi=res.Phi, psi=res.psi)  # (the arrays the cache counts)
+
+    return case._cache.get(key + (bool(floor), float(tol)), make)["result"]
+
+
+def _reference_key(case, ti, mi, reference):
+    """Cache key of a reference state's solve: the reference, and the time and member when
+    ground below some levels (time-varying) changes its bottom theta."""
+    from workbench.case import _ref_key
+
+    below = case.missing_info(ti, mi)["below_ground"]
+    where = (ti, mi) if bool(np.asarray(below).any()) else None
+    return ("balsolve-ref", _ref_key(case.resolve_reference(reference)), where)
+
+
 def _require_converged(res, what):
     if not res.converged and res.floored is not None and np.any(res.floored[-1] > 0):
         h = res.residual_history
@@ -1514,7 +1569,7 @@ def case_balanced_state(case, time=None, member=None, *, tol=DEFAULT_TOL, floor=
     iterations, residual history, floored points; variable ``floored`` when ``floor``)."""
     ti, mi = case._key(time, member)
     g, st, _ = _case_states(case, ti, mi, None)
-    res = _solve_state(g, st, tol, floor)
+    res = _solution(case, ("balsolve", ti, mi), g, st, tol, floor)
     _require_converged(res, "full inversion")
     return _full_dataset(case, g, res.Phi, res.psi, st["tb"], st["tt"], res, "nonlinear")
 
@@ -1559,9 +1614,10 @@ def invert_nonlinear_pieces(case, pieces, time=None, member=None, reference=None
     g, st, rf = _case_states(case, ti, mi, reference)
     part = (lambda a, b, what: None if progress is None else  # progress(fraction, text) over the whole job
             (lambda f, t: progress(a + (b - a) * f, f"{what}: {t}")))
-    full = _solve_state(g, st, tol, floor, progress=part(0.0, 0.4, "full inversion"))
+    full = _solution(case, ("balsolve", ti, mi), g, st, tol, floor, progress=part(0.0, 0.4, "full inversion"))
     _require_converged(full, "full inversion")
-    refr = _solve_state(g, rf, tol, floor, progress=part(0.4, 0.8, "reference state"))
+    refr = _solution(case, _reference_key(case, ti, mi, reference), g, rf, tol, floor,
+                     progress=part(0.4, 0.8, "reference state"))
     _require_converged(refr, "inversion of the reference state")
     anomaly = case.anomaly(ti, mi, reference).copy()
     dq = st["q"] - rf["q"]
