@@ -59,6 +59,8 @@ def test_residual_and_jacobian_coefficients_match_the_numpy_statement(kind, floo
         assert _rel(dk["jacobian"][name], getattr(J, name)) < 1e-9, name
     assert dk["rms_lapPhi"] == pytest.approx(nl._rms(d["lapPhi"]), rel=1e-12)
     assert dk["rms_divf"] == pytest.approx(nl._rms(d["divf"]), rel=1e-12)
+    assert dk["rms_r1"] == pytest.approx(nl._rms(r1), rel=1e-9)
+    assert dk["rms_r2"] == pytest.approx(nl._rms(r2), rel=1e-9)
 
 
 @pytest.mark.parametrize("kind", ["regional", "periodic", "south"])

@@ -626,12 +626,14 @@ class _Jacobian:
         g = self.g
         nz, nyi, nxi = ish = g.interior_shape
         buf = self._buf
-        X, Y = buf("kX", (nz, nyi + 2, nxi + 2)), buf("kY", (nz, nyi + 2, nxi + 2))
+        # pairs of arrays in one block each (a block of 4 MiB or more gets huge pages: faster
+        # to write the first time)
+        XY = buf("kXY", (2, nz, nyi + 2, nxi + 2))
         if not self._work.get("k_zeroed"):  # their lateral rows stay 0
-            X[...] = 0.0
-            Y[...] = 0.0
+            XY[...] = 0.0
             self._work["k_zeroed"] = True
-        return jacobian_apply(self, padded(g, x1, X), padded(g, x2, Y), buf("r1", ish), buf("r2", ish))
+        r = buf("kr", (2,) + ish)
+        return jacobian_apply(self, padded(g, x1, XY[0]), padded(g, x2, XY[1]), r[0], r[1])
 
     def apply_numpy(self, x1, x2):
         """:meth:`apply` written as NumPy passes over the whole field (the readable statement of
@@ -830,9 +832,8 @@ class _Preconditioner:
         self.applications += 1
         nz, nyi, nxi = ish = g.interior_shape
         w = self.__dict__.setdefault("_work", {})
-        if "rhs" not in w:
-            for k in ("rhs", "rb"):
-                w[k] = np.empty(ish, self.scale.dtype)
+        if "rhs" not in w:  # (one block: huge pages, see _Jacobian.apply)
+            w["rhs"], w["rb"] = np.empty((2,) + ish, self.scale.dtype)
             w["d"] = np.empty((nz - 1, nyi, nxi), self.scale.dtype)
         rhs, rb, d = w["rhs"], w["rb"], w["d"]
         np.multiply(v1, self.scale * a1, out=rb)
@@ -989,11 +990,12 @@ def _gmres_right(matvec, precond, b, rtol, maxiter, restart=30, work=None):
             Z.append(z)
             w = matvec(z)
             its += 1
-            w0 = float(np.linalg.norm(w))
             h = (w @ V[:k + 1].T).astype(float)  # (this layout is the fast BLAS product, measured)
             np.matmul(h.astype(dt), V[:k + 1], out=tmp)
             w -= tmp
             hn = float(np.linalg.norm(w))
+            # |w| before the projection from Pythagoras (V orthonormal): no pass of its own
+            w0 = float(np.sqrt(hn * hn + h @ h))
             if hn < reorth * w0:  # re-orthogonalise once (CGS2) when cancellation was large
                 h2 = (w @ V[:k + 1].T).astype(float)
                 np.matmul(h2.astype(dt), V[:k + 1], out=tmp)
@@ -1020,9 +1022,13 @@ def _gmres_right(matvec, precond, b, rtol, maxiter, restart=30, work=None):
         y = np.zeros(kk)
         for i in range(kk - 1, -1, -1):  # back substitution on the rotated Hessenberg matrix
             y[i] = (gv[i] - H[i, i + 1:kk] @ y[i + 1:]) / H[i, i]
-        for i in range(kk):
-            np.multiply(Z[i], dt.type(y[i]), out=tmp)
+        if work is not None:  # x += y Z in one BLAS product over the kept rows
+            np.matmul(y.astype(dt), work["Z"][:kk], out=tmp)
             x += tmp
+        else:
+            for i in range(kk):
+                np.multiply(Z[i], dt.type(y[i]), out=tmp)
+                x += tmp
         del Z, V
         rel = abs(gv[kk]) / beta0
         if rel <= rtol or its >= maxiter:
@@ -1149,11 +1155,13 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
                       ("bottom theta", theta_b), ("top theta", theta_t)):
         if not np.all(np.isfinite(arr)):
             raise InputError(f"nonlinear balance: {name} contains NaN or infinite values; give complete fields.")
-    spaces = [{}, {}]  # the current state's terms live in one, a trial step's in the other
+    # one set of arrays for the terms: a trial step's are written over the current state's
+    # (those are done with once the Newton step's GMRES solve has its right-hand side)
+    space = {}
     ef = eta_floor if floor else None
     q_int = np.ascontiguousarray(g.interior(q))
     inner = np.dtype(np.float32 if inner_precision == "single" else np.float64)
-    d0, r1_0, r2_0 = terms_and_residual(g, Phi, psi, theta_b, theta_t, q_int, ef, ws=spaces[0],
+    d0, r1_0, r2_0 = terms_and_residual(g, Phi, psi, theta_b, theta_t, q_int, ef, ws=space,
                                         dtype=inner)
     q_used, pv_mask = check_ellipticity(g, q, g.fi + d0["zeta"], pv_floor if floor else None,
                                         eta_floor if floor else None)
@@ -1172,22 +1180,24 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
     def clipped_of(d):
         return None if ef is None else g.sign * (g.fi + d["zeta"]) < ef * np.abs(g.fi)
 
-    def residual(Phi, psi, ws):
-        """Terms, absolute vorticity and residuals of a state (one compiled pass), written over
-        the arrays of ``ws`` (the current state's and a trial step's terms live in two)."""
+    def residual(Phi, psi):
+        """Terms, absolute vorticity and residuals of a state (one compiled pass)."""
         counts["res"] += 1
-        d, r1, r2 = terms_and_residual(g, Phi, psi, theta_b, theta_t, q_int, ef, ws=ws, dtype=inner)
+        d, r1, r2 = terms_and_residual(g, Phi, psi, theta_b, theta_t, q_int, ef, ws=space, dtype=inner)
         return d, d["eta"], clipped_of(d), r1, r2
 
-    def rel(r1, r2):
-        return max(_rms(r1) / qs, _rms(r2) / bs)
+    def rel(d):
+        return max(d["rms_r1"] / qs, d["rms_r2"] / bs)
 
     d, eta, clipped, r1, r2 = d0, d0["eta"], clipped_of(d0), r1_0, r2_0
-    history = [rel(r1, r2)]
+    if pv_mask.any():
+        d0["rms_r1"] = _rms(r1)
+    history = [rel(d0)]
     # unknown scales: the preconditioner maps scaled residuals to increments
     eta_k, prev = eta0, history[0]
     newton = 0
     mv_out = np.empty(2 * n_int, inner)
+    rhs = np.empty(2 * n_int, inner)
     krylov = {}  # Krylov bases kept across the Newton steps
     # single-precision inner solves cannot resolve relative reductions much below ~1e-6
     rtol_floor = 1e-4 if inner == np.float32 else 0.0
@@ -1213,7 +1223,6 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
                              out[:n_int].reshape(ish), out[n_int:].reshape(ish))
                 return out
 
-            rhs = np.empty(2 * n_int, inner)
             np.multiply(r1.reshape(-1), -1.0 / qs, out=rhs[:n_int], casting="unsafe")
             np.multiply(r2.reshape(-1), -1.0 / bs, out=rhs[n_int:], casting="unsafe")
             rtol = min(0.5, max(eta_k, 0.5 * tol / max(history[-1], 1e-300), rtol_floor))
@@ -1222,22 +1231,25 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
             counts["pc"] += P.applications - pc_before
             counts["gmres"] += n_it
             counts["per_step"].append(n_it)
-            dP = dx[:n_int].reshape(g.interior_shape).astype(float)
-            dS = dx[n_int:].reshape(g.interior_shape).astype(float)
-            step = 1.0
-            for _ in range(6):  # backtracking on the residual norm
-                Pn, Sn = Phi.copy(), psi.copy()
-                Pn[..., 1:-1, g.ls] += step * dP
-                Sn[..., 1:-1, g.ls] += step * dS
-                dn, en, cn, r1n, r2n = residual(Pn, Sn, spaces[1])
-                rn = rel(r1n, r2n)
+            dP = dx[:n_int].reshape(g.interior_shape)  # (inner precision; added to float64 below)
+            dS = dx[n_int:].reshape(g.interior_shape)
+            step, taken = 1.0, 0.0
+            interior = (Ellipsis, slice(1, -1), g.ls)
+            for _ in range(6):  # backtracking on the residual norm; the state is moved in place
+                for arr, inc in ((Phi, dP), (psi, dS)):
+                    arr[interior] += inc if step - taken == 1.0 else (step - taken) * inc
+                taken = step
+                dn, en, cn, r1n, r2n = residual(Phi, psi)
+                rn = rel(dn)
                 if np.isfinite(rn) and rn < history[-1]:
                     break
                 step *= 0.5
-            else:
+            else:  # no step lowers the residual: back to the state before it, and stop
+                for arr, inc in ((Phi, dP), (psi, dS)):
+                    arr[interior] -= taken * inc
+                d, eta, clipped, r1, r2 = residual(Phi, psi)
                 break
-            Phi, psi, d, eta, clipped, r1, r2 = Pn, Sn, dn, en, cn, r1n, r2n
-            spaces.reverse()
+            d, eta, clipped, r1, r2 = dn, en, cn, r1n, r2n
             history.append(rn)
             if verbose:
                 print(f"newton {newton}: relative residual {rn:.3e} (step {step:g}, gmres rtol {rtol:.2g}, "
