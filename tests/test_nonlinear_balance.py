@@ -396,3 +396,21 @@ def test_unknown_inner_precision_is_refused():
     g, q, tb, tt, Phi, psi = nl.bench_problem((5, 9, 11), amplitude=0.5)
     with pytest.raises(InputError, match="inner_precision must be 'single' or 'double'"):
         nl.solve_balance(g, q, tb, tt, Phi, psi, inner_precision="half")
+
+
+def test_a_stalled_floored_solve_stops_early_and_says_why():
+    # late in the invented sample storm (time index 11) hundreds of PV points need the floor and
+    # the floored system stalls near 1.6e-3; the solve stops after three steps without gain
+    # (not after max_newton) and the case path names the floored points
+    import workbench as wb
+    from workbench.analysis import default_case_path
+
+    case = wb.open_case(default_case_path())
+    g, st, _ = nl._case_states(case, 11, None, None)
+    res = nl._solve_state(g, st, nl.DEFAULT_TOL, True)
+    assert not res.converged and res.n_pv_floored > 0
+    assert res.newton_iterations < 20
+    h = res.residual_history
+    assert all(h[-i] > 0.95 * h[-i - 1] for i in (1, 2, 3))
+    with pytest.raises(DomainError, match=r"point\(s\) floored: the floored system is not smooth"):
+        case.balanced_state(11, floor=True)

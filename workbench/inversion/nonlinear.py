@@ -1251,6 +1251,8 @@ def solve_balance(grid: BalanceGrid, q, theta_b, theta_t, Phi_lateral, psi_later
                 break
             d, eta, clipped, r1, r2 = dn, en, cn, r1n, r2n
             history.append(rn)
+            if len(history) >= 4 and all(history[-i] > 0.95 * history[-i - 1] for i in (1, 2, 3)):
+                break  # stalled: three Newton steps in a row gained less than 5 % each
             if verbose:
                 print(f"newton {newton}: relative residual {rn:.3e} (step {step:g}, gmres rtol {rtol:.2g}, "
                       f"{n_it} GMRES)")
@@ -1561,6 +1563,12 @@ def _require_converged(res, what):
             "(fewer levels) or use balance='qg'.")
     if not res.converged:
         h = res.residual_history
+        if res.n_pv_floored or res.n_eta_floored:
+            raise DomainError(
+                f"nonlinear balance: the {what} did not converge (relative residual {h[-1]:.2e} after "
+                f"{res.newton_iterations} Newton steps, tolerance {res.tol:g}) with {res.n_pv_floored} PV "
+                f"and {res.n_eta_floored} absolute-vorticity point(s) floored: the floored system is not "
+                "smooth there and the iteration stalled; use balance='qg' for this time.")
         raise DomainError(
             f"nonlinear balance: the {what} did not converge (relative residual {h[-1]:.2e} after "
             f"{res.newton_iterations} Newton steps, tolerance {res.tol:g}); the state may be close to "
