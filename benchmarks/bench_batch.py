@@ -4,14 +4,17 @@
 the invented sample storm (``sample_cases/``) interpolated to 0.5 degree (``--step``), 8 times,
 float32, written to a temporary netCDF file. One cluster is alive at a time (an idle
 second cluster took CPU from the timed one); each is started (start-up reported apart), its
-workers import the workbench and make two untimed runs, then serial and cluster runs
+workers import the workbench and make four untimed runs, then serial and cluster runs
 alternate (``--repeat`` of each) so that both see the same load; every run opens the case
 afresh (``forget_cases`` in every process). Clusters come from :func:`workbench.batch.local_cluster`.
 Also reported: the load average (before, after, each round), the CPU seconds of every process of
 each run (client + workers) and the cores that gives per wall second (tells a slow parallel run
 from a machine busy with other work), the per-task cost (serial seconds per time) and the peak
 memory of one task (tracemalloc, one analyse of one time of the case), the figures behind the
-cluster estimate in DEVELOPERS.md.
+cluster estimate in DEVELOPERS.md. Last, the machine's own limit (``two_processes_at_once``):
+the same analyses in one plain process alone and in two at once (no Dask), whose slow-down caps
+what any 2-worker run can gain here (``ceiling`` = 2 / slow-down); ``speedup_2_vs_1_of_ceiling``
+is the cluster's speed-up as a share of it.
 """
 from __future__ import annotations
 
@@ -56,6 +59,53 @@ def _warm():
     import workbench.batch  # noqa: F401
 
 
+def _analyse_times(path, n, queue=None):
+    """Wall seconds of ``analyse`` over ``n`` times of the case (after two untimed ones), in a
+    process of its own (no Dask: the plain computation)."""
+    warnings.simplefilter("ignore")
+    import workbench as wb
+    from workbench.analysis import analyse
+
+    case = wb.open_case(path)
+    case.reference()
+    for ti in range(2):
+        analyse(case, ti)
+    t0 = time.perf_counter()
+    for k in range(n):
+        analyse(case, k % case.times.size)
+    out = time.perf_counter() - t0
+    if queue is not None:
+        queue.put(out)
+    return out
+
+
+def two_at_once(path, n=8, repeat=3):
+    """How much slower each of two processes runs the same analyses when both run at once than
+    one does alone (no Dask anywhere): the machine's own limit on what two workers can gain.
+    Two processes sharing two cores gain at most ``2 / slowdown``; on a machine whose cores
+    share the memory bandwidth and the last-level cache, memory-bound work slows down when
+    both run. Returns dict(alone_s, together_s (pairs), slowdown (median), ceiling)."""
+    import multiprocessing as mp
+
+    ctx = mp.get_context("spawn")
+    alone, together = [], []
+    for _ in range(repeat):
+        q = ctx.Queue()
+        p = ctx.Process(target=_analyse_times, args=(str(path), n, q))
+        p.start()
+        alone.append(q.get())
+        p.join()
+        q = ctx.Queue()
+        ps = [ctx.Process(target=_analyse_times, args=(str(path), n, q)) for _ in range(2)]
+        for p in ps:
+            p.start()
+        together.append([q.get(), q.get()])
+        for p in ps:
+            p.join()
+    slow = statistics.median(sum(t) / 2 / a for a, t in zip(alone, together))
+    return dict(alone_s=alone, together_s=together, slowdown=slow, ceiling=2.0 / slow)
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(prog="bench_batch")
     parser.add_argument("--repeat", type=int, default=3)
@@ -88,7 +138,12 @@ def main(argv=None):
         cpu = {k: [] for k in times}  # CPU seconds of every process in the run (client + workers)
         loads, startup = [], {1: [], 2: []}
         forget_cases()
-        run_batch(path)  # untimed: the client's first-call costs
+        # untimed: the client's first-call costs, and its C allocator's adaptive threshold
+        # (glibc raises it as large arrays are freed, after which they come from the heap
+        # without page faults: measured, serial runs 4.1 / 2.3 s at first, 1.5 s later)
+        for _ in range(4):
+            forget_cases()
+            run_batch(path)
         # one cluster alive at a time, as a user runs it (an idle second cluster's scheduler,
         # nanny and worker took CPU from the timed one on 2 cores: the 2-worker run 0.91 s
         # alone, 1.16-1.29 s beside an idle 1-worker cluster); each cluster is long-lived like
@@ -101,7 +156,7 @@ def main(argv=None):
             try:
                 client.run(_warm)
                 startup[n].append(time.perf_counter() - t0)
-                for _ in range(2):
+                for _ in range(4):  # as for the client above: the workers' allocators warm up too
                     client.run(forget_cases)
                     run_batch(path, client=client)
                 for rep in range(args.repeat):
@@ -133,6 +188,11 @@ def main(argv=None):
     out["speedup_2_vs_1"] = med["1 worker"] / med["2 workers"]
     out["1_worker_vs_serial"] = med["1 worker"] / med["serial"]
     out["serial_per_task_s"] = med["serial"] / 8
+    with tempfile.TemporaryDirectory() as tmp:  # the machine's own limit, without Dask
+        path, _, _ = build_case(tmp, step=args.step)
+        out["two_processes_at_once"] = two_at_once(path)
+    # the 2-worker speed-up as a share of what two plain processes can gain on this machine
+    out["speedup_2_vs_1_of_ceiling"] = out["speedup_2_vs_1"] / out["two_processes_at_once"]["ceiling"]
     if args.json:
         print(json.dumps(out, indent=1))
     else:

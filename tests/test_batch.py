@@ -129,3 +129,36 @@ def test_batch_worker_warnings_come_back_once(small_case_path, recwarn):
         analysis.analyse = orig
     msgs = [str(w.message) for w in recwarn.list if "invented test warning" in str(w.message)]
     assert msgs == ["invented test warning from a task"]
+
+
+def test_workers_take_the_clients_census_unless_the_file_changed(small_case_path, tmp_path, monkeypatch):
+    # a batch's workers open the file with Case.open_state of the client's open: the
+    # missing-value census (which reads every time) and the checksum are not redone, unless the
+    # file's size or modification time differ (then everything is examined again)
+    import os
+    import shutil
+
+    import xarray as xr
+
+    from workbench.case import Case
+
+    path = tmp_path / "gaps.nc"
+    ds = xr.open_dataset(small_case_path).load()
+    ds["t"].values[0, 3, 5, 7] = np.nan  # one scattered missing value: filled, and said so
+    ds.to_netcdf(path)
+    case = wb.open_case(path)
+    state = case.open_state()
+    assert any("Missing values" in n for n in case.notes) and state["census_complete"]
+    calls = []
+    real = Case._missing_census
+    monkeypatch.setattr(Case, "_missing_census", lambda self: calls.append(1) or real(self))
+    again = wb.open_case(path, known=state)
+    assert calls == [] and again.notes == case.notes and again.checksum == case.checksum
+    assert again._census == case._census
+    shutil.copy(path, tmp_path / "copy.nc")
+    st = os.stat(path)
+    os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns + 10**9))  # same bytes, touched
+    fresh = wb.open_case(path, known=state)
+    assert calls == [1] and fresh.notes == case.notes
+    other = wb.open_case(tmp_path / "copy.nc", known=state)  # another file
+    assert calls == [1, 1] and other.checksum == case.checksum  # (same bytes, checksummed again)

@@ -57,7 +57,8 @@ def _worker_case(path, options, ref_name, ref):
     its cache under ``ref_name``."""
     import workbench as wb
 
-    key = (path, json.dumps(options, sort_keys=True, default=str))
+    # ("known": what the client's open established, see Case.open_state; not part of the key)
+    key = (path, json.dumps({k: v for k, v in options.items() if k != "known"}, sort_keys=True, default=str))
     with _CASES_LOCK:
         case = _CASES.get(key)
         if case is None:
@@ -328,6 +329,9 @@ def _run_batch(path, *, pieces, times, members, target, reference, client, optio
                                          floor)
                 bar.update(1)
         elif todo:
+            # the workers open the file with what the client's open established (its checksum
+            # and missing-value census: measured, 0.43 -> s per worker at 0.5 deg, 8 times)
+            options = dict(options, known=case.open_state())
             ref_future, place = _submit_reference(client, path, options, reference, case, todo)
             futures = [client.submit(_task, path, ti, mi, job_pieces[(ti, mi)], target, ref_future, options, store,
                                      balance, floor,

@@ -157,7 +157,10 @@ class Case:
     MAP_FIELDS = MAP_FIELDS
     REFERENCE_KINDS = REFERENCE_KINDS
 
-    def __init__(self, data: xr.Dataset, *, source="<in-memory>", name=None, checksum=None, f0=None):
+    def __init__(self, data: xr.Dataset, *, source="<in-memory>", name=None, checksum=None, f0=None,
+                 known=None):
+        """``known``: :meth:`open_state` of the same file opened elsewhere (a batch's client):
+        its missing-value census and notes are taken instead of examining every time again."""
         self.data = data
         self.source = source
         self.name = name or data.attrs.get("case_name") or data.attrs.get("title") or (
@@ -172,11 +175,25 @@ class Case:
         self._note_slots = {}
         self._census = {}
         self._census_complete = False
+        if known is not None:
+            self.notes = list(known["notes"])
+            self._note_slots = dict(known["note_slots"])
+            self._census = dict(known["census"])
+            self._census_complete = bool(known["census_complete"])
+            return
         if self.times.size == 1:
             self.add_note(f"One time in the file: the default reference state is the "
                           f"{self.default_reference.replace('_', ' ')} of that time "
                           f"(domain {self.width_km:.0f} km wide); 'time_mean' needs several times.")
         self._missing_census()
+
+    def open_state(self) -> dict:
+        """What opening the file established (checksum, missing-value census, notes) for
+        ``open_case(path, known=...)`` in another process: a batch's workers then skip the
+        census, which reads every time of the file, and the checksum."""
+        return dict(checksum=self.checksum, notes=list(self.notes), note_slots=dict(self._note_slots),
+                    census=dict(self._census), census_complete=self._census_complete,
+                    stat=getattr(self, "_source_stat", None))
 
     def add_note(self, text: str) -> None:
         """Record one sentence about how the data were handled (shown in the case summary)."""

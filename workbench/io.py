@@ -924,12 +924,16 @@ def open_case(source, **options):
     (override for projected files), ``variables``, ``coords`` and ``units`` (overrides for
     unusual files, see :func:`normalise`), ``f0`` (Coriolis parameter for QG, default the domain
     centre's), and reader keywords (``filter_by_keys`` for GRIB, to read one hypercube only).
+    ``known``: :meth:`Case.open_state` of the same files opened in another process; when the
+    files' sizes and modification times still match, its checksum and missing-value census are
+    used instead of reading every time again (a batch's workers).
     Returns a :class:`workbench.case.Case`.
     """
     from .case import Case
 
     name = options.pop("name", None)
     f0 = options.pop("f0", None)
+    known = options.pop("known", None)
     variables = options.pop("variables", None)
     coords = options.pop("coords", None)
     units_override = options.pop("units", None)
@@ -949,6 +953,7 @@ def open_case(source, **options):
             warnings.simplefilter("ignore", category=RuntimeWarning)
             data = normalise(source, **norm)
         path_label, checksum, lazy = "<in-memory>", None, False
+        stat, known = None, None
     else:
         paths, path_label = _resolve_sources(source)
         auto = chunks == "auto-time"
@@ -987,7 +992,12 @@ def open_case(source, **options):
                         raise type(exc)(f"{p.name}: {exc}") from None
                     raise
         data = parts[0] if len(parts) == 1 else _combine(parts, [p.name for p in paths])
-        if len(paths) == 1:
+        stat = _stat_of(paths)
+        if known is not None and (known.get("stat") != stat or not known.get("checksum")):
+            known = None  # the files changed since (or were never checksummed): examine them again
+        if known is not None:
+            checksum = known["checksum"]
+        elif len(paths) == 1:
             checksum = file_checksum(paths[0])
         else:
             h = hashlib.sha256()
@@ -998,4 +1008,18 @@ def open_case(source, **options):
     data = _select(data, times=times)  # the region was cut in normalise
     if lazy:
         data = data.chunk({"time": 1})
-    return Case(data, source=path_label, name=name, checksum=checksum, f0=f0)
+    case = Case(data, source=path_label, name=name, checksum=checksum, f0=f0, known=known)
+    case._source_stat = stat
+    return case
+
+
+def _stat_of(paths):
+    """(name, size, modification time in ns) of every file of a case, to tell that the files are
+    the ones another process opened (for ``known``)."""
+    out = []
+    for p in sorted(Path(q) for q in paths):
+        files = sorted(q for q in p.rglob("*") if q.is_file()) if p.is_dir() else [p]
+        for f in files:
+            st = f.stat()
+            out.append((str(f), st.st_size, st.st_mtime_ns))
+    return out
