@@ -195,3 +195,27 @@ def test_briefing_of_the_sample_case(sample_case_path, tmp_path):
     assert "Invented case" in pages[0] and case.name in pages[0]
     assert "across the low" in pages[3]
     assert "sum of pieces" in pages[4]
+
+
+def test_a_long_attribution_page_keeps_its_text_above_the_caution_band(invented_case):
+    # eight pieces: a table of 11 rows and a summary of 11 sentences on one page; the text is
+    # made smaller as needed rather than running under the caution band at the foot of the
+    # page, and the first column is wide enough for the longest piece name
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    st = _state(invented_case)
+    for i in range(6):
+        st.add_piece(name=f"band {i} of the upper flow", kind="interior",
+                     polygon=[(-20 + 5 * i, 40), (-15 + 5 * i, 40), (-15 + 5 * i, 58), (-20 + 5 * i, 58)],
+                     layer=(900, 150), sign=1)
+    fig, sentences = brief._table_page(invented_case, st)
+    assert len(sentences) >= 10
+    renderer = FigureCanvasAgg(fig).get_renderer()
+    band = next(t for t in fig.texts if CAUTION in t.get_text())
+    band_top = band.get_bbox_patch().get_window_extent(renderer).y1
+    lowest = min(t.get_window_extent(renderer).y0 for t in fig.texts if t is not band and t.get_text())
+    assert lowest > band_top
+    table = next(a for a in fig.axes if a.tables).tables[0]
+    for (r, c), cell in table.get_celld().items():
+        if c == 0:
+            assert cell.get_text().get_window_extent(renderer).width < cell.get_window_extent(renderer).width

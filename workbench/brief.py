@@ -238,6 +238,37 @@ def _text_page(fig, y, text, size=10, weight="normal", width=None, color="black"
 
 _write = _text_page
 
+#: lowest figure height text may reach above the caution band at the foot of every page
+_TEXT_FLOOR = 0.07
+
+
+def _text_height(fig, text, size, x=0.06):
+    """Height (figure fraction) :func:`_text_page` takes for ``text`` at ``size``."""
+    width = int((1.0 - 2 * x) * fig.get_figwidth() * 72.0 / (0.56 * size))
+    n = sum(len(textwrap.wrap(para, width=width) or [""]) for para in str(text).split("\n"))
+    return n * size * 1.45 / 72.0 / fig.get_figheight()
+
+
+def _write_fitting(fig, y, blocks, floor=_TEXT_FLOOR):
+    """Write ``blocks`` [(text, size, kwargs), ...] from height y down, their font sizes scaled
+    by one factor (1 down to 0.6) so that the last line stays above ``floor`` (the caution
+    band); return the next free y."""
+    factor = 1.0
+    while factor > 0.6 and y - sum(_text_height(fig, t, s * factor, kw.get("x", 0.06)) + kw.get("gap", 0.0)
+                                   for t, s, kw in blocks) < floor:
+        factor -= 0.05
+    for text, size, kw in blocks:
+        kw = dict(kw)
+        y -= kw.pop("gap", 0.0)
+        y = _text_page(fig, y, text, size=size * factor, **kw)
+    return y
+
+
+def _first_column_widths(labels, ncols, share_min=0.14, per_char=0.0095):
+    """Column widths (fractions of the table) giving the first column room for its longest label."""
+    first = min(0.3, max(share_min, per_char * max(len(str(t)) for t in labels) + 0.02))
+    return [first] + [(1.0 - first) / (ncols - 1)] * (ncols - 1)
+
 
 def _caution_band(fig, invented):
     from workbench.views.static import _caution
@@ -472,7 +503,8 @@ def _table_page(case, state, balance="qg", floor=False):
     ax = fig.add_axes([0.05, y - 0.02 - h, 0.9, h])
     ax.set_axis_off()
     tab = ax.table(cellText=rows, colLabels=cols, loc="upper center", cellLoc="center",
-                   colLoc="center", bbox=[0, 0, 1, 1])
+                   colLoc="center", bbox=[0, 0, 1, 1],
+                   colWidths=_first_column_widths([r[0] for r in rows], len(cols)))
     tab.auto_set_font_size(False)
     tab.set_fontsize(9)
     for (r, c), cell in tab.get_celld().items():
@@ -484,8 +516,6 @@ def _table_page(case, state, balance="qg", floor=False):
             cell.set_text_props(fontweight="bold")
     y = y - 0.05 - h
     sentences = piece_summaries(table, target)
-    y = _text_page(fig, y, "Summary", size=12, weight="bold")
-    y = _text_page(fig, y, "\n".join("- " + s for s in sentences), size=10.5)
     if balance == "nonlinear":
         how = ("Shares are of the nonlinear-balance height anomaly of the full inversion at the target; "
                "each piece is linearised about the full balanced state and the 'nonlinear remainder' "
@@ -493,8 +523,10 @@ def _table_page(case, state, balance="qg", floor=False):
     else:
         how = ("Shares are of the balanced (QG) height anomaly of the full inversion at the "
                "target; pieces add up exactly because QG inversion is linear.")
-    _text_page(fig, y - 0.01, how + " Wind speeds do not add (each row is the speed of its own wind).",
-               size=8.5, color="#444444")
+    _write_fitting(fig, y, [("Summary", 12, dict(weight="bold")),
+                            ("\n".join("- " + s for s in sentences), 10.5, {}),
+                            (how + " Wind speeds do not add (each row is the speed of its own wind).", 8.5,
+                             dict(color="#444444", gap=0.01))])
     _caution_band(fig, inv)
     return fig, sentences
 
@@ -534,15 +566,16 @@ def _tendency_page(case, state):
     ax = fig.add_axes([0.03, y - 0.02 - h, 0.94, h])
     ax.set_axis_off()
     tab = ax.table(cellText=rows, colLabels=cols, loc="upper center", cellLoc="center", colLoc="center",
-                   bbox=[0, 0, 1, 1])
+                   bbox=[0, 0, 1, 1], colWidths=_first_column_widths([r[0] for r in rows] + [cols[0]], len(cols),
+                                                                     per_char=0.0075))
     tab.auto_set_font_size(False)
     tab.set_fontsize(7.5)
     for (r, c), cell in tab.get_celld().items():
         if r == 0 or c == 0:
             cell.set_text_props(fontweight="bold")
             cell.set_facecolor("#e8eef6")
-    y = _text_page(fig, y - 0.05 - h, "Summary", size=12, weight="bold")
-    _text_page(fig, y, "\n".join("- " + s for s in ex.summary), size=10.5)
+    _write_fitting(fig, y - 0.05 - h, [("Summary", 12, dict(weight="bold")),
+                                       ("\n".join("- " + s for s in ex.summary), 10.5, {})])
     _caution_band(fig, inv)
     return fig
 
