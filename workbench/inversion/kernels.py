@@ -80,29 +80,14 @@ def _jac_loop(X, Y, ky, wx, wy, ws, cE, cS, cspx, cspy, cPpx, cPpy, c_lap, c_d2,
 
 
 def _level_tables(J):
-    """Per-level index and weight tables of the vertical stencils: ``ky`` (nz, 5) the three
-    levels of d/dpi (one-sided at the ends) and k-1, k+1 clipped to the levels; ``wx``, ``wy``
-    (nz, 3) the d/dpi weights of X (0 on the end levels) and of Y; ``ws`` (nz, 3) the weights
-    of the finite-volume Phi_pipi on (k-1, k, k+1)."""
-    g = J.g
-    nz = g.nz
-    D = np.gradient(np.eye(nz), g.pi, axis=0, edge_order=2)
-    rd = 1.0 / g.dpi
-    ky = np.empty((nz, 5), np.int64)
-    wx, wy, ws = np.zeros((nz, 3)), np.zeros((nz, 3)), np.zeros((nz, 3))
-    for k in range(nz):
-        lv = (0, 1, 2) if k == 0 else (nz - 3, nz - 2, nz - 1) if k == nz - 1 else (k - 1, k, k + 1)
-        ky[k] = (*lv, max(k - 1, 0), min(k + 1, nz - 1))
-        wy[k] = D[k, list(lv)]
-        if 0 < k < nz - 1:
-            wx[k] = D[k, k - 1:k + 2]
-            ws[k] = (rd[k - 1], -(rd[k] + rd[k - 1]), rd[k])
-        elif k == 0:
-            ws[k] = (0.0, -rd[0], rd[0])
-        else:
-            ws[k] = (rd[k - 1], -rd[k - 1], 0.0)
-        ws[k] /= g.hs[k]
-    return ky, wx.astype(J.dtype), wy.astype(J.dtype), ws.astype(J.dtype)
+    """The per-level tables of :func:`_grid_tables` the product needs, in ``J``'s dtype: ``ky``
+    (nz, 5) the three levels of d/dpi (one-sided at the ends) and k-1, k+1 clipped to the levels;
+    ``wx``, ``wy`` (nz, 3) the d/dpi weights of X (0 on the end levels, where the residual's take
+    -theta instead) and of Y; ``ws`` (nz, 3) the weights of the finite-volume Phi_pipi on
+    (k-1, k, k+1) (without the boundary-theta terms: increments do not perturb theta)."""
+    lv, wp, wq, wf = _grid_tables(J.g)[:4]
+    cast = lambda a: np.ascontiguousarray(a, dtype=J.dtype)  # noqa: E731
+    return lv, cast(wp[:, :3]), cast(wq), cast(wf[:, :3])
 
 
 def padded(g, x, out):
@@ -243,7 +228,8 @@ JACOBIAN_COEFFICIENTS = ("cE", "cS", "cspx", "cPpx", "cspy", "cPpy", "c_lap", "c
 
 
 def _grid_tables(g):
-    """Per-level and per-row weights of the residual's stencils (cached on the grid)."""
+    """Per-level and per-row weights of the residual's stencils (cached on the grid; the
+    Jacobian product takes its level tables from these, :func:`_level_tables`)."""
     t = g.__dict__.get("_kernel_tables")
     if t is not None:
         return t
