@@ -158,11 +158,13 @@ class Case:
     REFERENCE_KINDS = REFERENCE_KINDS
 
     def __init__(self, data: xr.Dataset, *, source="<in-memory>", name=None, checksum=None, f0=None,
-                 known=None):
+                 known=None, source_stat=None):
         """``known``: :meth:`open_state` of the same file opened elsewhere (a batch's client):
-        its missing-value census and notes are taken instead of examining every time again."""
+        its missing-value census and notes are taken instead of examining every time again.
+        ``source_stat``: the files' (name, size, modification time), kept for :meth:`open_state`."""
         self.data = data
         self.source = source
+        self._source_stat = source_stat
         self.name = name or data.attrs.get("case_name") or data.attrs.get("title") or (
             source.rsplit("/", 1)[-1] if source != "<in-memory>" else "in-memory case")
         self.checksum = checksum
@@ -193,7 +195,7 @@ class Case:
         census, which reads every time of the file, and the checksum."""
         return dict(checksum=self.checksum, notes=list(self.notes), note_slots=dict(self._note_slots),
                     census=dict(self._census), census_complete=self._census_complete,
-                    stat=getattr(self, "_source_stat", None))
+                    stat=self._source_stat)
 
     def add_note(self, text: str) -> None:
         """Record one sentence about how the data were handled (shown in the case summary)."""

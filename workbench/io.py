@@ -122,12 +122,17 @@ def detect_format(path) -> str:
         "PV Workbench reads pressure-level analyses in those formats only.")
 
 
+def _files_of(path):
+    """The file itself, or every file of a folder (a Zarr store) in sorted order."""
+    p = Path(path)
+    return sorted(q for q in p.rglob("*") if q.is_file()) if p.is_dir() else [p]
+
+
 def file_checksum(path) -> str:
     """SHA-256 of a file's bytes (of every file, in sorted order, for a Zarr folder)."""
     h = hashlib.sha256()
     p = Path(path)
-    files = sorted(q for q in p.rglob("*") if q.is_file()) if p.is_dir() else [p]
-    for f in files:
+    for f in _files_of(p):
         if p.is_dir():
             h.update(str(f.relative_to(p)).encode())
         with open(f, "rb") as fh:
@@ -1008,9 +1013,8 @@ def open_case(source, **options):
     data = _select(data, times=times)  # the region was cut in normalise
     if lazy:
         data = data.chunk({"time": 1})
-    case = Case(data, source=path_label, name=name, checksum=checksum, f0=f0, known=known)
-    case._source_stat = stat
-    return case
+    return Case(data, source=path_label, name=name, checksum=checksum, f0=f0, known=known,
+                source_stat=stat)
 
 
 def _stat_of(paths):
@@ -1018,8 +1022,7 @@ def _stat_of(paths):
     the ones another process opened (for ``known``)."""
     out = []
     for p in sorted(Path(q) for q in paths):
-        files = sorted(q for q in p.rglob("*") if q.is_file()) if p.is_dir() else [p]
-        for f in files:
+        for f in _files_of(p):
             st = f.stat()
             out.append((str(f), st.st_size, st.st_mtime_ns))
     return out
