@@ -221,14 +221,21 @@ def _default_target(state):
         "height anomaly of the full inversion at the overlay level.")
 
 
-def _text_page(fig, y, text, size=10, weight="normal", width=None, color="black", x=0.06, plain=False):
-    """Write wrapped text at height y (figure fraction); return the next free y. ``plain``: the
-    text is shown as it is (no mathtext, no TeX), for the user's own texts."""
-    if width is None:  # characters per line that fit the page at this font size
+def _wrapped(fig, text, size, x=0.06, width=None):
+    """``text`` wrapped into the lines :func:`_text_page` writes (``width``: characters per line,
+    default what fits the page between the margins ``x`` at this font size)."""
+    if width is None:
         width = int((1.0 - 2 * x) * fig.get_figwidth() * 72.0 / (0.56 * size))
     lines = []
     for para in str(text).split("\n"):
         lines.extend(textwrap.wrap(para, width=width) or [""])
+    return lines
+
+
+def _text_page(fig, y, text, size=10, weight="normal", width=None, color="black", x=0.06, plain=False):
+    """Write wrapped text at height y (figure fraction); return the next free y. ``plain``: the
+    text is shown as it is (no mathtext, no TeX), for the user's own texts."""
+    lines = _wrapped(fig, text, size, x, width)
     extra = dict(usetex=False, parse_math=False) if plain else {}
     for line in lines:
         fig.text(x, y, line, fontsize=size, fontweight=weight, va="top", ha="left", color=color, **extra)
@@ -244,9 +251,7 @@ _TEXT_FLOOR = 0.07
 
 def _text_height(fig, text, size, x=0.06):
     """Height (figure fraction) :func:`_text_page` takes for ``text`` at ``size``."""
-    width = int((1.0 - 2 * x) * fig.get_figwidth() * 72.0 / (0.56 * size))
-    n = sum(len(textwrap.wrap(para, width=width) or [""]) for para in str(text).split("\n"))
-    return n * size * 1.45 / 72.0 / fig.get_figheight()
+    return len(_wrapped(fig, text, size, x)) * size * 1.45 / 72.0 / fig.get_figheight()
 
 
 def _write_fitting(fig, y, blocks, floor=_TEXT_FLOOR):
