@@ -190,6 +190,8 @@ def print_balance_check(case, time, member=None, reference=None, floor=False):
                      f"{solver.get('n_eta_floored', 0)} point(s)")
         print(f"nonlinear solve: {solver.get('newton_iterations')} Newton steps, {solver.get('gmres_iterations')} "
               f"GMRES iterations, relative residual {solver['residual_history'][-1]:.1e}{extra}")
+    if bq.attrs.get("solver_note"):
+        print(bq.attrs["solver_note"])
     print()
     return bq
 

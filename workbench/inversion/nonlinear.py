@@ -1350,8 +1350,9 @@ def solve_tangent(grid, state, forcing, *, eta_floor=None, rtol=1e-10, P=None):
         x, it["n"], rel = _gmres_right(matvec, precond, rhs, rtol, maxiter=400, restart=60)
     if not rel <= rtol:
         raise DomainError(f"nonlinear balance: the tangent-linear piece solve did not reach rtol {rtol:g} "
-                          f"in {it['n']} GMRES iterations; the full balanced state may be near the limit of "
-                          "ellipticity (try floor=True).")
+                          f"in {it['n']} GMRES iterations (reached {rel:.1e}); the full balanced state may be "
+                          "near the limit of ellipticity " + ("(try floor=True)." if eta_floor is None else
+                                                             "even with the floor; use balance='qg' here."))
     a, b = split(x)
     dPhi, dpsi = bP.copy(), bS.copy()
     dPhi[..., 1:-1, g.ls] = a
@@ -1497,14 +1498,20 @@ def nonlinear_fields(grid: BalanceGrid, phi, psi, coords, bottom_theta=None, top
 
 
 def _case_states(case, ti, mi, reference):
-    """Analysed and reference states of a case time on the inversion stencil."""
+    """Analysed and reference states of a case time on the inversion stencil.
+
+    The boundary theta are those of the complete columns (terrain rule: extrapolated below the
+    ground) on the lowest and the highest level. Unlike QG, whose stability is the reference
+    sigma(p), this operator uses each node's own ``Phi_pipi``; the ground's theta carried down
+    to the flat lower boundary under high ground (as the QG anomaly does) would put a boundary
+    theta tens of kelvin warmer than the extrapolated level just above it there and make the
+    lowest layer statically unstable (on a 3.7 km mountain over a tenth of the domain the
+    level-mean stability turned negative)."""
     from workbench import physics
-    from workbench.case import _ground_value
 
     ds = case.at(ti, mi)
     case._refuse_gaps(ti, mi, "The nonlinear inversion")
     physics.check_qg_domain(case.data["latitude"].values)
-    bg = case.missing_info(ti, mi)["below_ground"]
     g = _grid_of_case(case)
     ref = case.reference(reference)
 
@@ -1512,7 +1519,7 @@ def _case_states(case, ti, mi, reference):
         fields = fields.transpose(..., "pressure", "latitude", "longitude")
         Phi = np.asarray(fields["geopotential"].values, float)
         theta = physics.potential_temperature(fields["temperature"])
-        tb = np.asarray(_ground_value(theta, bg).values, float)
+        tb = np.asarray(theta.isel(pressure=0).values, float)
         tt = np.asarray(theta.isel(pressure=-1).values, float)
         psi = streamfunction(g, fields["u"].values, fields["v"].values)
         return dict(Phi=Phi, psi=psi, tb=tb, tt=tt, q=ertel_pv_nb(g, Phi, psi, tb, tt),
@@ -1552,27 +1559,45 @@ def _reference_key(case, ti, mi, reference):
     return ("balsolve-ref", _ref_key(case.resolve_reference(reference)), where)
 
 
+#: A floored solve that stalls (the floor makes the system non-smooth: Newton steps stop
+#: gaining) is accepted when its relative residual is at most this; the result then carries a
+#: ``solver_note`` saying so. Above it, or without floored points, a solve that does not reach
+#: its tolerance is refused.
+FLOORED_ACCEPT = 1e-2
+
+
 def _require_converged(res, what):
-    if not res.converged and res.floored is not None and np.any(res.floored[-1] > 0):
-        h = res.residual_history
+    """None when ``res`` reached its tolerance; a note (str) when a floored solve stalled at a
+    relative residual of at most :data:`FLOORED_ACCEPT` (accepted); DomainError otherwise."""
+    if res.converged:
+        return None
+    h = res.residual_history
+    floored = bool(res.n_pv_floored or res.n_eta_floored or
+                   (res.floored is not None and np.any(res.floored > 0)))
+    if floored and res.floored is not None and np.any(res.floored[-1] > 0):
         n = int(np.sum(res.floored[-1] > 0))
         raise DomainError(
             f"nonlinear balance: the {what} stalled at relative residual {h[-1]:.2e} because {n} floored "
             "point(s) lie on the model top level, where theta is imposed and the floored PV can only be "
             "met by flooring the absolute vorticity too (a non-smooth system); cut the top level off "
             "(fewer levels) or use balance='qg'.")
-    if not res.converged:
-        h = res.residual_history
-        if res.n_pv_floored or res.n_eta_floored:
-            raise DomainError(
-                f"nonlinear balance: the {what} did not converge (relative residual {h[-1]:.2e} after "
-                f"{res.newton_iterations} Newton steps, tolerance {res.tol:g}) with {res.n_pv_floored} PV "
-                f"and {res.n_eta_floored} absolute-vorticity point(s) floored: the floored system is not "
-                "smooth there and the iteration stalled; use balance='qg' for this time.")
+    if floored and h[-1] <= FLOORED_ACCEPT:
+        return (f"nonlinear balance ({what}): with {res.n_pv_floored} PV and {res.n_eta_floored} "
+                f"absolute-vorticity point(s) floored the iteration stalled at relative residual "
+                f"{h[-1]:.1e} after {res.newton_iterations} Newton steps (the floored system is not "
+                f"smooth; tolerance {res.tol:g}); accepted as it is below {FLOORED_ACCEPT:g}, but the "
+                "balanced fields next to the floored points are less exact than elsewhere.")
+    if floored:
         raise DomainError(
             f"nonlinear balance: the {what} did not converge (relative residual {h[-1]:.2e} after "
-            f"{res.newton_iterations} Newton steps, tolerance {res.tol:g}); the state may be close to "
-            "the limit of ellipticity (try floor=True) or use balance='qg'.")
+            f"{res.newton_iterations} Newton steps, tolerance {res.tol:g}, accepted with floored points "
+            f"up to {FLOORED_ACCEPT:g}) with {res.n_pv_floored} PV and {res.n_eta_floored} "
+            "absolute-vorticity point(s) floored: the floored system is not smooth there and the "
+            "iteration stalled; use balance='qg' for this time.")
+    raise DomainError(
+        f"nonlinear balance: the {what} did not converge (relative residual {h[-1]:.2e} after "
+        f"{res.newton_iterations} Newton steps, tolerance {res.tol:g}); the state may be close to "
+        "the limit of ellipticity (try floor=True) or use balance='qg'.")
 
 
 def _info(res):
@@ -1590,8 +1615,11 @@ def case_balanced_state(case, time=None, member=None, *, tol=DEFAULT_TOL, floor=
     ti, mi = case._key(time, member)
     g, st, _ = _case_states(case, ti, mi, None)
     res = _solution(case, ("balsolve", ti, mi), g, st, tol, floor)
-    _require_converged(res, "full inversion")
-    return _full_dataset(case, g, res.Phi, res.psi, st["tb"], st["tt"], res, "nonlinear")
+    note = _require_converged(res, "full inversion")
+    ds = _full_dataset(case, g, res.Phi, res.psi, st["tb"], st["tt"], res, "nonlinear")
+    if note:
+        ds.attrs["solver_note"] = note
+    return ds
 
 
 def _full_dataset(case, g, Phi, psi, tb, tt, res, balance):
@@ -1635,10 +1663,17 @@ def invert_nonlinear_pieces(case, pieces, time=None, member=None, reference=None
     part = (lambda a, b, what: None if progress is None else  # progress(fraction, text) over the whole job
             (lambda f, t: progress(a + (b - a) * f, f"{what}: {t}")))
     full = _solution(case, ("balsolve", ti, mi), g, st, tol, floor, progress=part(0.0, 0.4, "full inversion"))
-    _require_converged(full, "full inversion")
+    notes = [_require_converged(full, "full inversion")]
     refr = _solution(case, _reference_key(case, ti, mi, reference), g, rf, tol, floor,
                      progress=part(0.4, 0.8, "reference state"))
-    _require_converged(refr, "inversion of the reference state")
+    notes.append(_require_converged(refr, "inversion of the reference state"))
+    if any(notes):
+        # the pieces are solves of the linearised system at the full state; at a stalled floored
+        # state that system is too ill-conditioned for them (GMRES stops near 1e-2..1e-3)
+        raise DomainError(
+            " ".join(n for n in notes if n) + " The pieces need the linearised system at a converged "
+            "state, which this time does not have: the balanced state and the balance check are "
+            "available (Case.balanced_state, --balance-check); use balance='qg' for the pieces here.")
     anomaly = case.anomaly(ti, mi, reference).copy()
     dq = st["q"] - rf["q"]
     anomaly["qgpv_anomaly"] = anomaly["qgpv_anomaly"].copy(data=dq)
@@ -1735,6 +1770,8 @@ def balance_quality(case, time=None, member=None, reference=None, *, tol=DEFAULT
     out = out.assign_coords(latitude=case.data["latitude"], longitude=case.data["longitude"])
     out.attrs.update(time=str(case.times[ti])[:19], solver=nl.attrs.get("solver", ""),
                      weighting="cos(latitude), interior nodes above the ground")
+    if nl.attrs.get("solver_note"):
+        out.attrs["solver_note"] = nl.attrs["solver_note"]
     return out
 
 

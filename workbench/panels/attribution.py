@@ -243,7 +243,8 @@ class AttributionPanel(StatePanel):
             self.quality_title.object = (
                 f"**Balance quality** at {ds.attrs.get('time', '')[:16].replace('T', ' ')} UTC: "
                 "RMS of balanced − analysed wind (m/s), weighted by cos(latitude), interior "
-                "points above the ground")
+                "points above the ground" +
+                (f"\n\n*{escape(ds.attrs['solver_note'])}*" if ds.attrs.get("solver_note") else ""))
             self.quality_title.visible = self.quality_table.visible = True
             self.quality_map.object = holder["png"]
             self.quality_map.visible = True

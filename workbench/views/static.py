@@ -25,6 +25,7 @@ coastlines and says so.
 from __future__ import annotations
 
 import dataclasses
+import json
 import math
 import os
 import warnings
@@ -859,6 +860,9 @@ def balance_map_figure(quality: xr.Dataset, level_hpa: float = 500.0, case=None,
     time = quality.attrs.get("time")
     rms = (f"RMS balanced - analysed wind: QG {float(quality['rms_difference_qg'][k]):.1f}, "
            f"nonlinear {float(quality['rms_difference_nonlinear'][k]):.1f} m/s")
+    if quality.attrs.get("solver_note"):  # a floored solve accepted where it stalled
+        res = json.loads(quality.attrs.get("solver") or "{}").get("residual_history") or [float("nan")]
+        rms += f" (floored solve stalled at {res[-1]:.1e}, accepted)"
     md = MapData(field=da, field_name="balance_difference", surface=f"at {level:g} hPa",
                  native_crs=_native_crs(case), extra_title=rms, **_case_meta(case, time, member))
     return draw_map(md, settings, page_size=page_size)
