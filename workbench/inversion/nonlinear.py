@@ -1670,10 +1670,13 @@ def invert_nonlinear_pieces(case, pieces, time=None, member=None, reference=None
     if any(notes):
         # the pieces are solves of the linearised system at the full state; at a stalled floored
         # state that system is too ill-conditioned for them (GMRES stops near 1e-2..1e-3)
+        r = full if notes[0] else refr
         raise DomainError(
-            " ".join(n for n in notes if n) + " The pieces need the linearised system at a converged "
-            "state, which this time does not have: the balanced state and the balance check are "
-            "available (Case.balanced_state, --balance-check); use balance='qg' for the pieces here.")
+            f"nonlinear balance: the floored {'full inversion' if notes[0] else 'inversion of the reference state'} "
+            f"stalled at relative residual {r.residual_history[-1]:.1e} ({r.n_pv_floored} PV and "
+            f"{r.n_eta_floored} absolute-vorticity point(s) floored). That is accepted for the balanced "
+            "state and the balance check (Case.balanced_state, pvwb invert --balance-check), but the "
+            "pieces need the linearised system at a converged state; use balance='qg' for the pieces here.")
     anomaly = case.anomaly(ti, mi, reference).copy()
     dq = st["q"] - rf["q"]
     anomaly["qgpv_anomaly"] = anomaly["qgpv_anomaly"].copy(data=dq)
