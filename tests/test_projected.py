@@ -373,3 +373,72 @@ def test_region_across_the_seam_of_a_global_grid(tmp_path):
     got = case.data["temperature"].isel(time=1).sel(pressure=50000.0).values
     want = ds["t"].isel(time=1).sel(level=500.0, lat=slice(30, 60)).sel(lon=np.mod(lon_c, 360.0)).values
     np.testing.assert_array_equal(got, want)
+
+
+def test_regridding_keeps_derivatives_of_smooth_fields():
+    """The physics differentiates the regridded fields. On a smooth closed-form field over a
+    50 km Lambert grid regridded to 0.5 degrees, the centred d/dlon of the result is compared
+    with the same difference of the exact field: a piecewise-linear interpolant has
+    piecewise-constant derivatives (error O(h), stripes where the grids' spacings beat), a
+    cubic spline's derivative error is O(h^3) (de Boor 1978, A Practical Guide to Splines,
+    ch. IV-V; from memory). Fields not named cubic (surface fields) stay linear."""
+    crs, x, y, lat2d, lon2d = ff.plane_grid("lambert", 48, 40, 50000.0)
+    L = 900e3  # 18 native grid lengths: a well-resolved wave
+
+    def f(X, Y):
+        return np.sin(2 * np.pi * X / L) * np.cos(1.6 * np.pi * Y / L)
+
+    XX, YY = np.meshgrid(x, y)
+    ds = xr.Dataset({"level": (("y", "x"), f(XX, YY)), "surface": (("y", "x"), f(XX, YY))},
+                    coords={"x": x, "y": y})
+    lat, lon, step = grids.latlon_target(lat2d, lon2d, crs, x, y)
+    to_plane = pyproj.Transformer.from_crs("EPSG:4326", crs, always_xy=True)
+    LON, LAT = np.meshgrid(lon, lat)
+    exact = f(*to_plane.transform(LON, LAT))
+    dref = (exact[:, 2:] - exact[:, :-2]) / (2 * step)
+
+    def derr(a):
+        d = (a[:, 2:] - a[:, :-2]) / (2 * step)
+        return np.sqrt(np.mean((d - dref) ** 2)) / np.sqrt(np.mean(dref ** 2))
+
+    lin = grids.regrid_to_latlon(ds, crs, lat, lon, method="linear")
+    new = grids.regrid_to_latlon(ds, crs, lat, lon, cubic=["level"])
+    e_lin, e_cub = derr(lin["level"].values), derr(new["level"].values)
+    assert e_lin > 0.01  # the stripes this guards against
+    assert e_cub < 0.05 * e_lin and e_cub < 1e-3
+    err_cub, err_lin = np.abs(new["level"].values - exact), np.abs(lin["level"].values - exact)
+    assert err_cub[2:-2, 2:-2].max() < 2e-4 and err_cub.max() < 0.5 * err_lin.max()
+    np.testing.assert_array_equal(new["surface"].values, lin["surface"].values)
+    # the spline is SciPy's interpolating cubic: at the native points themselves it returns the
+    # data (interpolation property), and it agrees with SciPy's RegularGridInterpolator "cubic"
+    # (a different construction of a cubic spline interpolant) to the spline's accuracy
+    from scipy.interpolate import RegularGridInterpolator
+
+    iy, ix = np.meshgrid(np.arange(5, 30, 3.0), np.arange(5, 40, 3.0), indexing="ij")
+    np.testing.assert_allclose(grids._spline_at(ds["level"].values, iy, ix),
+                               ds["level"].values[5:30:3, 5:40:3], atol=1e-12)
+    to = pyproj.Transformer.from_crs("EPSG:4326", crs, always_xy=True)
+    PX, PY = to.transform(LON, LAT)
+    rgi = RegularGridInterpolator((y, x), ds["level"].values, method="cubic")(
+        np.stack([PY.ravel(), PX.ravel()], -1)).reshape(LON.shape)
+    assert np.abs(new["level"].values - rgi)[2:-2, 2:-2].max() < 2e-4
+
+
+def test_regridding_a_step_does_not_overshoot_and_keeps_missing_values():
+    """A plateau's edge in surface pressure (a step) regridded: no value outside the data's range
+    (surface fields are linear; a cubic spline rings there), and a level field with a bitmap of missing
+    values keeps them missing by the linear rule (a target point next to one is missing) while
+    the rest is finite."""
+    crs, x, y, lat2d, lon2d = ff.plane_grid("lambert", 48, 40, 50000.0)
+    XX, YY = np.meshgrid(x, y)
+    plateau = (XX - XX.mean()) ** 2 + (YY - YY.mean()) ** 2 < 4e11
+    level = np.where(plateau, np.nan, 280.0 + 1e-5 * XX)
+    ds = xr.Dataset({"sp": (("y", "x"), np.where(plateau, 64000.0, 101000.0)),
+                     "t": (("y", "x"), level)}, coords={"x": x, "y": y})
+    lat, lon, _ = grids.latlon_target(lat2d, lon2d, crs, x, y)
+    out = grids.regrid_to_latlon(ds, crs, lat, lon, cubic=["t"])
+    assert float(out["sp"].min()) >= 64000.0 - 1e-6 and float(out["sp"].max()) <= 101000.0 + 1e-6
+    lin = grids.regrid_to_latlon(ds, crs, lat, lon, method="linear")
+    miss = np.isnan(out["t"].values)
+    assert miss.any() and (miss == np.isnan(lin["t"].values)).mean() > 0.995
+    np.testing.assert_allclose(out["t"].values[~miss], lin["t"].values[~miss], atol=0.05)

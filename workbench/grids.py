@@ -12,8 +12,9 @@ computes on a regular latitude-longitude grid, so such data are
    flags; CF standard names ``x_wind`` / ``y_wind``). The local angle between the grid's x axis
    and east is measured with pyproj on the plane itself (finite step along x), so it holds for
    every projection PROJ knows;
-4. interpolated (linear, by xarray on the projection plane) to the latitude-longitude grid
-   chosen by :func:`latlon_target`.
+4. interpolated on the projection plane to the latitude-longitude grid chosen by
+   :func:`latlon_target`: cubic splines for the pressure-level fields (SciPy), linear for the
+   surface fields (xarray); missing values kept by the linear rule (:func:`regrid_to_latlon`).
 
 Resolution rule (:func:`latlon_target`): the same angular step in latitude and longitude, the
 native grid length divided by 111.2 km per degree and rounded to the nearest of
@@ -278,18 +279,124 @@ def latlon_target(lat2d, lon2d, crs, x, y, *, grid_step=None, region=None):
     return np.round(lat, 10), np.round(lon, 10), step
 
 
-def regrid_to_latlon(ds, crs, lat, lon, *, xdim="x", ydim="y"):
-    """Linear interpolation of every variable of ``ds`` (on 1-D plane axes ``ydim``, ``xdim``)
-    to the latitude-longitude grid ``lat`` x ``lon`` (xarray's interp on the projection plane).
-    Missing values (below ground) stay missing; a target point next to one becomes missing."""
+def _nearest_fill(a):
+    """``a`` (..., ny, nx) with each NaN replaced by the nearest finite value of its 2-D slice
+    (scipy.ndimage's Euclidean distance transform); all-NaN slices stay NaN."""
+    from scipy import ndimage
+
+    a = np.array(a, dtype=float, copy=True)
+    flat = a.reshape((-1,) + a.shape[-2:])
+    for k in range(flat.shape[0]):
+        bad = ~np.isfinite(flat[k])
+        if bad.any() and not bad.all():
+            idx = ndimage.distance_transform_edt(bad, return_distances=False, return_indices=True)
+            flat[k] = flat[k][tuple(idx)]
+    return a
+
+
+def _dilate(a):
+    """``a`` (..., ny, nx) boolean, grown by one point in each horizontal direction."""
+    from scipy import ndimage
+
+    a = np.asarray(a, bool)
+    st = np.zeros((3,) * a.ndim, bool)
+    st[(1,) * (a.ndim - 2)] = True  # only the last two axes
+    return ndimage.binary_dilation(a, structure=st)
+
+
+def _spline_at(a, iy, ix):
+    """``a`` (..., ny, nx) evaluated at fractional indices (``iy``, ``ix``) (2-D arrays) by an
+    interpolating cubic B-spline (scipy.ndimage: ``spline_filter`` + ``map_coordinates``)."""
+    from scipy import ndimage
+
+    a = np.asarray(a, float)
+    lead = a.shape[:-2]
+    flat = a.reshape((-1,) + a.shape[-2:])
+    out = np.empty((flat.shape[0],) + iy.shape)
+    pad = min(_SPLINE_PAD, a.shape[-2] - 1, a.shape[-1] - 1)
+    coords = np.array([iy + pad, ix + pad])
+    for k in range(flat.shape[0]):
+        if not np.isfinite(flat[k]).all():  # an all-missing slice
+            out[k] = np.nan
+            continue
+        # point-symmetric extension beyond the edges (value and slope continue), so the
+        # spline's end conditions do not bend the field near the domain's edges
+        ext = np.pad(flat[k], pad, mode="reflect", reflect_type="odd")
+        out[k] = ndimage.map_coordinates(ext, coords, order=3, mode="nearest", prefilter=True)
+    return out.reshape(lead + iy.shape)
+
+
+#: native points added beyond each edge before the spline fit (see :func:`_spline_at`)
+_SPLINE_PAD = 8
+
+
+def regrid_to_latlon(ds, crs, lat, lon, *, xdim="x", ydim="y", cubic=None, method=None):
+    """Interpolate every variable of ``ds`` (on regular, ascending 1-D plane axes ``ydim``,
+    ``xdim``) to the latitude-longitude grid ``lat`` x ``lon`` on the projection plane.
+
+    The variables named in ``cubic`` (the pressure-level fields, which the physics
+    differentiates) are interpolated with an interpolating cubic B-spline (scipy.ndimage's
+    ``map_coordinates``, order 3); the others (surface pressure, orography, mean-sea-level
+    pressure) linearly (xarray's interp), which never overshoots a step such as a mountain's
+    edge (a cubic spline rings there: a 640/1010 hPa plateau edge gave 575 hPa).
+    ``method="linear"`` interpolates everything linearly.
+
+    Why not linear for the level fields: a piecewise-linear interpolant has piecewise-constant
+    derivatives, which show as grid-scale stripes in vorticity, PV and geostrophic wind
+    wherever the two grids' spacings beat (a 50 km Lambert grid on 0.5 degrees: 2.3 % RMS
+    error in d/dlon of a smooth field, cubic 0.01 %; ``tests/test_projected.py``).
+
+    Missing values (below ground) stay missing by the linear rule: a target point whose
+    surrounding native cell has a missing corner is missing. The spline needs complete slices,
+    so it runs on the fields with each missing value replaced by its nearest valid neighbour;
+    within one native point of a missing value the result is the linear one, so that stand-in
+    shows nowhere (elsewhere its influence decays by a factor ~0.27 per native point)."""
     to_plane, _ = _transformers(crs)
     LON, LAT = np.meshgrid(lon, lat)
-    X, Y = to_plane.transform(LON, LAT)
-    tx = xr.DataArray(np.asarray(X), dims=("latitude", "longitude"))
-    ty = xr.DataArray(np.asarray(Y), dims=("latitude", "longitude"))
+    X, Y = (np.asarray(a, float) for a in to_plane.transform(LON, LAT))
+    tx = xr.DataArray(X, dims=("latitude", "longitude"))
+    ty = xr.DataArray(Y, dims=("latitude", "longitude"))
     if ds.chunks:
         ds = ds.chunk({xdim: -1, ydim: -1})
-    out = ds.interp({xdim: tx, ydim: ty}, method="linear", kwargs={"fill_value": np.nan})
+    where = {xdim: tx, ydim: ty}
+    cubic = set() if method == "linear" else set(cubic or ())
+    xa, ya = np.asarray(ds[xdim].values, float), np.asarray(ds[ydim].values, float)
+    if cubic and not (xa.size > 3 and ya.size > 3 and np.all(np.diff(xa) > 0) and np.all(np.diff(ya) > 0)):
+        cubic = set()  # the spline needs ascending axes of at least 4 points
+    if cubic:
+        ix = (X - xa[0]) / ((xa[-1] - xa[0]) / (xa.size - 1))
+        iy = (Y - ya[0]) / ((ya[-1] - ya[0]) / (ya.size - 1))
+    parts = []
+    for v in ds.data_vars:
+        da = ds[v]
+        lin = da.interp(where, method="linear", kwargs={"fill_value": np.nan})
+        if v not in cubic or da.dtype.kind != "f":
+            parts.append(lin.rename(v))
+            continue
+        miss = da.isnull()
+        holes = bool(miss.any())
+        if holes:
+            da = xr.apply_ufunc(_nearest_fill, da, input_core_dims=[[ydim, xdim]],
+                                output_core_dims=[[ydim, xdim]], dask="parallelized",
+                                output_dtypes=[float])
+        r = xr.apply_ufunc(_spline_at, da, input_core_dims=[[ydim, xdim]],
+                           output_core_dims=[["latitude", "longitude"]], dask="parallelized",
+                           output_dtypes=[float], kwargs=dict(iy=iy, ix=ix),
+                           dask_gufunc_kwargs=dict(output_sizes={"latitude": iy.shape[0],
+                                                                 "longitude": iy.shape[1]}))
+        r = r.transpose(*lin.dims).astype(ds[v].dtype)
+        if holes:
+            # next to the missing values the linear result (its corners are all valid there, or
+            # it is missing), so the stand-in values show nowhere
+            wide = xr.apply_ufunc(_dilate, miss, input_core_dims=[[ydim, xdim]],
+                                  output_core_dims=[[ydim, xdim]], dask="parallelized",
+                                  output_dtypes=[bool]).transpose(*miss.dims)
+            near = wide.astype("float32").interp(where, method="linear",
+                                                 kwargs={"fill_value": 1.0}) > 0
+            r = r.where(~near.transpose(*r.dims), lin)
+        parts.append(r.rename(v).assign_attrs(ds[v].attrs))
+    out = xr.merge(parts, compat="override", combine_attrs="override")
+    out.attrs = dict(ds.attrs)
     out = out.drop_vars([c for c in (xdim, ydim) if c in out.coords])
     return out.assign_coords(latitude=("latitude", np.asarray(lat, float)),
                              longitude=("longitude", np.asarray(lon, float)))

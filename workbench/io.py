@@ -488,7 +488,11 @@ def _to_latlon(ds, *, variables, region, grid_step, winds):
     dxkm = float(np.abs(np.diff(xa)).mean()) * grids._axis_scale(crs) / 1000.0
     attrs = dict(ds.attrs)
     keep_attrs = {v: dict(ds[v].attrs) for v in ds.data_vars}
-    out = grids.regrid_to_latlon(ds, crs, lat, lon, xdim=xdim, ydim=ydim)
+    # the level fields (those with every dimension of the temperature): cubic; the rest: linear
+    t = _find_var(ds, "temperature", (variables or {}).get("temperature"), set())
+    tdims = set(ds[t].dims) if t is not None else {xdim, ydim}
+    level_fields = [v for v in ds.data_vars if set(ds[v].dims) >= tdims and len(tdims) > 2]
+    out = grids.regrid_to_latlon(ds, crs, lat, lon, xdim=xdim, ydim=ydim, cubic=level_fields)
     for v, a in keep_attrs.items():
         out[v].attrs = a
     out.attrs = attrs
@@ -496,8 +500,8 @@ def _to_latlon(ds, *, variables, region, grid_step, winds):
     out["longitude"].attrs = dict(standard_name="longitude", units="degrees_east")
     notes.insert(0, f"Native grid: {name} ({how}), {len(xa)} x {len(ya)} points at {dxkm:.3g} km; computed on "
                     f"a {step:g} degree latitude-longitude grid ({lat.size} x {lon.size}, "
-                    f"{lat_range(lat[0], lat[-1])}, {lon_range(lon[0], lon[-1])}) by linear interpolation on the "
-                    "projection plane.")
+                    f"{lat_range(lat[0], lat[-1])}, {lon_range(lon[0], lon[-1])}) by interpolation on the "
+                    "projection plane (cubic for the level fields, linear for the surface fields).")
     out.attrs.update(native_crs=crs.to_wkt(), native_projection=name,
                      native_grid=f"{len(xa)} x {len(ya)}, {dxkm:.3g} km", latlon_step=step)
     _add_notes(out, notes)
