@@ -180,6 +180,9 @@ class PageChoices(param.Parameterized):
     folders the page may read from and write to. Lives at ``State.page`` so that every panel
     needs only the State."""
 
+    rebuilds = param.Integer(default=0, doc="Counts the panels rebuilt with new figures (a new "
+                                            "case or map projection); the page then drops the "
+                                            "old figures from the browser's model index.")
     map_projection = param.Selector(default="native", objects=["native", "lonlat"],
                                     doc="Draw the map in the data's own projection (when the "
                                         "case has one) or on longitude-latitude.")

@@ -75,6 +75,9 @@ class StatePanel:
         objs = self.build()
         if objs is not None:
             self.layout[:] = list(objs) if isinstance(objs, (list, tuple)) else [objs]
+            page = getattr(self.state, "page", None)
+            if page is not None and "rebuilds" in page.param:
+                page.rebuilds += 1  # the page tidies the browser's model index (KeyBindings)
 
     def build(self):
         """Return the panel's contents (a list of Panel objects) for the current case."""

@@ -38,9 +38,18 @@ class KeyBindings(JSComponent):
     (the lasso then ends with no outline and makes nothing)."""
 
     press = param.String(default="")
+    tidy = param.Integer(default=0, doc="Raised after panels were rebuilt: the browser's "
+                                        "documents recompute their model index.")
 
     _esm = """
 export function render({ model, el }) {
+  // BokehJS keeps models replaced by the server in its documents' model index until the index
+  // is recomputed: old figures (and their data) would stay in memory and be found by name
+  model.on("tidy", () => {
+    for (const doc of (window.Bokeh ? window.Bokeh.documents : [])) {
+      if (typeof doc._recompute_all_models === "function") doc._recompute_all_models();
+    }
+  });
   let count = 0;
   let down = false;
   const typing = (ev) => {
@@ -61,7 +70,13 @@ export function render({ model, el }) {
     ev.preventDefault();
     if (key === "Escape" && down && window.Bokeh) {
       for (const doc of window.Bokeh.documents) {
-        const tool = doc.get_model_by_name("pvwb-lasso");
+        let tool = null;
+        try {
+          tool = doc.get_model_by_name("pvwb-lasso");
+        } catch (e) {  // an old map's tool still indexed: recompute the index, then look again
+          if (typeof doc._recompute_all_models === "function") doc._recompute_all_models();
+          try { tool = doc.get_model_by_name("pvwb-lasso"); } catch (e2) { tool = null; }
+        }
         if (tool && tool.overlay) tool.overlay.update({xs: [], ys: []});
       }
     }
@@ -218,12 +233,16 @@ class CaseControls(StatePanel):
         self.watch(lambda ev: self._play(ev.new), ["value"], obj=self.play)
         self.watch(lambda ev: self._set_fps(ev.new), ["value"], obj=self.fps)
         self.watch(lambda ev: self.key(ev.new.split(":", 1)[-1]), ["press"], obj=self.keys)
+        self.watch(lambda *ev: self.later(self._tidy), ["rebuilds"], obj=pg)
         self.watch(lambda *ev: self._history_buttons(), ["undo_steps", "redo_steps"])
         self._history_buttons()
         return pn.Column(
             pn.Row(self.play, self.fps, pn.pane.Markdown("frames/s", margin=(12, 2, 5, 2),
                                                          styles={"font-size": "12px"})),
             pn.Row(self.undo_button, self.redo_button, self.keys), margin=0)
+
+    def _tidy(self):
+        self.keys.tidy += 1
 
     def _set_fps(self, fps):
         if fps is None:
