@@ -162,3 +162,41 @@ def test_workers_take_the_clients_census_unless_the_file_changed(small_case_path
     assert calls == [1] and fresh.notes == case.notes
     other = wb.open_case(tmp_path / "copy.nc", known=state)  # another file
     assert calls == [1, 1] and other.checksum == case.checksum  # (same bytes, checksummed again)
+
+
+def test_a_time_the_physics_refuses_leaves_empty_rows_and_the_run_goes_on(small_case_path, tmp_path,
+                                                                          capsys, monkeypatch):
+    # a DomainError at one time (as nonlinear balance gives where it is not elliptic) leaves that
+    # time's rows NaN with the reason in 'refused'; the other times are those of a plain run; a
+    # store does not mark the refused time done (a rerun tries it again); the command line lists it
+    from workbench import analysis
+    from workbench.cli import main
+    from workbench.errors import DomainError
+
+    plain = run_batch(small_case_path)
+    t1 = sorted(plain["time"].unique())[1]
+    orig = analysis.analyse
+
+    def refuse_second(case, ti, *a, **k):
+        if str(case.times[ti])[:19] == t1:
+            raise DomainError("invented refusal for the test")
+        return orig(case, ti, *a, **k)
+
+    monkeypatch.setattr(analysis, "analyse", refuse_second)
+    for store in (None, tmp_path / "run.zarr"):
+        with pytest.warns(UserWarning, match="refused by the physics"):
+            table = run_batch(small_case_path, store=store)
+        bad = table[table["time"] == t1]
+        assert (bad["refused"] == "invented refusal for the test").all()
+        assert bad["height_anomaly"].isna().all() and len(bad) == len(plain[plain["time"] == t1])
+        good = table[table["time"] != t1]
+        assert (good["refused"] == "").all()
+        pd.testing.assert_frame_equal(good.drop(columns="refused").reset_index(drop=True),
+                                      plain[plain["time"] != t1].drop(columns="refused")
+                                      .reset_index(drop=True), rtol=1e-12)
+    import zarr
+
+    assert zarr.open_group(str(tmp_path / "run.zarr"), mode="r")["done"][...].ravel().tolist() == [1, 0]
+    assert main(["batch", str(small_case_path), "--quiet"]) == 0
+    out = capsys.readouterr().out
+    assert "Refused at 1 of 2 time(s)" in out and "invented refusal for the test" in out

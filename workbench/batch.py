@@ -26,7 +26,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
+from .errors import DomainError, InputError
 
 __all__ = ["run_batch", "local_cluster", "main", "COLUMNS", "tracked_table", "TRACK_COLUMNS"]
 
@@ -164,17 +164,34 @@ def _task(*args):
 
 
 def _one(path, ti, mi, pieces, target, ref, options, store=None, balance="qg", floor=False):
+    """One (time, member)'s attribution table. A time the physics refuses (DomainError: e.g.
+    nonlinear balance not elliptic, or a floored solve that stalled) gives NaN rows with the
+    reason in the column ``refused`` instead of ending the run; the reason is also a note."""
     from workbench.analysis import analyse
     from workbench.inversion.pieces import Piece
 
     ref_name, ref_ds = ref
+    refused = None
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         case = _worker_case(path, options, ref_name, ref_ds)
         plist = None if pieces is None else [Piece.from_dict(p) for p in pieces]
-        _, table, tgt = analyse(case, ti, mi, plist, target, ref_name, balance=balance, floor=floor)
+        try:
+            _, table, tgt = analyse(case, ti, mi, plist, target, ref_name, balance=balance, floor=floor)
+        except DomainError as exc:
+            refused = str(exc)
     notes = list(dict.fromkeys(str(w.message) for w in caught))
-    if store is not None:
+    if refused is not None:
+        when = str(case.times[ti])[:16].replace("T", " ") + (
+            "" if mi is None else f", member {case.members[mi]}")
+        notes.append(f"{when}: refused by the physics, rows left empty (the table's 'refused' "
+                     "column says why)")
+        rows = _rows(pieces if pieces is not None else [])
+        if balance == "nonlinear":
+            rows.insert(rows.index("sum of pieces"), "nonlinear remainder")
+        table = pd.DataFrame(np.nan, index=pd.Index(rows, name="piece"), columns=list(COLUMNS))
+        tgt = (np.nan, np.nan, np.nan)
+    if store is not None and refused is None:  # a refused time is tried again by a rerun
         import zarr
 
         g = zarr.open_group(store, mode="r+")
@@ -186,6 +203,7 @@ def _one(path, ti, mi, pieces, target, ref, options, store=None, balance="qg", f
     table.insert(0, "member", "" if mi is None else str(case.members[mi]))
     table.insert(0, "time", str(case.times[ti])[:19])
     table["target_lon"], table["target_lat"], table["target_hpa"] = tgt
+    table["refused"] = refused or ""
     return table, notes
 
 
@@ -232,6 +250,7 @@ def _from_store(g, case, jobs):
         df.insert(0, "member", "" if mi is None else str(case.members[mi]))
         df.insert(0, "time", str(case.times[ti])[:19])
         df["target_lon"], df["target_lat"], df["target_hpa"] = (float(x) for x in target[ti, m])
+        df["refused"] = ""
         frames.append(df)
     return frames
 
@@ -261,6 +280,11 @@ def run_batch(path, *, pieces=None, times=None, members=None, target=None, refer
     remainder; its row is NaN). The table then has the columns ``follow`` (fixed / anomaly),
     ``status`` (start, fixed, tracked, split, merged, split+merged, lost, not tracked) and
     ``track_note`` on the piece rows; :func:`tracked_table` gives each piece's share over time.
+
+    A (time, member) the physics refuses (:class:`~workbench.errors.DomainError`, e.g. nonlinear
+    balance where it is not elliptic) does not end the run: its rows are NaN, the column
+    ``refused`` gives the reason ("" elsewhere), a warning names it, and a store leaves it
+    unfinished (a rerun tries it again).
     """
     import dask
 
@@ -359,7 +383,8 @@ def _run_batch(path, *, pieces, times, members, target, reference, client, optio
     for note in dict.fromkeys(n for _, notes in results.values() for n in notes):
         warnings.warn(note, stacklevel=3)
     if g is not None:
-        tables = _from_store(g, case, jobs)
+        tables = [results[j][0] if j in results and results[j][0]["refused"].iloc[0] else t
+                  for j, t in zip(jobs, _from_store(g, case, jobs))]
     else:
         tables = [results[j][0] for j in jobs]
     out = pd.concat(tables, ignore_index=True)
@@ -582,6 +607,7 @@ def main(argv=None):
     cols = ["time", "member", "piece", "height_anomaly", "wind_speed", "height_share_pct"]
     with pd.option_context("display.width", 160, "display.max_rows", 500, "display.precision", 2):
         print(table[cols].to_string(index=False))
+    _report_refused(table)
     from .export import CAUTION
 
     print(f"\n{CAUTION}")
@@ -594,6 +620,22 @@ def main(argv=None):
     if "follow" in table.columns:
         _report_tracks(table, args)
     return 0
+
+
+def _report_refused(table):
+    """Print the (time, member)s the physics refused, grouped by reason (their rows are NaN)."""
+    if "refused" not in table.columns:
+        return
+    bad = table[table["refused"] != ""].drop_duplicates(["time", "member"])
+    if bad.empty:
+        return
+    n_all = len(table.drop_duplicates(["time", "member"]))
+    print(f"\nRefused at {len(bad)} of {n_all} time(s)/member(s); their rows are empty (column "
+          "'refused' of the table says why):")
+    for reason, grp in bad.groupby("refused", sort=False):
+        whens = ", ".join(t[:16].replace("T", " ") + (f" member {m}" if m else "")
+                          for t, m in zip(grp["time"], grp["member"]))
+        print(f"  {whens}: {reason}")
 
 
 def _report_tracks(table, args):
