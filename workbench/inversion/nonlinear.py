@@ -1572,8 +1572,7 @@ def _require_converged(res, what):
     if res.converged:
         return None
     h = res.residual_history
-    floored = bool(res.n_pv_floored or res.n_eta_floored or
-                   (res.floored is not None and np.any(res.floored > 0)))
+    floored = bool(res.n_pv_floored or res.n_eta_floored)  # (the counts of ``res.floored``)
     if floored and res.floored is not None and np.any(res.floored[-1] > 0):
         n = int(np.sum(res.floored[-1] > 0))
         raise DomainError(
