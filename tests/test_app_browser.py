@@ -8,7 +8,6 @@ lasso a piece, draw a section, open a bad file. Screenshots go to tests/artifact
 from __future__ import annotations
 
 import io
-import math
 import shutil
 import time
 from pathlib import Path
@@ -21,7 +20,8 @@ pytestmark = pytest.mark.browser
 ROOT = Path(__file__).resolve().parents[1]
 ARTIFACTS = Path(__file__).parent / "artifacts"
 from workbench.testing import (CHROMIUM, CHROMIUM_ARGS as ARGS, JS_MAP_READY, JS_TO_SCREEN,  # noqa: E402
-                               choose_mouse_mode, free_port, start_server, stop_server)
+                               choose_mouse_mode, drag_on_map as _drag, free_port, ring,
+                               start_server, stop_server)
 
 JS_MAP_RECT = """() => {
   const v = Bokeh.index.find_one(Bokeh.documents[0].get_model_by_name('pvwb-map'));
@@ -92,15 +92,6 @@ def anomaly_centre(case_file):
             0.07 * (d["lon_max"] - d["lon_min"]), 0.08 * (d["lat_max"] - d["lat_min"]))
 
 
-def _drag(page, lonlat):
-    pts = page.evaluate(JS_TO_SCREEN, lonlat)
-    page.mouse.move(*pts[0])
-    page.mouse.down()
-    for x, y in pts[1:]:
-        page.mouse.move(x, y, steps=3)
-    page.mouse.up()
-
-
 def _map_pixels(page):
     from PIL import Image
 
@@ -140,9 +131,7 @@ def test_lasso_makes_a_piece_and_updates_the_overlay_in_place(page, anomaly_cent
     assert page.evaluate("() => Bokeh.documents[0].get_model_by_name("
                          "'pvwb-balanced-vectors').data.x0.length") == 0
     lon, lat, rx, ry = anomaly_centre
-    ring = [(lon + rx * math.cos(t), lat + ry * math.sin(t))
-            for t in [2 * math.pi * k / 36 for k in range(37)]]
-    _drag(page, ring)
+    _drag(page, ring(lon, lat, rx, ry))
     page.wait_for_function("() => window._changes > 0", timeout=60000)
     page.wait_for_timeout(1000)
     res = page.evaluate("""() => {

@@ -6,14 +6,13 @@ session), a lasso on the rebuilt map makes a piece, and Escape during a lasso cl
 no page error. Screenshots go to tests/artifacts/."""
 from __future__ import annotations
 
-import math
 from pathlib import Path
 
 import pytest
 
 import forecast_files as ff
 from browser_served import served_page
-from workbench.testing import JS_TO_SCREEN, choose_mouse_mode
+from workbench.testing import choose_mouse_mode, drag_on_map, ring
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
@@ -68,25 +67,11 @@ def test_lasso_and_escape_on_the_rebuilt_map(page):
     choose_mouse_mode(page, "Lasso a piece")
     page.wait_for_timeout(300)
 
-    def ring(lon, lat, rx, ry, n=30):
-        return [(lon + rx * math.cos(t), lat + ry * math.sin(t))
-                for t in [2 * math.pi * k / n for k in range(n + 1)]]
-
-    pts = page.evaluate(JS_TO_SCREEN, ring(-30.0, 49.0, 6.0, 4.0))
-    page.mouse.move(*pts[0])
-    page.mouse.down()
-    for x, y in pts[1:]:
-        page.mouse.move(x, y, steps=2)
-    page.mouse.up()
+    drag_on_map(page, ring(-30.0, 49.0, 6.0, 4.0, n=30), steps=2)
     page.wait_for_function(f"() => ({JS_PIECES})().length == 1", timeout=60000)
     # Escape while a second lasso is drawn: the outline is cleared, nothing is made
-    pts = page.evaluate(JS_TO_SCREEN, ring(-24.0, 52.0, 3.0, 2.0))
-    page.mouse.move(*pts[0])
-    page.mouse.down()
-    for x, y in pts[1:]:
-        page.mouse.move(x, y, steps=2)
-    page.keyboard.press("Escape")
-    page.mouse.up()
+    drag_on_map(page, ring(-24.0, 52.0, 3.0, 2.0, n=30), steps=2,
+                before_release=lambda: page.keyboard.press("Escape"))
     page.wait_for_timeout(1500)
     assert len(page.evaluate(JS_PIECES)) == 1
     page.mouse.move(5, 5)

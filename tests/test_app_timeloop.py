@@ -11,7 +11,6 @@ Screenshots go to tests/artifacts/ (and /tmp/shots/timeloop/ when that folder ex
 """
 from __future__ import annotations
 
-import math
 import shutil
 from pathlib import Path
 
@@ -19,7 +18,8 @@ import numpy as np
 import pytest
 
 from workbench.testing import (CHROMIUM, CHROMIUM_ARGS as ARGS, JS_MAP_READY, JS_TO_SCREEN,
-                               choose_mouse_mode, free_port, start_server, stop_server)
+                               choose_mouse_mode, drag_on_map as _drag, free_port, ring,
+                               start_server, stop_server)
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
@@ -109,21 +109,6 @@ def anomaly_centre(case_file):
     d = case.domain
     return (float(inner.longitude[i]), float(inner.latitude[j]),
             0.07 * (d["lon_max"] - d["lon_min"]), 0.08 * (d["lat_max"] - d["lat_min"]))
-
-
-def _ring(centre, n=36):
-    lon, lat, rx, ry = centre
-    return [(lon + rx * math.cos(t), lat + ry * math.sin(t))
-            for t in [2 * math.pi * k / n for k in range(n + 1)]]
-
-
-def _drag(page, lonlat, steps=3):
-    pts = page.evaluate(JS_TO_SCREEN, lonlat)
-    page.mouse.move(*pts[0])
-    page.mouse.down()
-    for x, y in pts[1:]:
-        page.mouse.move(x, y, steps=steps)
-    page.mouse.up()
 
 
 def _problems(page):
@@ -242,7 +227,7 @@ def test_ctrl_z_undoes_a_lasso_and_ctrl_shift_z_redoes_it(page, anomaly_centre, 
     _back_to_first_time(page, times)
     choose_mouse_mode(page, "Lasso a piece")
     page.wait_for_timeout(300)
-    _drag(page, _ring(anomaly_centre))
+    _drag(page, ring(*anomaly_centre))
     page.wait_for_function(f"() => ({JS_PIECES})().length == 1", timeout=60000)
     _focus_page(page)
     _arm_source(page, "pvwb-pieces")
@@ -259,14 +244,8 @@ def test_ctrl_z_undoes_a_lasso_and_ctrl_shift_z_redoes_it(page, anomaly_centre, 
                            ".data.x0.length > 0", timeout=30000)
     # Escape while drawing a lasso: the lasso makes nothing
     lon, lat, rx, ry = anomaly_centre
-    ring = _ring((lon + 2.5 * rx, lat, rx, ry))
-    pts = page.evaluate(JS_TO_SCREEN, ring)
-    page.mouse.move(*pts[0])
-    page.mouse.down()
-    for x, y in pts[1:]:
-        page.mouse.move(x, y, steps=2)
-    page.keyboard.press("Escape")
-    page.mouse.up()
+    _drag(page, ring(lon + 2.5 * rx, lat, rx, ry), steps=2,
+          before_release=lambda: page.keyboard.press("Escape"))
     page.wait_for_timeout(2000)
     assert page.evaluate(JS_PIECES) == ["piece"]
     assert "cancelled" in _status(page)
@@ -330,7 +309,7 @@ def test_following_piece_outline_differs_between_two_times(page, anomaly_centre,
     page.evaluate("() => window.scrollTo(0, 0)")  # the box is below the fold; the map is not
     page.wait_for_timeout(300)
     lon, lat, rx, ry = anomaly_centre
-    _drag(page, _ring((lon, lat, 1.3 * rx, 1.3 * ry)))
+    _drag(page, ring(lon, lat, 1.3 * rx, 1.3 * ry))
     page.wait_for_function(f"() => ({JS_PIECES})().length == 2", timeout=60000)
     outline = """(name) => {
       const d = Bokeh.documents[0].get_model_by_name('pvwb-pieces').data;

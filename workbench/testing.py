@@ -3,6 +3,7 @@ latency benchmark. Uses Debian's /usr/bin/chromium through Playwright (never a d
 browser) and a `pvwb serve` subprocess on 127.0.0.1."""
 from __future__ import annotations
 
+import math
 import os
 import socket
 import subprocess
@@ -12,7 +13,7 @@ import urllib.request
 from pathlib import Path
 
 __all__ = ["CHROMIUM", "CHROMIUM_ARGS", "JS_TO_SCREEN", "JS_MAP_READY", "choose_mouse_mode",
-           "free_port", "start_server", "stop_server"]
+           "ring", "drag_on_map", "free_port", "start_server", "stop_server"]
 
 ROOT = Path(__file__).resolve().parents[1]
 CHROMIUM = "/usr/bin/chromium"
@@ -53,6 +54,27 @@ def choose_mouse_mode(page, label, timeout=30000):
     tool on in the browser (a click on the map before that goes to the old tool)."""
     page.get_by_role("button", name=label).first.click()
     page.wait_for_function(JS_MODE_ON, arg=MODE_TOOLS[label], timeout=timeout)
+
+
+def ring(lon, lat, rx, ry, n=36):
+    """A closed ellipse of ``n`` + 1 (lon, lat) points round (``lon``, ``lat``), semi-axes
+    ``rx``, ``ry`` degrees (a lasso's path)."""
+    return [(lon + rx * math.cos(t), lat + ry * math.sin(t))
+            for t in [2 * math.pi * k / n for k in range(n + 1)]]
+
+
+def drag_on_map(page, lonlat, steps=3, before_release=None):
+    """Press the mouse at the first (lon, lat) of the map, move through the others
+    (``steps`` mouse events each) and release; ``before_release()`` runs with the button
+    still held (e.g. a key press)."""
+    pts = page.evaluate(JS_TO_SCREEN, lonlat)
+    page.mouse.move(*pts[0])
+    page.mouse.down()
+    for x, y in pts[1:]:
+        page.mouse.move(x, y, steps=steps)
+    if before_release is not None:
+        before_release()
+    page.mouse.up()
 
 
 def free_port() -> int:
